@@ -1,0 +1,198 @@
+"""One root error for everything a user can cause or a bench can throw.
+
+Every error the project raises derives from :class:`AmpbenchError` and also from
+the builtin that fits it (``ValueError`` for bad input, ``OSError`` for I/O), so
+callers may catch either.  The CLI turns any ``AmpbenchError`` into one clear
+line on stderr and exit status 2; nothing else should reach the user as a
+traceback.  Each subclass carries the fields that locate the problem, and
+``hint`` says how to fix it.
+"""
+
+from __future__ import annotations
+
+
+class AmpbenchError(Exception):
+    """Root of all ampbench errors."""
+
+    exit_status = 2
+
+    def __init__(self, message: str, *, hint: str | None = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.hint = hint
+
+    def __str__(self) -> str:
+        if self.hint:
+            return f"{self.message} (fix: {self.hint})"
+        return self.message
+
+
+# --- bad input files --------------------------------------------------------------------------
+
+
+class InputFileError(AmpbenchError, ValueError):
+    """A file written by a user (board, fixture, station, profile, capture) is wrong.
+
+    ``location`` is a dotted path to the offending field, e.g.
+    ``channel.left.stage[1].r_e`` or ``line 12`` for line-oriented files.
+    """
+
+    kind = "input file"
+
+    def __init__(
+        self,
+        path: str | None,
+        location: str | None,
+        reason: str,
+        *,
+        hint: str | None = None,
+    ) -> None:
+        self.path = path
+        self.location = location
+        self.reason = reason
+        where = path or "<input>"
+        if location:
+            where = f"{where}: {location}"
+        super().__init__(f"{self.kind} {where}: {reason}", hint=hint)
+
+
+class BoardFileError(InputFileError):
+    """A board description in limits/ is wrong or describes an unworkable circuit."""
+
+    kind = "board file"
+
+
+class FixtureFileError(InputFileError):
+    kind = "fixture file"
+
+
+class StationFileError(InputFileError):
+    kind = "station file"
+
+
+class ProfileError(InputFileError):
+    """An instrument profile is malformed (unknown operation, missing placeholder...)."""
+
+    kind = "instrument profile"
+
+
+class CaptureFileError(InputFileError):
+    kind = "capture file"
+
+
+class ValueParseError(AmpbenchError, ValueError):
+    """A component value or quantity could not be parsed (``4k7``, ``10n``, ``-3``)."""
+
+    def __init__(self, text: str, reason: str, *, hint: str | None = None) -> None:
+        self.text = text
+        self.reason = reason
+        super().__init__(f"cannot read value {text!r}: {reason}", hint=hint)
+
+
+class DesignError(AmpbenchError, ValueError):
+    """The circuit described cannot work as an amplifier (saturated at rest, cut off,
+    cannot drive its load).  Raised by the model; loaders wrap it in BoardFileError."""
+
+    def __init__(self, location: str, reason: str, *, hint: str | None = None) -> None:
+        self.location = location
+        self.reason = reason
+        super().__init__(f"{location}: {reason}", hint=hint)
+
+
+# --- signal analysis ------------------------------------------------------------------------
+
+
+class AnalysisError(AmpbenchError, ValueError):
+    """A record cannot be analysed honestly (NaN samples, too few cycles, silent...)."""
+
+
+class OverRangeError(AnalysisError):
+    """The record touches the ADC limits: distortion figures would be false."""
+
+
+# --- instruments ----------------------------------------------------------------------------
+
+
+class InstrumentError(AmpbenchError, OSError):
+    """Anything that goes wrong talking to an instrument.
+
+    Carries the VISA ``resource`` and the ``command`` in flight, and the station
+    ``role`` (generator, scope, ...) where known.
+    """
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        resource: str | None = None,
+        command: str | None = None,
+        role: str | None = None,
+        hint: str | None = None,
+    ) -> None:
+        self.resource = resource
+        self.command = command
+        self.role = role
+        parts = [message]
+        if role:
+            parts.append(f"role={role}")
+        if resource:
+            parts.append(f"resource={resource}")
+        if command:
+            parts.append(f"command={command!r}")
+        AmpbenchError.__init__(self, "; ".join(parts), hint=hint)
+
+
+class InstrumentTimeout(InstrumentError):
+    """No (complete) reply within the timeout."""
+
+
+class ConnectionLost(InstrumentError):
+    """The connection was refused, reset or closed."""
+
+
+class MalformedReply(InstrumentError):
+    """A reply that does not parse: bad block header, short block, non-numeric text."""
+
+
+class ScpiError(InstrumentError):
+    """The instrument reported an error in its queue (``SYSTem:ERRor?``)."""
+
+    def __init__(
+        self,
+        code: int,
+        text: str,
+        *,
+        resource: str | None = None,
+        command: str | None = None,
+        role: str | None = None,
+    ) -> None:
+        self.code = code
+        self.text = text
+        super().__init__(
+            f"instrument error {code},\"{text}\"", resource=resource, command=command, role=role
+        )
+
+
+class IdentityMismatch(InstrumentError):
+    """``*IDN?`` does not match what the station file expects at that resource."""
+
+
+# --- run ------------------------------------------------------------------------------------
+
+
+class SafetyError(AmpbenchError, RuntimeError):
+    """A step would break a safety rule (level above the safe input, supply fault)."""
+
+
+class RunAborted(AmpbenchError, RuntimeError):
+    """The sequence stopped before a verdict (operator interrupt, lost instrument)."""
+
+    def __init__(self, reason: str, *, step: str | None = None) -> None:
+        self.reason = reason
+        self.step = step
+        msg = f"run aborted at step {step}: {reason}" if step else f"run aborted: {reason}"
+        super().__init__(msg)
+
+
+class StoreError(AmpbenchError, OSError):
+    """The results store cannot be opened or written."""

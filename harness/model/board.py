@@ -1,0 +1,662 @@
+"""The board description: what a board is made of, as immutable objects.
+
+A board has channels; a channel is a chain of stages from its input connector to its
+output connector.  Every component is a :class:`Part` (value, tolerance band,
+designator); transistor and op-amp parameters are :class:`Spread` ranges
+(min / typ / max) as data sheets give them.
+
+``board_from_dict`` validates a parsed TOML document (no file I/O here: the reader is
+``harness.files.load_board``) and raises :class:`~harness.errors.BoardFileError`
+naming the channel, stage and field of any mistake.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+from harness.errors import BoardFileError, ValueParseError
+from harness.values import Toleranced, parse_quantity, parse_tolerance, split_value_tolerance
+
+# --- value objects ------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Part(Toleranced):
+    """One component: value with tolerance and its designator (``R104``) for repair reports."""
+
+    ref: str = ""
+    kind: Literal["resistor", "capacitor", "voltage", "other"] = "other"
+
+
+@dataclass(frozen=True)
+class Spread:
+    """A parameter known as a range (data-sheet min / typ / max)."""
+
+    min: float
+    typ: float
+    max: float
+
+    def __post_init__(self) -> None:
+        if not (self.min <= self.typ <= self.max):
+            raise ValueError(f"min <= typ <= max does not hold: {self.min}, {self.typ}, {self.max}")
+
+
+@dataclass(frozen=True)
+class Transistor:
+    """A small-signal BJT.  ``is_a`` sets V_BE at any current (V_BE = V_T ln(I_C/I_S));
+    ``vbe_v``, when given, is the data-sheet V_BE range the model checks that against."""
+
+    name: str
+    polarity: Literal["npn"]
+    beta: Spread
+    is_a: Spread
+    vce_sat_v: Spread
+    vaf_v: float | None = None
+    vbe_v: Spread | None = None
+
+
+@dataclass(frozen=True)
+class OpAmp:
+    """An op-amp's properties that matter for gain and clipping."""
+
+    name: str
+    headroom_v: Spread  # output cannot come closer than this to either rail
+    gbw_hz: float = 1e6
+    open_loop_gain: float = 1e5
+    output_current_a: float = 0.02  # most it can drive before current limiting
+    quiescent_a: Spread = field(default_factory=lambda: Spread(0.5e-3, 1e-3, 2e-3))
+
+
+@dataclass(frozen=True)
+class CommonEmitter:
+    """Common-emitter stage, voltage-divider bias: R1 from the supply to the base, R2 from the
+    base to ground, RC collector resistor, RE unbypassed emitter resistor in series with
+    RE_BYP, which CE bypasses; C_IN and C_OUT are the coupling capacitors."""
+
+    name: str
+    transistor: Transistor
+    r1: Part
+    r2: Part
+    rc: Part
+    re: Part
+    re_bypassed: Part | None = None
+    c_e: Part | None = None
+    c_in: Part | None = None
+    c_out: Part | None = None
+    kind: Literal["common_emitter"] = "common_emitter"
+
+    @property
+    def inverting(self) -> bool:
+        return True
+
+
+@dataclass(frozen=True)
+class EmitterFollower:
+    """Emitter follower.  ``dc_coupled`` means its base sits on the previous stage's
+    collector (no divider, no input capacitor); otherwise R1/R2 bias it through C_IN."""
+
+    name: str
+    transistor: Transistor
+    re: Part
+    r1: Part | None = None
+    r2: Part | None = None
+    c_in: Part | None = None
+    c_out: Part | None = None
+    dc_coupled: bool = False
+    kind: Literal["emitter_follower"] = "emitter_follower"
+
+    @property
+    def inverting(self) -> bool:
+        return False
+
+
+@dataclass(frozen=True)
+class OpAmpInverting:
+    """Inverting op-amp stage: gain −R_F/R_IN; input impedance R_IN."""
+
+    name: str
+    opamp: OpAmp
+    r_in: Part
+    r_f: Part
+    c_in: Part | None = None
+    c_out: Part | None = None
+    kind: Literal["opamp_inverting"] = "opamp_inverting"
+
+    @property
+    def inverting(self) -> bool:
+        return True
+
+
+@dataclass(frozen=True)
+class OpAmpNonInverting:
+    """Non-inverting op-amp stage: gain 1 + R_F/R_G; R_BIAS sets the input impedance and
+    the DC path of the input behind C_IN; C_G in series with R_G makes the DC gain one."""
+
+    name: str
+    opamp: OpAmp
+    r_g: Part
+    r_f: Part
+    r_bias: Part | None = None
+    c_in: Part | None = None
+    c_g: Part | None = None
+    c_out: Part | None = None
+    kind: Literal["opamp_noninverting"] = "opamp_noninverting"
+
+    @property
+    def inverting(self) -> bool:
+        return False
+
+
+Stage = CommonEmitter | EmitterFollower | OpAmpInverting | OpAmpNonInverting
+STAGE_KINDS: dict[str, type] = {
+    "common_emitter": CommonEmitter,
+    "emitter_follower": EmitterFollower,
+    "opamp_inverting": OpAmpInverting,
+    "opamp_noninverting": OpAmpNonInverting,
+}
+
+
+@dataclass(frozen=True)
+class Channel:
+    name: str
+    input: str
+    output: str
+    stages: tuple[Stage, ...]
+    load_ohm: Part
+
+    @property
+    def inverting(self) -> bool:
+        """Odd number of inverting stages: the output is the input upside down."""
+        return sum(s.inverting for s in self.stages) % 2 == 1
+
+
+@dataclass(frozen=True)
+class Supply:
+    """The board's supply rails.  ``negative`` is None for a single-supply board."""
+
+    positive: Part
+    negative: Part | None = None
+
+    @property
+    def v_pos(self) -> float:
+        return self.positive.nominal
+
+    @property
+    def v_neg(self) -> float:
+        return self.negative.nominal if self.negative is not None else 0.0
+
+
+@dataclass(frozen=True)
+class Conditions:
+    """How the board is tested."""
+
+    frequency_hz: float
+    nominal_input_vrms: float
+    safe_input_vrms: float
+    source_ohm: float = 50.0
+    extra_frequencies_hz: tuple[float, ...] = ()
+    clip_criterion: Literal["thd", "compression"] = "thd"
+    clip_thd_percent: float = 1.0
+    clip_compression_db: float = 1.0
+
+
+@dataclass(frozen=True)
+class LimitPolicy:
+    """How limits are made from tolerances, so a line can freeze and trace them."""
+
+    method: Literal["monte_carlo"] = "monte_carlo"
+    samples: int = 20000
+    coverage: float = 0.9973
+    seed: int = 1
+    worst_case: bool = True
+
+
+@dataclass(frozen=True)
+class Board:
+    name: str
+    part_number: str
+    revision: str
+    supply: Supply
+    conditions: Conditions
+    policy: LimitPolicy
+    channels: tuple[Channel, ...]
+    source: str = "<board>"
+    digest: str = ""  # sha256 of the file's bytes: ties results and limits to the exact file
+
+    def channel(self, name: str) -> Channel:
+        for ch in self.channels:
+            if ch.name == name:
+                return ch
+        raise KeyError(name)
+
+
+# --- validation ---------------------------------------------------------------------------------
+
+
+class _Reader:
+    """Walks a TOML mapping and reports errors with the dotted location of the field."""
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+
+    def fail(self, where: str, reason: str, hint: str | None = None) -> BoardFileError:
+        return BoardFileError(self.path, where, reason, hint=hint)
+
+    def table(self, data: Mapping[str, Any], key: str, where: str) -> Mapping[str, Any]:
+        if key not in data:
+            raise self.fail(where, f"missing table [{key}]", hint=f"add a [{key}] table")
+        value = data[key]
+        if not isinstance(value, Mapping):
+            raise self.fail(f"{where}.{key}" if where else key, "must be a table")
+        return value
+
+    def known(self, data: Mapping[str, Any], allowed: set[str], where: str) -> None:
+        unknown = sorted(set(data) - allowed)
+        if unknown:
+            raise self.fail(
+                f"{where}.{unknown[0]}" if where else unknown[0],
+                "unknown field",
+                hint=f"allowed fields here: {', '.join(sorted(allowed))}",
+            )
+
+    def string(self, data: Mapping[str, Any], key: str, where: str, default: str | None = None
+               ) -> str:
+        if key not in data:
+            if default is not None:
+                return default
+            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = \"...\"")
+        value = data[key]
+        if not isinstance(value, str) or not value.strip():
+            raise self.fail(f"{where}.{key}", "must be a non-empty text")
+        return value.strip()
+
+    def number(
+        self,
+        data: Mapping[str, Any],
+        key: str,
+        where: str,
+        default: float | None = None,
+        *,
+        positive: bool = True,
+    ) -> float:
+        if key not in data:
+            if default is not None:
+                return default
+            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = <number>")
+        try:
+            value = parse_quantity(data[key])
+        except ValueParseError as exc:
+            raise self.fail(f"{where}.{key}", exc.reason, exc.hint) from None
+        if positive and not value > 0:
+            raise self.fail(f"{where}.{key}", f"must be greater than zero (got {value:g})")
+        return value
+
+    def spread(self, data: Mapping[str, Any], key: str, where: str, *, required: bool = True,
+               positive: bool = True) -> Spread | None:
+        loc = f"{where}.{key}"
+        if key not in data:
+            if not required:
+                return None
+            raise self.fail(loc, "missing field", hint=f"add {key} = {{ min = .., typ = .., max = .. }}")
+        value = data[key]
+        if not isinstance(value, Mapping):
+            v = self.number(data, key, where, positive=positive)
+            return Spread(v, v, v)
+        self.known(value, {"min", "typ", "max"}, loc)
+        nums = {}
+        for k in ("min", "typ", "max"):
+            if k in value:
+                nums[k] = self.number(value, k, loc, positive=positive)
+        if "typ" not in nums:
+            if "min" in nums and "max" in nums:
+                nums["typ"] = math.sqrt(nums["min"] * nums["max"]) if positive else (
+                    nums["min"] + nums["max"]) / 2
+            else:
+                raise self.fail(loc, "needs typ, or both min and max")
+        lo, typ, hi = nums.get("min", nums["typ"]), nums["typ"], nums.get("max", nums["typ"])
+        if not lo <= typ <= hi:
+            raise self.fail(loc, f"needs min <= typ <= max (got {lo:g}, {typ:g}, {hi:g})")
+        return Spread(lo, typ, hi)
+
+    def part(
+        self,
+        data: Mapping[str, Any],
+        key: str,
+        where: str,
+        default_tol: str | None,
+        kind: Literal["resistor", "capacitor", "voltage", "other"],
+        *,
+        required: bool = True,
+        allow_zero: bool = False,
+    ) -> Part | None:
+        loc = f"{where}.{key}"
+        if key not in data:
+            if required:
+                raise self.fail(loc, "missing component", hint=f"add {key} = \"<value> <tolerance>\"")
+            return None
+        raw = data[key]
+        ref = ""
+        tol_text: Any = None
+        if isinstance(raw, Mapping):
+            self.known(raw, {"value", "tol", "ref"}, loc)
+            if "value" not in raw:
+                raise self.fail(f"{loc}.value", "missing field")
+            value_text: Any = raw["value"]
+            tol_text = raw.get("tol")
+            ref = str(raw.get("ref", ""))
+        elif isinstance(raw, str):
+            try:
+                value_text, tol_text = split_value_tolerance(raw)
+            except ValueParseError as exc:
+                raise self.fail(loc, exc.reason, exc.hint) from None
+        else:
+            value_text = raw
+        try:
+            value = parse_quantity(value_text)
+        except ValueParseError as exc:
+            raise self.fail(loc, f"{exc.reason} ({value_text!r})", exc.hint) from None
+        if value < 0 or (value == 0 and not allow_zero):
+            what = "resistance" if kind == "resistor" else "value"
+            raise self.fail(loc, f"{what} must be greater than zero (got {value:g})",
+                            hint="remove the component if it is not fitted")
+        if tol_text is None:
+            tol_text = default_tol
+        if tol_text is None:
+            raise self.fail(loc, "no tolerance given",
+                            hint=f"write e.g. {key} = \"{value_text} 1%\" or set a default in [tolerances]")
+        try:
+            minus, plus = parse_tolerance(tol_text)
+        except ValueParseError as exc:
+            raise self.fail(loc, exc.reason, exc.hint) from None
+        return Part(nominal=value, tol_minus=minus, tol_plus=plus, ref=ref or loc, kind=kind)
+
+
+_CE_FIELDS = {"kind", "name", "transistor", "r1", "r2", "rc", "re", "re_bypassed", "c_e", "c_in",
+              "c_out"}
+_EF_FIELDS = {"kind", "name", "transistor", "re", "r1", "r2", "c_in", "c_out", "coupling"}
+_INV_FIELDS = {"kind", "name", "opamp", "r_in", "r_f", "c_in", "c_out"}
+_NONINV_FIELDS = {"kind", "name", "opamp", "r_g", "r_f", "r_bias", "c_in", "c_g", "c_out"}
+
+
+def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
+    if not isinstance(data, Mapping):
+        raise rd.fail(where, "must be a table")
+    rd.known(data, {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "vbe_v", "note"}, where)
+    polarity = rd.string(data, "polarity", where, default="npn").lower()
+    if polarity != "npn":
+        raise rd.fail(f"{where}.polarity", f"polarity {polarity!r} is not supported",
+                      hint="describe NPN stages (polarity = \"npn\")")
+    vaf = rd.number(data, "vaf_v", where, default=0.0, positive=False) or None
+    return Transistor(
+        name=name,
+        polarity="npn",
+        beta=rd.spread(data, "beta", where),  # type: ignore[arg-type]
+        is_a=rd.spread(data, "is_a", where),  # type: ignore[arg-type]
+        vce_sat_v=rd.spread(data, "vce_sat_v", where),  # type: ignore[arg-type]
+        vaf_v=vaf,
+        vbe_v=rd.spread(data, "vbe_v", where, required=False),
+    )
+
+
+def _opamp(rd: _Reader, name: str, data: Any, where: str) -> OpAmp:
+    if not isinstance(data, Mapping):
+        raise rd.fail(where, "must be a table")
+    rd.known(data, {"headroom_v", "gbw_hz", "open_loop_gain", "output_current_a", "quiescent_a",
+                    "note"}, where)
+    q = rd.spread(data, "quiescent_a", where, required=False)
+    return OpAmp(
+        name=name,
+        headroom_v=rd.spread(data, "headroom_v", where),  # type: ignore[arg-type]
+        gbw_hz=rd.number(data, "gbw_hz", where, default=1e6),
+        open_loop_gain=rd.number(data, "open_loop_gain", where, default=1e5),
+        output_current_a=rd.number(data, "output_current_a", where, default=0.02),
+        quiescent_a=q or Spread(0.5e-3, 1e-3, 2e-3),
+    )
+
+
+def _stage(
+    rd: _Reader,
+    data: Any,
+    where: str,
+    transistors: Mapping[str, Transistor],
+    opamps: Mapping[str, OpAmp],
+    tol_r: str | None,
+    tol_c: str | None,
+) -> Stage:
+    if not isinstance(data, Mapping):
+        raise rd.fail(where, "a stage must be a table")
+    kind = rd.string(data, "kind", where)
+    if kind not in STAGE_KINDS:
+        raise rd.fail(f"{where}.kind", f"unknown stage kind {kind!r}",
+                      hint=f"use one of: {', '.join(STAGE_KINDS)}")
+    name = rd.string(data, "name", where)
+    where = f"{where}({name})"
+
+    def r(key: str, required: bool = True) -> Part | None:
+        return rd.part(data, key, where, tol_r, "resistor", required=required)
+
+    def c(key: str) -> Part | None:
+        return rd.part(data, key, where, tol_c, "capacitor", required=False)
+
+    def transistor() -> Transistor:
+        ref = rd.string(data, "transistor", where)
+        if ref not in transistors:
+            raise rd.fail(f"{where}.transistor", f"no transistor named {ref!r}",
+                          hint="define it in a [transistor.<name>] table")
+        return transistors[ref]
+
+    def opamp() -> OpAmp:
+        ref = rd.string(data, "opamp", where)
+        if ref not in opamps:
+            raise rd.fail(f"{where}.opamp", f"no op-amp named {ref!r}",
+                          hint="define it in an [opamp.<name>] table")
+        return opamps[ref]
+
+    if kind == "common_emitter":
+        rd.known(data, _CE_FIELDS, where)
+        stage: Stage = CommonEmitter(
+            name=name, transistor=transistor(), r1=r("r1"), r2=r("r2"), rc=r("rc"),  # type: ignore[arg-type]
+            re=r("re"), re_bypassed=r("re_bypassed", False), c_e=c("c_e"),  # type: ignore[arg-type]
+            c_in=c("c_in"), c_out=c("c_out"),
+        )
+        if stage.c_e is not None and stage.re_bypassed is None:
+            raise rd.fail(f"{where}.c_e", "bypass capacitor without re_bypassed",
+                          hint="give re_bypassed, the emitter resistance c_e bypasses")
+    elif kind == "emitter_follower":
+        rd.known(data, _EF_FIELDS, where)
+        coupling = rd.string(data, "coupling", where, default="dc").lower()
+        if coupling not in {"dc", "ac"}:
+            raise rd.fail(f"{where}.coupling", f"unknown coupling {coupling!r}",
+                          hint="use \"dc\" (base on the previous collector) or \"ac\"")
+        stage = EmitterFollower(
+            name=name, transistor=transistor(), re=r("re"),  # type: ignore[arg-type]
+            r1=r("r1", coupling == "ac"), r2=r("r2", coupling == "ac"),
+            c_in=c("c_in"), c_out=c("c_out"), dc_coupled=coupling == "dc",
+        )
+    elif kind == "opamp_inverting":
+        rd.known(data, _INV_FIELDS, where)
+        stage = OpAmpInverting(name=name, opamp=opamp(), r_in=r("r_in"), r_f=r("r_f"),  # type: ignore[arg-type]
+                               c_in=c("c_in"), c_out=c("c_out"))
+    else:
+        rd.known(data, _NONINV_FIELDS, where)
+        stage = OpAmpNonInverting(name=name, opamp=opamp(), r_g=r("r_g"), r_f=r("r_f"),  # type: ignore[arg-type]
+                                  r_bias=r("r_bias", False), c_in=c("c_in"), c_g=c("c_g"),
+                                  c_out=c("c_out"))
+    return stage
+
+
+_TOP_FIELDS = {"board", "supply", "conditions", "limits", "tolerances", "transistor", "opamp",
+               "channel"}
+
+
+def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes | None = None
+                    ) -> Board:
+    """Validate a parsed board document and build the :class:`Board`.
+
+    ``raw`` is the file's bytes, hashed into ``Board.digest`` so every limit and result can
+    name the exact board file it came from.
+    """
+    rd = _Reader(path)
+    rd.known(data, _TOP_FIELDS, "")
+    head = rd.table(data, "board", "")
+    rd.known(head, {"name", "part_number", "revision", "note"}, "board")
+
+    tolerances = data.get("tolerances", {})
+    if not isinstance(tolerances, Mapping):
+        raise rd.fail("tolerances", "must be a table")
+    rd.known(tolerances, {"resistor", "capacitor"}, "tolerances")
+    tol_r = tolerances.get("resistor")
+    tol_c = tolerances.get("capacitor")
+    for key, tol in (("resistor", tol_r), ("capacitor", tol_c)):
+        if tol is not None:
+            try:
+                parse_tolerance(tol)
+            except ValueParseError as exc:
+                raise rd.fail(f"tolerances.{key}", exc.reason, exc.hint) from None
+
+    sup = rd.table(data, "supply", "")
+    rd.known(sup, {"positive_v", "negative_v"}, "supply")
+    positive = rd.part(sup, "positive_v", "supply", "0%", "voltage")
+    negative = None
+    if "negative_v" in sup:
+        try:
+            neg_value, neg_tol = split_value_tolerance(str(sup["negative_v"]))
+            neg = parse_quantity(neg_value)
+            minus, plus = parse_tolerance(neg_tol or "0%")
+        except ValueParseError as exc:
+            raise rd.fail("supply.negative_v", exc.reason, exc.hint) from None
+        if not neg < 0:
+            raise rd.fail("supply.negative_v", "the negative rail must be below zero")
+        negative = Part(nominal=neg, tol_minus=minus, tol_plus=plus, ref="supply.negative_v",
+                        kind="voltage")
+    supply = Supply(positive=positive, negative=negative)  # type: ignore[arg-type]
+
+    cond = rd.table(data, "conditions", "")
+    rd.known(cond, {"frequency_hz", "nominal_input_vrms", "safe_input_vrms", "source_ohm",
+                    "extra_frequencies_hz", "clip_criterion", "clip_thd_percent",
+                    "clip_compression_db", "load_ohm"}, "conditions")
+    extra = cond.get("extra_frequencies_hz", [])
+    if not isinstance(extra, list):
+        raise rd.fail("conditions.extra_frequencies_hz", "must be a list of frequencies")
+    extra_hz = tuple(rd.number({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
+                     for i, f in enumerate(extra))
+    criterion = rd.string(cond, "clip_criterion", "conditions", default="thd").lower()
+    if criterion not in {"thd", "compression"}:
+        raise rd.fail("conditions.clip_criterion", f"unknown criterion {criterion!r}",
+                      hint="use \"thd\" or \"compression\"")
+    conditions = Conditions(
+        frequency_hz=rd.number(cond, "frequency_hz", "conditions"),
+        nominal_input_vrms=rd.number(cond, "nominal_input_vrms", "conditions"),
+        safe_input_vrms=rd.number(cond, "safe_input_vrms", "conditions"),
+        source_ohm=rd.number(cond, "source_ohm", "conditions", default=50.0, positive=False),
+        extra_frequencies_hz=extra_hz,
+        clip_criterion=criterion,  # type: ignore[arg-type]
+        clip_thd_percent=rd.number(cond, "clip_thd_percent", "conditions", default=1.0),
+        clip_compression_db=rd.number(cond, "clip_compression_db", "conditions", default=1.0),
+    )
+    if conditions.nominal_input_vrms > conditions.safe_input_vrms:
+        raise rd.fail("conditions.nominal_input_vrms", "nominal input is above the safe input level",
+                      hint="lower nominal_input_vrms or check safe_input_vrms")
+    if conditions.clip_thd_percent >= 100:
+        raise rd.fail("conditions.clip_thd_percent", "must be under 100 %")
+    board_load = rd.part(cond, "load_ohm", "conditions", tol_r or "0%", "resistor")
+
+    lim = data.get("limits", {})
+    if not isinstance(lim, Mapping):
+        raise rd.fail("limits", "must be a table")
+    rd.known(lim, {"method", "samples", "coverage", "seed", "worst_case"}, "limits")
+    method = rd.string(lim, "method", "limits", default="monte_carlo")
+    if method != "monte_carlo":
+        raise rd.fail("limits.method", f"unknown method {method!r}", hint="use \"monte_carlo\"")
+    samples = lim.get("samples", 20000)
+    if not isinstance(samples, int) or isinstance(samples, bool) or not 100 <= samples <= 10_000_000:
+        raise rd.fail("limits.samples", "must be a whole number from 100 to 10000000")
+    coverage = rd.number(lim, "coverage", "limits", default=0.9973)
+    if not 0.5 <= coverage < 1.0:
+        raise rd.fail("limits.coverage", "must be a fraction from 0.5 to below 1 (e.g. 0.9973)")
+    seed = lim.get("seed", 1)
+    if not isinstance(seed, int) or isinstance(seed, bool) or seed < 0:
+        raise rd.fail("limits.seed", "must be a whole number >= 0")
+    worst = lim.get("worst_case", True)
+    if not isinstance(worst, bool):
+        raise rd.fail("limits.worst_case", "must be true or false")
+    policy = LimitPolicy(method="monte_carlo", samples=samples, coverage=coverage, seed=seed,
+                         worst_case=worst)
+
+    transistors: dict[str, Transistor] = {}
+    tdata = data.get("transistor", {})
+    if not isinstance(tdata, Mapping):
+        raise rd.fail("transistor", "must be tables [transistor.<name>]")
+    for tname, tval in tdata.items():
+        transistors[tname] = _transistor(rd, tname, tval, f"transistor.{tname}")
+    opamps: dict[str, OpAmp] = {}
+    odata = data.get("opamp", {})
+    if not isinstance(odata, Mapping):
+        raise rd.fail("opamp", "must be tables [opamp.<name>]")
+    for oname, oval in odata.items():
+        opamps[oname] = _opamp(rd, oname, oval, f"opamp.{oname}")
+
+    chans = data.get("channel")
+    if not isinstance(chans, list) or not chans:
+        raise rd.fail("channel", "no channels", hint="add at least one [[channel]] table")
+    channels: list[Channel] = []
+    seen: set[str] = set()
+    for i, ch in enumerate(chans):
+        where = f"channel[{i}]"
+        if not isinstance(ch, Mapping):
+            raise rd.fail(where, "must be a table")
+        rd.known(ch, {"name", "input", "output", "stage", "load_ohm"}, where)
+        cname = rd.string(ch, "name", where)
+        where = f"channel.{cname}"
+        if cname in seen:
+            raise rd.fail(where, "two channels share this name")
+        seen.add(cname)
+        stages_data = ch.get("stage")
+        if not isinstance(stages_data, list) or not stages_data:
+            raise rd.fail(f"{where}.stage", "a channel needs at least one [[channel.stage]]")
+        stages = tuple(
+            _stage(rd, s, f"{where}.stage[{j}]", transistors, opamps, tol_r, tol_c)
+            for j, s in enumerate(stages_data)
+        )
+        names = [s.name for s in stages]
+        if len(set(names)) != len(names):
+            raise rd.fail(f"{where}.stage", "two stages share a name")
+        if isinstance(stages[0], EmitterFollower) and stages[0].dc_coupled:
+            raise rd.fail(f"{where}.stage[0]", "the first stage cannot be DC-coupled to a previous "
+                          "stage", hint="use coupling = \"ac\" with r1, r2 and c_in")
+        for j, s in enumerate(stages[1:], start=1):
+            if isinstance(s, EmitterFollower) and s.dc_coupled and not isinstance(
+                stages[j - 1], CommonEmitter
+            ):
+                raise rd.fail(f"{where}.stage[{j}]({s.name}).coupling",
+                              "a DC-coupled follower must follow a common-emitter stage",
+                              hint="use coupling = \"ac\"")
+            if isinstance(s, EmitterFollower) and s.dc_coupled and stages[j - 1].c_out is not None:
+                raise rd.fail(f"{where}.stage[{j - 1}]({stages[j - 1].name}).c_out",
+                              "the previous stage has c_out but the follower is DC-coupled",
+                              hint="remove c_out or set coupling = \"ac\" on the follower")
+        needs_neg = any(isinstance(s, OpAmpInverting | OpAmpNonInverting) for s in stages)
+        if needs_neg and supply.negative is None:
+            raise rd.fail(f"{where}.stage", "op-amp stages need a split supply",
+                          hint="add negative_v to [supply]")
+        load = rd.part(ch, "load_ohm", where, tol_r or "0%", "resistor", required=False)
+        channels.append(Channel(name=cname, input=rd.string(ch, "input", where, default="IN"),
+                                output=rd.string(ch, "output", where, default="OUT"),
+                                stages=stages, load_ohm=load or board_load))  # type: ignore[arg-type]
+
+    digest = hashlib.sha256(raw).hexdigest() if raw is not None else ""
+    return Board(
+        name=rd.string(head, "name", "board"),
+        part_number=rd.string(head, "part_number", "board", default="-"),
+        revision=rd.string(head, "revision", "board", default="-"),
+        supply=supply,
+        conditions=conditions,
+        policy=policy,
+        channels=tuple(channels),
+        source=path,
+        digest=digest,
+    )

@@ -1,0 +1,68 @@
+"""Shared test fixtures.
+
+External reference tools (ngspice, a browser) are optional on a developer machine
+but mandatory in CI: where ``CI`` is set, a missing tool fails the test instead of
+skipping it, so CI always runs every reference check.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+LIMITS_DIR = REPO / "limits"
+FIXTURES_DIR = REPO / "fixtures"
+
+
+def _require_tool(name: str, package: str) -> str:
+    path = shutil.which(name)
+    if path:
+        return path
+    msg = f"{name} not found (install Debian package {package!r}: apt-get install -y {package})"
+    if os.environ.get("CI"):
+        pytest.fail(f"CI must run this reference check: {msg}")
+    pytest.skip(msg)
+
+
+@pytest.fixture(scope="session")
+def ngspice() -> str:
+    """Path of the ngspice binary (Debian package ``ngspice``)."""
+    return _require_tool("ngspice", "ngspice")
+
+
+@pytest.fixture(scope="session")
+def chromium() -> str:
+    """Path of a headless-capable Chromium (Debian package ``chromium``)."""
+    return _require_tool("chromium", "chromium")
+
+
+def run_ngspice(binary: str, netlist: str, tmp_path: Path, timeout_s: float = 60.0) -> str:
+    """Run ``ngspice -b`` on a netlist text and return its stdout (raises on failure)."""
+    cir = tmp_path / "check.cir"
+    cir.write_text(netlist)
+    proc = subprocess.run(
+        [binary, "-b", str(cir)],
+        capture_output=True,
+        text=True,
+        timeout=timeout_s,
+        cwd=tmp_path,
+        check=False,
+    )
+    if proc.returncode != 0:
+        raise AssertionError(f"ngspice failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
+    return proc.stdout
+
+
+@pytest.fixture
+def spice(ngspice: str, tmp_path: Path):
+    """Callable running a netlist through ngspice in batch mode; returns stdout."""
+
+    def _run(netlist: str, timeout_s: float = 60.0) -> str:
+        return run_ngspice(ngspice, netlist, tmp_path, timeout_s)
+
+    return _run
