@@ -1,0 +1,210 @@
+"""Crash recovery and several processes on one file.
+
+A child process begins a run and stores measurements, printing the count after each
+commit returns; it is SIGKILLed at a random moment, ten times.  Afterwards SQLite's own
+``PRAGMA integrity_check`` must answer "ok" (sqlite.org/pragma.html#pragma_integrity_check),
+every reported measurement must be there, and recover_aborted must mark those runs aborted.
+Owner liveness reads /proc/<pid>/stat field 22, starttime (proc(5), Linux man-pages).
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from store_worker import RECORD_LEN, header, measurement
+
+from harness.store import open_store
+from harness.store.owner import Owner, owner_alive, start_token
+
+WORKER = Path(__file__).with_name("store_worker.py")
+needs_proc = pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")
+
+
+def _spawn(*args: str) -> subprocess.Popen[str]:
+    return subprocess.Popen(
+        [sys.executable, str(WORKER), *args],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+
+
+@needs_proc
+def test_sigkill_mid_write_loses_nothing_and_is_recovered(tmp_path: Path) -> None:
+    db = tmp_path / "crash.db"
+    rng = random.Random(20240501)
+    kills: list[tuple[int | None, int]] = []  # (run id, commits the child reported)
+    for k in range(10):
+        child = _spawn("crash", str(db), "SN-CRASH")
+        assert child.stdout is not None
+        run_id: int | None = None
+        reported = 0
+        if k in (3, 7):  # kill while it starts: importing, opening, creating, beginning
+            time.sleep(rng.uniform(0.0, 0.25))
+        else:
+            line = child.stdout.readline()
+            assert line.startswith("run "), child.stderr.read() if child.stderr else line
+            run_id = int(line.split()[1])
+            for _ in range(rng.randint(1, 25)):
+                reported = int(child.stdout.readline())
+            time.sleep(rng.uniform(0.0, 0.004))  # land inside a later transaction
+        child.send_signal(signal.SIGKILL)
+        child.wait(timeout=10)
+        assert child.returncode == -signal.SIGKILL
+        for line in child.stdout.read().splitlines():  # printed before the kill, unread
+            if line.startswith("run "):
+                run_id = int(line.split()[1])
+            elif line.strip():
+                reported = int(line)
+        child.stdout.close()
+        assert child.stderr is not None
+        child.stderr.close()
+        if child.stdin:
+            child.stdin.close()
+        kills.append((run_id, reported))
+
+    conn = sqlite3.connect(db)
+    try:
+        assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    finally:
+        conn.close()
+
+    with open_store(db) as store:
+        running = {r.run_id for r in store.list_runs(status="running")}
+        known = {rid for rid, _ in kills if rid is not None}
+        assert known <= running
+        assert sorted(store.recover_aborted()) == sorted(running)
+        assert store.recover_aborted() == []  # idempotent
+        for run_id, reported in kills:
+            if run_id is None:
+                continue
+            run = store.get_run(run_id)
+            assert run.status == "aborted" and run.verdict is None
+            assert "ended without finishing" in (run.reason or "")
+            values = [m.value for m in store.measurements(run_id)]
+            # the kill may land after a commit and before its print: one more, never fewer
+            assert len(values) in (reported, reported + 1)
+            assert values == [float(i) for i in range(len(values))]  # no gaps
+            for rec in store.records(run_id):
+                i = int(rec.label[1:])
+                np.testing.assert_array_equal(rec.arrays["input"], np.full(RECORD_LEN, i))
+                np.testing.assert_array_equal(rec.arrays["output"], -np.full(RECORD_LEN, i))
+        runs = store.list_runs(serial="SN-CRASH")
+        assert sorted(r.retest for r in runs) == list(range(len(runs)))
+
+        new = store.begin_run(header("SN-CRASH"))
+        store.add_measurement(new, measurement(0))
+        store.finish_run(new, "complete", "PASS")
+        assert store.get_run(new).retest == len(runs)
+        assert store.get_run(new).status == "complete"
+
+
+@needs_proc
+def test_live_process_run_is_not_marked_aborted(tmp_path: Path) -> None:
+    db = tmp_path / "live.db"
+    child = _spawn("hold", str(db), "SN-LIVE", "3")
+    try:
+        assert child.stdout is not None and child.stdin is not None
+        line = child.stdout.readline()
+        assert line.startswith("ready "), line
+        run_id = int(line.split()[1])
+        with open_store(db) as store:
+            mine = store.begin_run(header("SN-MINE"))  # this process: alive too
+            assert store.recover_aborted() == []
+            assert store.recover_aborted(stale_after_s=0.0) == []  # alive beats stale
+            assert store.get_run(run_id).status == "running"
+            assert store.get_run(mine).status == "running"
+            child.stdin.write("\n")
+            child.stdin.flush()
+            assert child.stdout.readline().strip() == "done"
+            assert child.wait(timeout=10) == 0
+            run = store.get_run(run_id)
+            assert (run.status, run.verdict, len(store.measurements(run_id))) == (
+                "complete",
+                "PASS",
+                3,
+            )
+    finally:
+        if child.poll() is None:
+            child.kill()
+            child.wait()
+        for stream in (child.stdin, child.stdout, child.stderr):
+            if stream:
+                stream.close()
+
+
+@needs_proc
+def test_reused_pid_and_foreign_host(tmp_path: Path) -> None:
+    """A live pid with another start token is not the owner (pid reuse after a reboot);
+    a run owned on another host is left alone unless its heartbeat is stale."""
+    db = tmp_path / "owner.db"
+    with open_store(db) as store:
+        reused = store.begin_run(header("SN-R"))
+        foreign = store.begin_run(header("SN-F"))
+        raw = sqlite3.connect(db)
+        try:
+            raw.execute("UPDATE runs SET start_token = 'boot:1' WHERE run_id = ?", (reused,))
+            raw.execute("UPDATE runs SET host = 'station-elsewhere' WHERE run_id = ?", (foreign,))
+            raw.commit()
+        finally:
+            raw.close()
+        assert store.recover_aborted() == [reused]
+        assert store.get_run(foreign).status == "running"
+        assert store.recover_aborted(stale_after_s=3600.0) == []
+        assert store.recover_aborted(stale_after_s=0.0) == [foreign]
+        assert "silent since" in (store.get_run(foreign).reason or "")
+
+
+@needs_proc
+def test_owner_alive_reads_proc_start_time() -> None:
+    """proc(5): a pid's starttime (field 22) is fixed for the life of the process."""
+    me = os.getpid()
+    token = start_token(me)
+    assert token is not None and token == start_token(me)
+    host = socket.gethostname()
+    assert owner_alive(Owner(host, me, token)) is True
+    assert owner_alive(Owner(host, me, token + "0")) is False
+    assert owner_alive(Owner("another-host", me, token)) is None
+    done = subprocess.run(
+        [sys.executable, "-c", "import os; print(os.getpid())"],
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    assert owner_alive(Owner(host, int(done.stdout), "x:1")) is False
+
+
+def test_four_processes_share_one_file(tmp_path: Path) -> None:
+    """4 processes x 25 runs x 10 measurements, at once: every row present, and retest
+    numbers of a serial tested by all four are exactly 0..3 (counted inside the same
+    IMMEDIATE transaction as the insert).  No process creates the file beforehand: the
+    four race to create the schema, as stations starting together on a new line would."""
+    db = tmp_path / "shared.db"
+    workers = [_spawn("load", str(db), str(w), "25", "10") for w in range(4)]
+    for w in workers:
+        out, err = w.communicate(timeout=120)
+        assert w.returncode == 0, err
+        assert out.strip() == "ok"
+    with open_store(db) as store:
+        runs = store.list_runs()
+        assert len(runs) == 100
+        assert all(r.status == "complete" for r in runs)
+        for r in runs:
+            assert [m.value for m in store.measurements(r.run_id)] == [float(i) for i in range(10)]
+        by_serial: dict[str, list[int]] = {}
+        for r in runs:
+            by_serial.setdefault(r.serial, []).append(r.retest)
+        assert len(by_serial) == 25
+        assert all(sorted(v) == [0, 1, 2, 3] for v in by_serial.values())
+        assert {r.station for r in runs} == {f"station-{w}" for w in range(4)}
