@@ -81,8 +81,10 @@ def parse_block_header(buf: bytes) -> tuple[int, int]:
         raise MalformedReply(f"block does not start with '#': {bytes(buf[:16])!r}")
     nd = buf[1:2]
     if nd == b"0":
-        raise MalformedReply("indefinite-length block '#0' cannot be delimited on a stream",
-                             hint="set the instrument to definite-length blocks")
+        raise MalformedReply(
+            "indefinite-length block '#0' cannot be delimited on a stream",
+            hint="set the instrument to definite-length blocks",
+        )
     if not (b"1" <= nd <= b"9"):
         raise MalformedReply(f"block header digit count is not 1-9: {bytes(buf[:16])!r}")
     n = int(nd)
@@ -120,8 +122,9 @@ def _dtype(datatype: str, big_endian: bool) -> np.dtype:
     return np.dtype((">" if big_endian else "<") + kind)
 
 
-def encode_values(values: Sequence[float] | np.ndarray, datatype: str, *,
-                  big_endian: bool = True) -> bytes:
+def encode_values(
+    values: Sequence[float] | np.ndarray, datatype: str, *, big_endian: bool = True
+) -> bytes:
     """Numbers as a framed block of ``datatype`` (``FORMat:BORDer NORMal`` = big-endian)."""
     arr = np.asarray(values).astype(_dtype(datatype, big_endian), copy=False)
     return encode_block(arr.tobytes())
@@ -153,7 +156,7 @@ def parse_error_reply(text: str) -> tuple[int, str]:
     """
     m = _ERROR_RE.match(text)
     if not m:
-        raise MalformedReply(f"error-queue reply is not <code>,\"<text>\": {text!r}")
+        raise MalformedReply(f'error-queue reply is not <code>,"<text>": {text!r}')
     return int(m.group(1)), m.group(2).replace('""', '"')
 
 
@@ -180,8 +183,10 @@ class Identity:
         fields = [f.strip() for f in expected.split(",")]
         if len(fields) > 4:
             return False
-        return all(not want or want.casefold() == have.strip().casefold()
-                   for want, have in zip(fields, mine, strict=False))
+        return all(
+            not want or want.casefold() == have.strip().casefold()
+            for want, have in zip(fields, mine, strict=False)
+        )
 
 
 def parse_idn(text: str) -> Identity:

@@ -1,0 +1,225 @@
+"""Profiles and station files: the defaults load, and each kind of mistake names file,
+field and fix."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from harness.errors import ProfileError, StationFileError
+from harness.instruments.profiles import (
+    DEFAULT_PROFILE_DIRS,
+    ROLE_OPS,
+    ROLES,
+    load_profile,
+)
+from harness.instruments.station import load_station, validate_resource
+
+REPO = Path(__file__).resolve().parents[2]
+FIXTURE_PROFILES = REPO / "fixtures" / "instruments"
+PACKAGED = REPO / "harness" / "data" / "instruments"
+GEN = (FIXTURE_PROFILES / "scpi-generator.toml").read_text()
+
+
+@pytest.mark.parametrize("role", ROLES)
+def test_default_profiles_load_and_cover_every_required_operation(role):
+    prof = load_profile(f"scpi-{role}")
+    assert prof.role == role
+    for op, spec in ROLE_OPS[role].items():
+        if spec.required:
+            assert prof.has(op), op
+
+
+@pytest.mark.parametrize("role", ROLES)
+def test_packaged_copy_is_identical(role):
+    """An installed package (no fixtures/ folder) must find the same defaults."""
+    name = f"scpi-{role}.toml"
+    assert (PACKAGED / name).read_bytes() == (FIXTURE_PROFILES / name).read_bytes()
+    assert (
+        load_profile(f"scpi-{role}", [PACKAGED]).commands == load_profile(f"scpi-{role}").commands
+    )
+    assert DEFAULT_PROFILE_DIRS == (FIXTURE_PROFILES, PACKAGED)
+
+
+@pytest.mark.parametrize("role", ROLES)
+def test_default_profiles_use_scpi_long_short_form_headers(role):
+    """SCPI-99 vol. 1 ch. 6: a header keyword is written with its short form in capitals
+    (FREQuency, CW), at most 12 characters long; common commands are '*' + 3 letters
+    (IEEE 488.2 §10)."""
+    for text in load_profile(f"scpi-{role}").commands.values():
+        for cmd in text.split(";"):
+            header = cmd.strip().lstrip(":").split(" ")[0].rstrip("?")
+            if header.startswith("*"):
+                assert re.fullmatch(r"\*[A-Z]{3}", header), header
+                continue
+            for kw in header.split(":"):
+                kw = re.sub(r"\{\w+\}|\d+$", "", kw)
+                assert re.fullmatch(r"[A-Z]{2,4}[a-z]*", kw) and len(kw) <= 12, (text, kw)
+
+
+def test_render_formats_numbers_in_base_units():
+    prof = load_profile("scpi-generator")
+    assert prof.render("set_frequency", output=1, frequency_hz=1e-3) == "SOURce1:FREQuency:CW 0.001"
+    assert (
+        prof.render("set_amplitude", output=2, amplitude=2.5e-5)
+        == "SOURce2:VOLTage:LEVel:IMMediate:AMPLitude 2.5E-5"
+    )
+
+
+def _write(tmp_path: Path, text: str, name: str = "p.toml") -> Path:
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "field", "words"),
+    [
+        ('set_function = "', 'set_shape = "', "commands.set_shape", "unknown operation"),
+        (
+            'output_off = "OUTPut{output}:STATe OFF"\n',
+            "",
+            "commands.output_off",
+            "required operation missing",
+        ),
+        ("{frequency_hz}", "{freq}", "commands.set_frequency", "placeholder {freq}"),
+        ("{frequency_hz}", "{frequency_hz:.3f}", "commands.set_frequency", "format"),
+        ("{frequency_hz}", "{frequency_hz", "commands.set_frequency", ""),
+        ("outputs = 1", "outputs = 1\nchannels = 2", "settings.channels", "unknown setting"),
+        (
+            'amplitude_unit = "vpp"',
+            'amplitude_unit = "dbm"',
+            "settings.amplitude_unit",
+            "must be one of",
+        ),
+        (
+            'calibrated_load = "high_z"',
+            "calibrated_load = -50",
+            "settings.calibrated_load",
+            "high_z",
+        ),
+        ('role = "generator"', 'role = "oscillator"', "profile.role", "unknown role"),
+        ("output_ohm = 50", "", "settings.output_ohm", "required setting missing"),
+        ("[commands]", "[command]", "command", "unknown section"),
+    ],
+)
+def test_profile_errors_name_file_field_and_fix(tmp_path, old, new, field, words):
+    assert old in GEN
+    p = _write(tmp_path, GEN.replace(old, new, 1))
+    with pytest.raises(ProfileError) as ei:
+        load_profile(p)
+    e = ei.value
+    assert e.path == str(p)
+    assert e.location is not None and e.location.startswith(field)
+    assert words in e.reason
+    assert e.hint or "line" in (e.location or "")
+
+
+def test_profile_error_gives_line_number(tmp_path):
+    p = _write(tmp_path, GEN.replace("{frequency_hz}", "{freq}"))
+    line = next(i for i, t in enumerate(p.read_text().splitlines(), 1) if "{freq}" in t)
+    with pytest.raises(ProfileError, match=rf"line {line}\)"):
+        load_profile(p)
+
+
+def test_malformed_toml_and_missing_profile(tmp_path):
+    p = _write(tmp_path, GEN.replace('name = "scpi-generator"', "name = scpi-generator"))
+    with pytest.raises(ProfileError, match="TOML syntax"):
+        load_profile(p)
+    with pytest.raises(ProfileError, match="no profile of that name"):
+        load_profile("no-such-profile")
+    with pytest.raises(ProfileError, match="expected 'scope'"):
+        load_profile("scpi-generator", role="scope")
+
+
+def test_scope_bits_must_fit_codes(tmp_path):
+    text = (
+        (FIXTURE_PROFILES / "scpi-scope.toml").read_text().replace("adc_bits = 8", "adc_bits = 12")
+    )
+    with pytest.raises(ProfileError, match="do not fit int8"):
+        load_profile(_write(tmp_path, text))
+    load_profile(_write(tmp_path, text.replace('"int8"', '"int16"'), "q.toml"))
+
+
+# --- station files -----------------------------------------------------------------------------
+
+STATION = (REPO / "fixtures" / "station-sim.toml").read_text()
+
+
+def test_example_station_loads():
+    st = load_station(REPO / "fixtures" / "station-sim.toml")
+    assert set(st.instruments) == set(ROLES)
+    assert st.visa_library == "@py" and st.timeout_ms == 5000
+    assert st.instruments["scope"].profile.role == "scope"
+    assert st.instruments["generator"].expect_idn == "ampbench-sim,SIG-1"
+
+
+@pytest.mark.parametrize(
+    "resource",
+    [
+        "TCPIP::127.0.0.1::5025::SOCKET",
+        "TCPIP0::10.0.0.2::inst0::INSTR",
+        "TCPIP::bench-gen::INSTR",
+        "TCPIP::10.0.0.3::hislip0::INSTR",
+        "USB0::0x1AB1::0x0588::SN123::INSTR",
+        "ASRL/dev/ttyUSB0::INSTR",
+        "ASRL1::INSTR",
+        "GPIB0::12::INSTR",
+        "GPIB::3::96::INSTR",
+    ],
+)
+def test_visa_resource_forms_accepted(resource):
+    """VISA resource-name forms (VPP-4.3, from memory for the clause): SOCKET, VXI-11
+    INSTR, HiSLIP, USBTMC, serial, GPIB."""
+    assert validate_resource(resource) == resource
+
+
+@pytest.mark.parametrize(
+    ("resource", "words"),
+    [
+        ("TCPIP::127.0.0.1::5025", "::SOCKET"),
+        ("TCPIP::h::0::SOCKET", "port"),
+        ("GPIB0::31::INSTR", "primary"),
+        ("127.0.0.1:5025", "not a VISA"),
+        ("", "VISA"),
+    ],
+)
+def test_bad_resources(resource, words):
+    with pytest.raises(StationFileError) as ei:
+        validate_resource(resource, path="st.toml", location="instrument.scope.resource")
+    assert words in str(ei.value) and "st.toml" in str(ei.value)
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "field"),
+    [
+        ("56002::SOCKET", "56002", "instrument.scope.resource"),
+        ('profile = "scpi-scope"', 'profile = "scpi-generator"', "instrument.scope.profile"),
+        ("[instrument.dmm]", "[instrument.meter]", "instrument.meter"),
+        ("retries = 1 ", "retries = -1 ", "station.retries"),
+        ("timeout_ms = 5000", "timeout_ms = 5000\nspeed = 1", "station.speed"),
+        ("56003::SOCKET", "56002::SOCKET", "instrument.switch.resource"),
+    ],
+)
+def test_station_errors(tmp_path, old, new, field):
+    assert old in STATION
+    p = _write(tmp_path, STATION.replace(old, new, 1), "station.toml")
+    with pytest.raises(StationFileError) as ei:
+        load_station(p)
+    assert ei.value.path == str(p)
+    assert ei.value.location == field
+
+
+def test_station_profile_by_relative_path(tmp_path):
+    (tmp_path / "profiles").mkdir()
+    (tmp_path / "profiles" / "my-gen.toml").write_text(
+        GEN.replace("output_ohm = 50", "output_ohm = 600")
+    )
+    p = _write(
+        tmp_path,
+        STATION.replace('profile = "scpi-generator"', 'profile = "profiles/my-gen.toml"'),
+        "station.toml",
+    )
+    assert load_station(p).instruments["generator"].profile.settings["output_ohm"] == 600.0
