@@ -196,3 +196,12 @@ class RunAborted(AmpbenchError, RuntimeError):
 
 class StoreError(AmpbenchError, OSError):
     """The results store cannot be opened or written."""
+
+
+class FaultSpecError(AmpbenchError, ValueError):
+    """A component fault or a setting for the simulated board is wrong (``R104:drift=1.3``)."""
+
+    def __init__(self, spec: str, reason: str, *, hint: str | None = None) -> None:
+        self.spec = spec
+        self.reason = reason
+        super().__init__(f"fault {spec!r}: {reason}", hint=hint)

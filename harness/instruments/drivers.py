@@ -119,6 +119,17 @@ class Generator(_Driver):
     def output_ohm(self) -> float:
         return float(self.settings["output_ohm"])
 
+    def _replay(self) -> None:
+        """Replay settings after a reconnect, but never switch an output back on.
+
+        A power-cycled generator comes back with its output off; turning it on again is the
+        sequencer's decision (it ramps up from a low level), not a side effect of a reconnect.
+        """
+        for key, (op, params) in list(self._state.items()):
+            if op == "output_on":
+                self._state[key] = ("output_off", params)
+        super()._replay()
+
     def configure_sine(self, frequency_hz: float, output: int = 1) -> None:
         o = self._output_no(output)
         if not frequency_hz > 0:
