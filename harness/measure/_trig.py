@@ -66,44 +66,59 @@ class UniformGrid:
                 q1 = q1 + (yt * self.tail_idx) @ e
         return q0, q1
 
-    def power_sums(self, omegas: np.ndarray) -> np.ndarray:
-        """S_p(Ω) = Σ_n n'^p e^{iΩn'} for p = 0, 1, 2; shape (3, len(omegas))."""
+    def power_sums(self, omegas: np.ndarray, p_max: int = 2) -> np.ndarray:
+        """S_p(Ω) = Σ_n n'^p e^{iΩn'} for p = 0..p_max; shape (p_max + 1, len(omegas))."""
         om = np.asarray(omegas, dtype=np.float64)
         e = np.exp(1j * np.outer(self.r, om))
-        r0 = e.sum(axis=0)
-        r1 = (self.r[:, None] * e).sum(axis=0)
-        r2 = (self.r[:, None] ** 2 * e).sum(axis=0)
         f = np.exp(1j * np.outer(self.a, om))
-        a = self.a[:, None]
-        f0, f1, f2 = f.sum(axis=0), (a * f).sum(axis=0), (a**2 * f).sum(axis=0)
-        out = np.empty((3, om.size), dtype=np.complex128)
-        out[0] = f0 * r0
-        out[1] = f1 * r0 + f0 * r1
-        out[2] = f2 * r0 + 2 * f1 * r1 + f0 * r2
+        r_col, a_col = self.r[:, None], self.a[:, None]
+        rs = [e.sum(axis=0)]
+        fs = [f.sum(axis=0)]
+        for _ in range(p_max):
+            e = r_col * e
+            f = a_col * f
+            rs.append(e.sum(axis=0))
+            fs.append(f.sum(axis=0))
+        out = np.empty((p_max + 1, om.size), dtype=np.complex128)
+        out[0] = fs[0] * rs[0]
+        if p_max >= 1:
+            out[1] = fs[1] * rs[0] + fs[0] * rs[1]
+        if p_max >= 2:
+            out[2] = fs[2] * rs[0] + 2 * fs[1] * rs[1] + fs[0] * rs[2]
         if self.rem:
             nt = self.tail_idx[:, None]
             et = np.exp(1j * nt * om)
-            out[0] += et.sum(axis=0)
-            out[1] += (nt * et).sum(axis=0)
-            out[2] += (nt**2 * et).sum(axis=0)
+            for p in range(p_max + 1):
+                out[p] += et.sum(axis=0)
+                et = nt * et
         return out
 
     def evaluate(
         self, coef: np.ndarray, omegas: np.ndarray, dc: float, dtype: type = np.float64
     ) -> np.ndarray:
-        """dc + Re Σ_k coef_k e^{iω_k n'} at every sample, as one matrix product."""
+        """dc + Re Σ_k coef_k e^{iω_k n'} at every sample, as one matrix product.
+
+        Per block: Re(F_m·G_r) = [Re F, −Im F, 1]·[Re G; Im G; dc], written in place.
+        """
         om = np.asarray(omegas, dtype=np.float64)
         coef = np.asarray(coef, dtype=np.complex128)
         out = np.empty(self.n, dtype=dtype)
         ge = coef[None, :] * np.exp(1j * np.outer(self.r, om))  # b x K
         f = np.exp(1j * np.outer(self.a, om))  # m x K
-        main = f.real.astype(dtype) @ ge.real.T.astype(dtype) - f.imag.astype(
-            dtype
-        ) @ ge.imag.T.astype(dtype)
+        left = np.concatenate([f.real, -f.imag, np.ones((self.m, 1))], axis=1).astype(dtype)
+        right = np.concatenate([ge.real.T, ge.imag.T, np.full((1, self.b), dc)]).astype(dtype)
         cut = self.m * self.b
-        out[:cut] = main.reshape(-1)
-        out[:cut] += dc
+        np.matmul(left, right, out=out[:cut].reshape(self.m, self.b))
         if self.rem:
             et = np.exp(1j * np.outer(self.tail_idx, om))
             out[cut:] = dc + (et @ coef).real
         return out
+
+    def dirichlet(self, omegas: np.ndarray) -> np.ndarray:
+        """S_0(Ω) = Σ_n e^{iΩn'} = sin(NΩ/2)/sin(Ω/2) in closed form (real: n' is centred),
+        for 0 <= Ω < 2π."""
+        om = np.asarray(omegas, dtype=np.float64)
+        den = np.sin(om / 2)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            d = np.where(np.abs(den) > 1e-300, np.sin(self.n * om / 2) / den, float(self.n))
+        return d.astype(np.complex128)
