@@ -1,0 +1,151 @@
+"""Measurement names: the run layer's stored names and the diagnosis's own keys.
+
+Why a module of its own: the sequencer (``harness.run.sequence``) decides what a stored
+measurement is called; the diagnosis reads those rows.  When a stored name changes, the fix
+is one line in :data:`STORE_NAMES` (or the prefix constants), nowhere else.
+
+Diagnosis keys (the keys of the ``measurements`` mapping :func:`rank_faults` takes):
+
+==============================  =========================================================
+key                             meaning (value, U = expanded uncertainty, k = 2)
+==============================  =========================================================
+``<ch>.gain_db``                gain at the board's test frequency and nominal level, dB
+``<ch>.thd_percent``            THD at the nominal level, %
+``<ch>.thd_floor_percent``      the bench's THD floor for that record (no U)
+``<ch>.clip_input_vrms``        input level where the clip criterion is met, V rms
+``<ch>.clip_above_vrms``        criterion not met up to this level (threshold is above)
+``<ch>.clip_below_vrms``        criterion already met at this level (threshold is below)
+``<ch>.clip_side``              ``"positive"`` / ``"negative"`` output half-cycle (no U)
+``<ch>.gain_db@<f>``            gain at extra frequency ``<f>`` Hz, dB
+``<ch>.<stage>.<quantity>``     DC test point (collector_v, emitter_v, base_v, output_v), V
+``supply_current_a``            quiescent current of the whole board, A
+==============================  =========================================================
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Iterable, Mapping
+from typing import Any, Protocol
+
+#: Stored measurement name (harness.run.sequence) -> diagnosis quantity.
+STORE_NAMES: dict[str, str] = {
+    "gain": "gain_db",
+    "thd": "thd_percent",
+    "clip_input": "clip_input_vrms",
+    "clip_side": "clip_side",
+    "supply_current": "supply_current_a",
+}
+#: Stored DC test points are named ``dc.<stage>.<quantity>``.
+STORE_DC_PREFIX = "dc."
+#: Stored extra-frequency gains are named ``gain@<f>Hz``.
+STORE_FREQ_PREFIX = "gain@"
+STORE_FREQ_SUFFIX = "Hz"
+#: Board-wide quantities (stored with an empty channel).
+BOARD_QUANTITIES = frozenset({"supply_current_a"})
+
+#: Diagnosis quantities scored on a log scale (dB): their spread is relative.
+LOG_QUANTITIES = frozenset({"gain_db", "thd_percent", "clip_input_vrms"})
+
+
+class RowLike(Protocol):
+    """What :func:`from_rows` needs of a stored measurement row."""
+
+    channel: str
+    name: str
+    value: float | None
+    uncertainty: float | None
+    detail_json: str | None
+
+
+def key(channel: str, quantity: str) -> str:
+    """The diagnosis key of ``quantity`` on ``channel`` (board-wide ones have no prefix)."""
+    return quantity if not channel or quantity in BOARD_QUANTITIES else f"{channel}.{quantity}"
+
+
+def split_key(name: str) -> tuple[str, str]:
+    """``"A.gain.collector_v"`` -> ``("A", "gain.collector_v")``; board-wide -> ``("", name)``."""
+    if name in BOARD_QUANTITIES:
+        return "", name
+    channel, _, quantity = name.partition(".")
+    return channel, quantity
+
+
+def freq_quantity(frequency_hz: float) -> str:
+    return f"gain_db@{frequency_hz:g}"
+
+
+def _detail(row: RowLike) -> dict[str, Any]:
+    if not row.detail_json:
+        return {}
+    try:
+        doc = json.loads(row.detail_json)
+    except (TypeError, ValueError):
+        return {}
+    return doc if isinstance(doc, dict) else {}
+
+
+def _finite(x: Any) -> float | None:
+    if x is None or isinstance(x, bool):
+        return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def from_rows(rows: Iterable[RowLike]) -> dict[str, tuple[Any, float | None]]:
+    """The diagnosis measurements of one run from its stored rows.
+
+    Later rows win (a retaken measurement replaces the earlier one); rows the diagnosis does
+    not use (phase, precheck notes) are skipped.  A clipping threshold stored without a value
+    becomes a bound when the row's detail says which way the search ended.
+    """
+    out: dict[str, tuple[Any, float | None]] = {}
+    for r in rows:
+        d = _detail(r)
+        u = _finite(r.uncertainty)
+        value = _finite(r.value)
+        name = r.name
+        if name.startswith(STORE_DC_PREFIX):
+            if value is not None:
+                out[key(r.channel, name[len(STORE_DC_PREFIX) :])] = (value, u)
+            continue
+        if name.startswith(STORE_FREQ_PREFIX) and name.endswith(STORE_FREQ_SUFFIX):
+            f = _finite(d.get("frequency_hz")) or _finite(
+                name[len(STORE_FREQ_PREFIX) : -len(STORE_FREQ_SUFFIX)]
+            )
+            if value is not None and f is not None:
+                nominal_f = _finite(name[len(STORE_FREQ_PREFIX) : -len(STORE_FREQ_SUFFIX)]) or f
+                out[key(r.channel, freq_quantity(nominal_f))] = (value, u)
+            continue
+        quantity = STORE_NAMES.get(name)
+        if quantity is None:
+            continue
+        if quantity == "clip_side":
+            side = d.get("side")
+            if side in ("positive", "negative"):
+                out[key(r.channel, quantity)] = (side, None)
+            continue
+        if quantity == "clip_input_vrms" and value is None:
+            above = _finite(d.get("highest_measured_vrms"))
+            below = _finite(d.get("lowest_measured_vrms"))
+            if above is not None:
+                out[key(r.channel, "clip_above_vrms")] = (above, u)
+            elif below is not None:
+                out[key(r.channel, "clip_below_vrms")] = (below, u)
+            continue
+        if value is None:
+            continue
+        out[key(r.channel, quantity)] = (value, u)
+        if quantity == "thd_percent":
+            floor = _finite(d.get("floor_percent"))
+            if floor is not None:
+                out[key(r.channel, "thd_floor_percent")] = (floor, None)
+    return out
+
+
+def channels_measured(measurements: Mapping[str, Any]) -> set[str]:
+    return {c for c, _ in map(split_key, measurements) if c}
