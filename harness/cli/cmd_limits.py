@@ -1,0 +1,183 @@
+"""``ampbench limits BOARD.toml``: the design limits of a board, from its model and tolerances.
+
+Prints one table per channel (nominal, low, high of gain, clipping threshold, THD at the
+nominal level, supply current, low corner; which stage clips first and on which half-cycle of
+the output; polarity) or, with ``--json``, the full limits with their provenance.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+
+from harness.files import load_board
+from harness.model import compute_limits, design_channel
+from harness.model.limits import BoardLimits, Limit
+
+#: 0 dBu is the voltage that dissipates 1 mW in 600 ohm: sqrt(0.6) = 0.7746 V rms.
+DBU_REF_VRMS = math.sqrt(0.6)
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    p = subparsers.add_parser(
+        "limits",
+        help="compute a board's design limits (Monte Carlo over tolerances)",
+        description="Compute gain, clipping-threshold and THD limits of every channel of a board "
+        "from its stage model and component tolerances.",
+    )
+    p.add_argument("board", metavar="BOARD.toml", help="board description (see limits/)")
+    p.add_argument(
+        "--samples",
+        type=_count(100),
+        default=None,
+        help="Monte Carlo boards (default: the board's [limits] samples)",
+    )
+    p.add_argument(
+        "--seed",
+        type=_count(0),
+        default=None,
+        help="random seed (default: the board's [limits] seed)",
+    )
+    p.add_argument("--json", action="store_true", help="print the limits as JSON")
+    p.set_defaults(func=run)
+
+
+def _count(minimum: int):
+    """argparse type: a whole number of at least ``minimum`` (usage error, status 2, if not)."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"must be at least {minimum}")
+        return value
+
+    return parse
+
+
+def _dbu(vrms: float | None) -> str:
+    if vrms is None or not vrms > 0:
+        return "-"
+    return f"{20.0 * math.log10(vrms / DBU_REF_VRMS):+.2f}"
+
+
+def _f(x: float | None, fmt: str) -> str:
+    return "-" if x is None or not math.isfinite(x) else format(x, fmt)
+
+
+_WC_KEYS = {
+    "gain": "gain_db",
+    "clipping threshold": "clip_input_vrms",
+    "swing-limited clipping threshold": "swing_clip_input_vrms",
+    "THD at nominal level": "thd_percent",
+    "supply current": "supply_current_a",
+    "low -3 dB corner": "low_corner_hz",
+}
+
+
+def _row(table, ch, lim: Limit, fmt: str, unit: str, scale: float = 1.0) -> None:
+    """One quantity: nominal, Monte Carlo low/high and the worst-case corner values."""
+
+    def s(x: float | None) -> str:
+        return _f(None if x is None else x * scale, fmt)
+
+    wc = ch.worst_case.get(_WC_KEYS.get(lim.name, ""))
+    lo, hi = (s(wc.low), s(wc.high)) if wc is not None else ("-", "-")
+    table.add_row(lim.name, s(lim.nominal), s(lim.low), s(lim.high), lo, hi, unit)
+
+
+def run(args: argparse.Namespace) -> int:
+    board = load_board(args.board)
+    limits = compute_limits(board, samples=args.samples, seed=args.seed)
+    if args.json:
+        doc = limits.to_dict()
+        doc["digest"] = limits.digest
+        doc["board"]["file"] = board.source
+        json.dump(doc, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write("\n")
+        return 0
+    _print_tables(board, limits)
+    return 0
+
+
+def _print_tables(board, limits: BoardLimits) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    prov = limits.provenance
+    console.print(
+        f"[bold]{limits.board}[/bold]  {limits.part_number} rev {limits.revision}  ({board.source})"
+    )
+    console.print(
+        f"Monte Carlo: {prov.samples} boards, coverage {prov.coverage:g}, seed "
+        f"{prov.seed}; clipping criterion {prov.criterion}; "
+        f"nominal input {board.conditions.nominal_input_vrms:g} V rms at "
+        f"{board.conditions.frequency_hz:g} Hz"
+    )
+    for name, ch in limits.channels.items():
+        design = design_channel(board, name)
+        table = Table(
+            title=f"channel {name}  ({'inverting' if ch.inverting else 'non-inverting'}"
+            f", phase {ch.phase_deg:g}°)",
+            title_justify="left",
+        )
+        for col in ("quantity", "nominal", "low", "high", "corner low", "corner high", "unit"):
+            table.add_column(col, justify="left" if col in ("quantity", "unit") else "right")
+
+        def row(lim: Limit, fmt: str, unit: str, scale: float = 1.0, _t=table, _c=ch) -> None:
+            _row(_t, _c, lim, fmt, unit, scale)
+
+        row(ch.gain_db, ".2f", "dB")
+        row(ch.clip_input_vrms, ".4f", "V rms")
+        c = ch.clip_input_vrms
+        table.add_row("  (as dBu)", _dbu(c.nominal), _dbu(c.low), _dbu(c.high), "", "", "dBu")
+        row(ch.swing_clip_input_vrms, ".4f", "V rms")
+        row(ch.thd_percent, ".4f", "%")
+        row(ch.supply_current_a, ".3f", "mA", 1e3)
+        row(ch.low_corner_hz, ".2f", "Hz")
+        console.print(table)
+        side = ch.clip_side_fraction
+        console.print(
+            f"  clips first: stage [bold]{ch.clip_stage}[/bold], {ch.clip_side} half-cycle of the"
+            f" output (positive {side['positive']:.1%} / negative {side['negative']:.1%} of "
+            f"boards); output at nominal {ch.output_vrms_nominal:.4g} V rms; wait "
+            f"{ch.settle_time_s:.3g} s after a level change; workable boards "
+            f"{ch.workable_fraction:.2%}"
+        )
+        for s in design.stages:
+            if s.vc_v is not None:
+                console.print(
+                    f"  {s.name}: I_C {s.ic_a * 1e3:.3f} mA, V_B {s.vb_v:.3f} V, "
+                    f"V_E {s.ve_v:.3f} V, V_C {s.vc_v:.3f} V, gain {s.gain:.3f}, "
+                    f"swing +{s.swing_pos_v:.2f}/-{s.swing_neg_v:.2f} V"
+                )
+            else:
+                console.print(
+                    f"  {s.name}: gain {s.gain:.3f}, swing +{s.swing_pos_v:.2f}/"
+                    f"-{s.swing_neg_v:.2f} V"
+                )
+        if ch.worst_case:
+            missed = [k for k, w in ch.worst_case.items() if not w.covered]
+            console.print(
+                "  worst-case corners: "
+                + (
+                    "inside the Monte Carlo limits"
+                    if not missed
+                    else "outside the Monte Carlo limits for " + ", ".join(missed)
+                )
+            )
+    console.print(
+        f"board supply current {limits.supply_current_a.nominal * 1e3:.3f} mA "
+        f"({_f(limits.supply_current_a.low and limits.supply_current_a.low * 1e3, '.3f')}"
+        f" .. {_f(limits.supply_current_a.high and limits.supply_current_a.high * 1e3, '.3f')}"
+        f" mA)"
+    )
+    console.print(
+        f"limits digest {limits.digest}  (board file sha256 {prov.board_digest[:16]}…, "
+        f"ampbench {prov.software_version})"
+    )

@@ -1,0 +1,894 @@
+"""The vectorised stage physics: one set of formulas for the nominal design and the Monte Carlo.
+
+Every function takes parameter arrays of shape ``(samples,)`` (see :mod:`harness.model.params`)
+and returns arrays of the same shape; the nominal design is the case ``samples == 1``.  Nothing
+here reads files or prints.
+
+What is modelled (midband, coupling and bypass capacitors as shorts for the signal):
+
+* DC bias of each BJT stage with base current: Thevenin divider ``V_TH, R_TH``;
+  ``V_BE = V_T ln(1 + I_C/I_S)`` solved together with
+  ``I_B = (V_TH - V_BE)/(R_TH + (beta+1) R_E)`` by Newton's method.  A DC-coupled follower's
+  base is the previous collector, and its base current is drawn through that collector resistor.
+* Small-signal hybrid-pi gains, each stage loaded by the next stage's input impedance and the
+  last by the board load; op-amp stages with finite open-loop gain.
+* Output swing of each stage in both directions (saturation, cutoff, rails, current limit).
+* A large-signal solution over one period (exponential junction with emitter degeneration,
+  implicit in the emitter current, solved by vectorised Newton; hard limits at saturation and at
+  the rails), giving THD and the input level where THD reaches the board's criterion.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from harness.model.board import (
+    Board,
+    Channel,
+    CommonEmitter,
+    EmitterFollower,
+    OpAmpInverting,
+    OpAmpNonInverting,
+)
+
+Arrays = Mapping[str, np.ndarray]
+
+#: Below this quiescent collector current a transistor counts as cut off at rest.
+CUTOFF_A = 1e-6
+#: Harmonics summed into THD (2..10, the same span ngspice's ``fourier`` and the analyser use).
+THD_HARMONICS = 10
+#: Input impedance assumed for an op-amp input with no bias resistor (CMOS/JFET class).
+OPAMP_INPUT_OHM = 1e12
+
+
+def parallel(*rs: np.ndarray | float) -> np.ndarray:
+    """Parallel combination; an infinite resistance drops out, a zero one shorts."""
+    with np.errstate(divide="ignore"):
+        g = sum(np.where(np.asarray(r) == 0, np.inf, 1.0 / np.asarray(r, dtype=float)) for r in rs)
+        return np.asarray(1.0 / g, dtype=float)
+
+
+def solve_junction(
+    v_src: np.ndarray, k_ohm: np.ndarray, i_s: np.ndarray, v_t: np.ndarray, iterations: int = 60
+) -> np.ndarray:
+    """Solve ``v + k·I_S·(exp(v/V_T) - 1) = v_src`` for the junction voltage ``v``.
+
+    This is the bias loop of every BJT stage: ``k`` is the effective resistance the collector
+    current sees in the base-emitter loop.  The left side is convex and increasing, so Newton
+    started to the right of the root (at the V_BE that would carry the largest possible current
+    ``v_src/k``) falls monotonically onto it.
+    """
+    i_max = np.maximum(v_src, 0.0) / k_ohm
+    v = v_t * np.log1p(i_max / i_s)
+    for _ in range(iterations):
+        ex = np.exp(np.minimum(v / v_t, 700.0))
+        f = v + k_ohm * i_s * (ex - 1.0) - v_src
+        step = f / (1.0 + k_ohm * i_s * ex / v_t)
+        v = v - step
+        if np.all(np.abs(step) < 1e-13):
+            break
+    return v
+
+
+# --- results -----------------------------------------------------------------------------------
+
+
+@dataclass
+class StageArrays:
+    """One stage's bias, small-signal and swing figures, each an array over samples."""
+
+    index: int
+    name: str
+    kind: str
+    inverting: bool
+    ic_a: np.ndarray
+    ib_a: np.ndarray
+    ie_a: np.ndarray
+    vb_v: np.ndarray
+    ve_v: np.ndarray
+    vc_v: np.ndarray
+    vout_dc_v: np.ndarray
+    supply_a: np.ndarray
+    r_next: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    gain: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    input_ohm: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    output_ohm: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    swing_pos_v: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    swing_neg_v: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    # large-signal coefficients
+    r_ac: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    r_e_ac: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    vce_v: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    vce_sat_v: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    beta: np.ndarray = field(default_factory=lambda: np.zeros(1))
+
+
+@dataclass
+class Problem:
+    """A reason the circuit cannot work, with the samples it applies to."""
+
+    location: str
+    reason: str
+    hint: str
+    mask: np.ndarray
+
+
+@dataclass
+class ChannelArrays:
+    """A channel's figures over samples (see :func:`evaluate_channel`)."""
+
+    channel: str
+    n: int
+    stages: list[StageArrays]
+    v_t: np.ndarray
+    gain: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    gain_midband: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    input_ohm: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    output_ohm: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    clip_input_vpk: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    clip_stage: np.ndarray = field(default_factory=lambda: np.zeros(1, int))
+    clip_positive: np.ndarray = field(default_factory=lambda: np.zeros(1, bool))
+    supply_current_a: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    low_corner_hz: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    thd_percent: np.ndarray | None = None
+    thd_clip_input_vpk: np.ndarray | None = None
+    problems: list[Problem] = field(default_factory=list)
+
+    @property
+    def inverting(self) -> bool:
+        return sum(s.inverting for s in self.stages) % 2 == 1
+
+    @property
+    def workable(self) -> np.ndarray:
+        """Samples whose bias and drive are sound (no :class:`Problem` applies)."""
+        ok = np.ones(self.n, dtype=bool)
+        for p in self.problems:
+            ok &= ~p.mask
+        return ok
+
+
+def _b(x: np.ndarray, n: int) -> np.ndarray:
+    a = np.asarray(x, dtype=float)
+    return a if a.shape == (n,) else np.broadcast_to(a, (n,)).copy()
+
+
+# --- DC ----------------------------------------------------------------------------------------
+
+
+def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -> list[StageArrays]:
+    vcc = _b(p["supply.positive_v"], n)
+    v_t = _b(p["v_t"], n)
+    r_load = _b(p["load_ohm"], n)
+    zero = np.zeros(n)
+    out: list[StageArrays] = []
+    last = len(ch.stages) - 1
+    for j, st in enumerate(ch.stages):
+        nm = st.name
+        loc = f"channel.{ch.name}.stage[{j}]({nm})"
+
+        def g(key: str, default: float | None = None, _nm: str = nm) -> np.ndarray:
+            k = f"{_nm}.{key}"
+            if k in p:
+                return _b(p[k], n)
+            if default is None:
+                raise KeyError(k)
+            return np.full(n, default)
+
+        # a load without c_out on the last stage carries DC too
+        dc_load = j == last and st.c_out is None
+        if isinstance(st, CommonEmitter | EmitterFollower):
+            beta, i_s = g("beta"), g("is_a")
+            if (
+                j == 0
+                and st.c_in is None
+                and not (isinstance(st, EmitterFollower) and st.dc_coupled)
+            ):
+                problems.append(
+                    Problem(
+                        f"{loc}.c_in",
+                        "no input coupling capacitor: the source would short the base bias",
+                        "add c_in",
+                        np.ones(n, bool),
+                    )
+                )
+            elif (
+                j > 0
+                and st.c_in is None
+                and ch.stages[j - 1].c_out is None
+                and not (isinstance(st, EmitterFollower) and st.dc_coupled)
+            ):
+                problems.append(
+                    Problem(
+                        f"{loc}.c_in",
+                        "no coupling capacitor from the previous "
+                        "stage: its DC level would upset this stage's bias",
+                        "add c_in here or c_out on the previous stage",
+                        np.ones(n, bool),
+                    )
+                )
+        if isinstance(st, CommonEmitter):
+            r1, r2, rc, re = g("r1"), g("r2"), g("rc"), g("re")
+            re_dc = re + g("re_bypassed", 0.0)
+            v_th = vcc * r2 / (r1 + r2)
+            r_th = r1 * r2 / (r1 + r2)
+            k = r_th / beta + re_dc * (beta + 1.0) / beta
+            vbe = solve_junction(v_th, k, i_s, v_t)
+            ic = i_s * np.expm1(vbe / v_t)
+            ib = ic / beta
+            ie = ic + ib
+            ve = ie * re_dc
+            vb = ve + vbe
+            if dc_load:
+                vcc_eff, rc_eff = vcc * r_load / (rc + r_load), parallel(rc, r_load)
+            else:
+                vcc_eff, rc_eff = vcc, rc
+            vc = vcc_eff - ic * rc_eff
+            i_r1 = (vcc - vb) / r1
+            s = StageArrays(
+                j,
+                nm,
+                st.kind,
+                True,
+                ic,
+                ib,
+                ie,
+                vb,
+                ve,
+                vc,
+                vc,
+                supply_a=i_r1 + (vcc - vc) / rc,
+                beta=beta,
+            )
+            s.vce_sat_v = g("vce_sat_v")
+            s.r_ac = rc_eff  # Thevenin resistance of the collector node (DC)
+            s.r_e_ac = vcc_eff  # stash: Thevenin voltage, read by a DC-coupled follower
+        elif isinstance(st, EmitterFollower):
+            re = g("re")
+            re_dc = parallel(re, r_load) if dc_load else re
+            if st.dc_coupled:
+                prev = out[-1]
+                v_open = prev.r_e_ac - prev.ic_a * prev.r_ac
+                r_src = prev.r_ac
+            else:
+                r1, r2 = g("r1"), g("r2")
+                v_open = vcc * r2 / (r1 + r2)
+                r_src = r1 * r2 / (r1 + r2)
+            k = r_src / beta + re_dc * (beta + 1.0) / beta
+            vbe = solve_junction(v_open, k, i_s, v_t)
+            ic = i_s * np.expm1(vbe / v_t)
+            ib = ic / beta
+            ie = ic + ib
+            ve = ie * re_dc
+            vb = ve + vbe
+            if st.dc_coupled:
+                prev = out[-1]
+                prev.vc_v = vb
+                prev.vout_dc_v = vb
+                # the collector resistor now carries I_C1 + I_B2: recompute that stage's share
+                rc_prev = g("rc", _nm=prev.name)
+                i_r1_prev = (vcc - prev.vb_v) / g("r1", _nm=prev.name)
+                prev.supply_a = i_r1_prev + (vcc - vb) / rc_prev
+                supply = ic
+            else:
+                supply = (vcc - vb) / g("r1") + ic
+            s = StageArrays(
+                j,
+                nm,
+                st.kind,
+                False,
+                ic,
+                ib,
+                ie,
+                vb,
+                ve,
+                vcc.copy(),
+                ve,
+                supply_a=supply,
+                beta=beta,
+            )
+            s.vce_sat_v = g("vce_sat_v")
+        else:
+            vee = _b(p.get("supply.negative_v", zero), n)
+            head = g("headroom_v")
+            s = StageArrays(
+                j,
+                nm,
+                st.kind,
+                st.inverting,
+                zero,
+                zero,
+                zero,
+                zero,
+                zero,
+                zero,
+                zero.copy(),
+                supply_a=g("quiescent_a"),
+            )
+            if np.any(vcc - head <= 0) or np.any(-vee - head <= 0):
+                problems.append(
+                    Problem(
+                        f"{loc}.opamp",
+                        "the op-amp's headroom leaves no output swing on these rails",
+                        "use a rail-to-rail op-amp or higher supply rails",
+                        (vcc - head <= 0) | (-vee - head <= 0),
+                    )
+                )
+            if (
+                j > 0
+                and st.c_in is None
+                and ch.stages[j - 1].c_out is None
+                and isinstance(ch.stages[j - 1], CommonEmitter | EmitterFollower)
+            ):
+                problems.append(
+                    Problem(
+                        f"{loc}.c_in",
+                        "no coupling capacitor from the BJT "
+                        "stage before: its DC level would be amplified",
+                        "add c_in",
+                        np.ones(n, bool),
+                    )
+                )
+        out.append(s)
+
+    # active-region checks at rest (after the followers have loaded the collectors)
+    for j, (st, s) in enumerate(zip(ch.stages, out, strict=True)):
+        loc = f"channel.{ch.name}.stage[{j}]({st.name})"
+        if isinstance(st, CommonEmitter):
+            s.vce_v = s.vc_v - s.ve_v
+            cut = s.ic_a < CUTOFF_A
+            if np.any(cut):
+                problems.append(
+                    Problem(
+                        f"{loc}.r2",
+                        "transistor cut off at rest: the divider "
+                        f"r1/r2 leaves I_C = {float(s.ic_a[cut][0]):.3g} A",
+                        "raise r2 or lower r1",
+                        cut,
+                    )
+                )
+            sat = (s.vce_v <= s.vce_sat_v) & ~cut
+            if np.any(sat):
+                problems.append(
+                    Problem(
+                        f"{loc}.rc",
+                        "transistor saturated at rest: V_CE = "
+                        f"{float(s.vce_v[sat][0]):.3g} V is at or below "
+                        f"V_CE(sat) = {float(s.vce_sat_v[sat][0]):.3g} V",
+                        "lower rc or the emitter resistance, or raise r1",
+                        sat,
+                    )
+                )
+        elif isinstance(st, EmitterFollower):
+            s.vce_v = vcc - s.ve_v
+            cut = s.ic_a < CUTOFF_A
+            if np.any(cut):
+                problems.append(
+                    Problem(
+                        f"{loc}.re",
+                        f"follower cut off at rest: I_E = {float(s.ie_a[cut][0]):.3g} A",
+                        "check the bias of its base",
+                        cut,
+                    )
+                )
+            sat = (s.vce_v <= s.vce_sat_v) & ~cut
+            if np.any(sat):
+                problems.append(
+                    Problem(
+                        f"{loc}.re",
+                        "follower saturated at rest: its emitter "
+                        f"sits at {float(s.ve_v[sat][0]):.3g} V, within "
+                        "V_CE(sat) of the supply",
+                        "lower its base voltage",
+                        sat,
+                    )
+                )
+    return out
+
+
+# --- small signal ------------------------------------------------------------------------------
+
+
+def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> None:
+    v_t = _b(p["v_t"], n)
+    r_next = _b(p["load_ohm"], n)
+    # backward: each stage's load is the next stage's input impedance
+    for st, s in zip(reversed(ch.stages), reversed(stages), strict=True):
+        nm = st.name
+
+        def g(key: str, default: float | None = None, _nm: str = nm) -> np.ndarray:
+            k = f"{_nm}.{key}"
+            if k in p:
+                return _b(p[k], n)
+            if default is None:
+                raise KeyError(k)
+            return np.full(n, default)
+
+        s.r_next = r_next
+        if isinstance(st, CommonEmitter):
+            r_pi = s.beta * v_t / s.ic_a
+            vaf = g("vaf_v", np.inf)
+            r_o = (vaf + s.vce_v) / s.ic_a
+            rc = g("rc")
+            r_ac = parallel(rc, r_next, r_o)
+            re = g("re")
+            z_base = r_pi + (s.beta + 1.0) * re
+            s.gain = -s.beta * r_ac / z_base
+            r1, r2 = g("r1"), g("r2")
+            s.input_ohm = parallel(r1, r2, z_base)
+            s.output_ohm = parallel(rc, r_o)
+            s.r_ac = r_ac
+            s.r_e_ac = re
+        elif isinstance(st, EmitterFollower):
+            r_pi = s.beta * v_t / s.ic_a
+            vaf = g("vaf_v", np.inf)
+            r_o = (vaf + s.vce_v) / s.ic_a
+            r_e_ac = parallel(g("re"), r_next, r_o)
+            z_base = r_pi + (s.beta + 1.0) * r_e_ac
+            s.gain = (s.beta + 1.0) * r_e_ac / z_base
+            s.input_ohm = z_base if st.dc_coupled else parallel(g("r1"), g("r2"), z_base)
+            s.r_ac = r_e_ac
+            s.r_e_ac = r_e_ac
+        elif isinstance(st, OpAmpInverting):
+            a0 = g("open_loop_gain")
+            ideal = g("r_f") / g("r_in")
+            s.gain = -ideal / (1.0 + (1.0 + ideal) / a0)
+            s.input_ohm = g("r_in") + g("r_f") / (1.0 + a0)
+            s.output_ohm = np.zeros(n)
+            s.r_ac = parallel(r_next, g("r_f"))
+        elif isinstance(st, OpAmpNonInverting):
+            a0 = g("open_loop_gain")
+            noise_gain = 1.0 + g("r_f") / g("r_g")
+            s.gain = noise_gain / (1.0 + noise_gain / a0)
+            s.input_ohm = g("r_bias") if st.r_bias is not None else np.full(n, OPAMP_INPUT_OHM)
+            s.output_ohm = np.zeros(n)
+            s.r_ac = parallel(r_next, g("r_f") + g("r_g"))
+        r_next = s.input_ohm
+    # forward: output impedances that depend on the source (followers)
+    r_src = _b(p["source_ohm"], n)
+    for st, s in zip(ch.stages, stages, strict=True):
+        if isinstance(st, EmitterFollower):
+            r_pi = s.beta * v_t / s.ic_a
+            r_b = (
+                r_src
+                if st.dc_coupled
+                else parallel(r_src, _b(p[f"{st.name}.r1"], n), _b(p[f"{st.name}.r2"], n))
+            )
+            s.output_ohm = parallel(_b(p[f"{st.name}.re"], n), (r_pi + r_b) / (s.beta + 1.0))
+        r_src = s.output_ohm
+
+
+# --- swing -------------------------------------------------------------------------------------
+
+
+def _swing(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> None:
+    vcc = _b(p["supply.positive_v"], n)
+    vee = _b(p.get("supply.negative_v", np.zeros(n)), n)
+    for st, s in zip(ch.stages, stages, strict=True):
+        if isinstance(st, CommonEmitter):
+            # cutoff: collector rises by I_CQ·R_ac; saturation: the emitter rises with the drive
+            r_e_eff = s.r_e_ac * (s.beta + 1.0) / s.beta
+            s.swing_pos_v = s.ic_a * s.r_ac
+            s.swing_neg_v = np.maximum(s.vce_v - s.vce_sat_v, 0.0) * s.r_ac / (s.r_ac + r_e_eff)
+        elif isinstance(st, EmitterFollower):
+            s.swing_pos_v = np.maximum(s.vce_v - s.vce_sat_v, 0.0)
+            s.swing_neg_v = s.ie_a * s.r_e_ac
+        else:
+            head = _b(p[f"{st.name}.headroom_v"], n)
+            i_lim = _b(p[f"{st.name}.output_current_a"], n) * s.r_ac
+            s.swing_pos_v = np.maximum(np.minimum(vcc - head, i_lim), 0.0)
+            s.swing_neg_v = np.maximum(np.minimum(-vee - head, i_lim), 0.0)
+
+
+# --- frequency response at the low end ---------------------------------------------------------
+
+
+def _low_end(
+    ch: Channel, p: Arrays, stages: list[StageArrays], n: int, f_test: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Low-frequency factor |H(f_test)|, the -3 dB low corner and the longest time constant.
+
+    Each coupling capacitor is a first-order high-pass with the resistance it sees; an emitter
+    bypass and an op-amp C_G are shelves (pole and zero).  The product is evaluated exactly and
+    its -3 dB point found by bisection on log f.
+    """
+    v_t = _b(p["v_t"], n)
+    highpass: list[np.ndarray] = []  # pole frequencies of pure high-passes
+    shelves: list[tuple[np.ndarray, np.ndarray]] = []  # (zero, pole) frequencies
+    taus: list[np.ndarray] = []
+    r_src = _b(p["source_ohm"], n)
+    two_pi = 2.0 * np.pi
+    for st, s in zip(ch.stages, stages, strict=True):
+        nm = st.name
+        if st.c_in is not None:
+            c = _b(p[f"{nm}.c_in"], n)
+            r = r_src + s.input_ohm
+            highpass.append(1.0 / (two_pi * c * r))
+            taus.append(c * r)
+            # bias recovery after a level step: C_in recharges through the bias network
+            if isinstance(st, CommonEmitter) or (
+                isinstance(st, EmitterFollower) and not st.dc_coupled
+            ):
+                r_th = parallel(_b(p[f"{nm}.r1"], n), _b(p[f"{nm}.r2"], n))
+                taus.append(c * (r_src + r_th))
+            elif isinstance(st, OpAmpNonInverting) and st.r_bias is not None:
+                taus.append(c * (r_src + _b(p[f"{nm}.r_bias"], n)))
+        if isinstance(st, CommonEmitter) and st.c_e is not None and st.re_bypassed is not None:
+            c = _b(p[f"{nm}.c_e"], n)
+            r_byp = _b(p[f"{nm}.re_bypassed"], n)
+            r_b = parallel(r_src, _b(p[f"{nm}.r1"], n), _b(p[f"{nm}.r2"], n))
+            r_look = _b(p[f"{nm}.re"], n) + (s.beta * v_t / s.ic_a + r_b) / (s.beta + 1.0)
+            r_seen = parallel(r_byp, r_look)
+            shelves.append((1.0 / (two_pi * c * r_byp), 1.0 / (two_pi * c * r_seen)))
+            taus.append(c * r_seen)
+        if isinstance(st, OpAmpNonInverting) and st.c_g is not None:
+            c = _b(p[f"{nm}.c_g"], n)
+            r_g, r_f = _b(p[f"{nm}.r_g"], n), _b(p[f"{nm}.r_f"], n)
+            shelves.append((1.0 / (two_pi * c * (r_g + r_f)), 1.0 / (two_pi * c * r_g)))
+            taus.append(c * r_g)
+        if st.c_out is not None:
+            c = _b(p[f"{nm}.c_out"], n)
+            r = s.output_ohm + s.r_next
+            highpass.append(1.0 / (two_pi * c * r))
+            taus.append(c * r)
+        r_src = s.output_ohm
+
+    hp2 = [fp * fp for fp in highpass]
+    sh2 = [(fz * fz, fp * fp) for fz, fp in shelves]
+
+    def mag2(f: np.ndarray) -> np.ndarray:
+        f2 = f * f
+        h = np.ones_like(f)
+        for q in hp2:
+            h *= f2 / (f2 + q)
+        for qz, qp in sh2:
+            h *= (qz + f2) / (qp + f2)
+        return h
+
+    factor = np.sqrt(mag2(np.full(n, f_test)))
+    # the corner lies between 1 mHz and 100 kHz; 32 halvings of that log span: 3e-8 relative
+    lo, hi = np.full(n, np.log(1e-3)), np.full(n, np.log(1e5))
+    for _ in range(32):
+        mid = 0.5 * (lo + hi)
+        below = mag2(np.exp(mid)) < 0.5
+        lo = np.where(below, mid, lo)
+        hi = np.where(below, hi, mid)
+    corner = np.exp(0.5 * (lo + hi)) if (highpass or shelves) else np.zeros(n)
+    tau_max = np.max(np.stack(taus), axis=0) if taus else np.zeros(n)
+    return factor, corner, tau_max
+
+
+# --- large signal ------------------------------------------------------------------------------
+
+#: Rows per block in the large-signal solution: small blocks keep the Newton temporaries in
+#: cache (about 3x faster than whole-array passes for 100,000 boards).
+BLOCK_ROWS = 2048
+
+
+@dataclass
+class LargeSignalChain:
+    """Per-stage coefficients of the large-signal chain, shape ``(samples, 3)`` each.
+
+    common_emitter: I_CQ, R_E'·(beta+1)/beta, R_ac, V_CEQ - V_CE(sat);
+    emitter_follower: I_EQ, R_E ∥ R_next, -, V_CEQ - V_CE(sat);
+    op-amp: gain, -swing_neg, swing_pos, -.
+    """
+
+    kinds: tuple[str, ...]
+    coef: tuple[np.ndarray, ...]
+    v_t: np.ndarray
+
+    @classmethod
+    def from_arrays(cls, arrays: ChannelArrays) -> LargeSignalChain:
+        coef = []
+        for s in arrays.stages:
+            if s.kind == "common_emitter":
+                c = (s.ic_a, s.r_e_ac * (s.beta + 1.0) / s.beta, s.r_ac, s.vce_v - s.vce_sat_v)
+            elif s.kind == "emitter_follower":
+                c = (s.ie_a, s.r_e_ac, s.r_e_ac, s.vce_v - s.vce_sat_v)
+            else:
+                c = (s.gain, -s.swing_neg_v, s.swing_pos_v, s.swing_pos_v)
+            coef.append(np.stack([np.broadcast_to(v, (arrays.n,)) for v in c], axis=1))
+        return cls(tuple(s.kind for s in arrays.stages), tuple(coef), arrays.v_t)
+
+    def take(self, rows: slice | np.ndarray) -> LargeSignalChain:
+        return LargeSignalChain(self.kinds, tuple(c[rows] for c in self.coef), self.v_t[rows])
+
+
+def solve_drive(
+    x: np.ndarray, a: np.ndarray, v_t: np.ndarray, tol: float = 1e-11, max_iterations: int = 30
+) -> np.ndarray:
+    """Solve ``V_T·u + a·(exp(u) - 1) = x`` for ``u = ln(i/I_Q)`` (large-signal junction).
+
+    ``x`` is the signal at the base above its rest value, ``a = I_Q·R`` the quiescent drop on
+    the degeneration resistance.  Start: ``ln(1 + x/a)`` (the root without the junction term),
+    or for drive into deep cutoff the linear bound.  The function is convex and increasing, so
+    Newton converges from either side (from the left it jumps right of the root, then falls
+    monotonically); it stops when every step is below ``tol`` (relative), typically 5-7 steps.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = x / a
+        u = np.where(
+            r > -0.999, np.log1p(np.maximum(r, -0.999)), np.minimum((x + a) / v_t, x / (v_t + a))
+        )
+    u = np.where(a > 0, u, x / v_t)
+    ex = np.empty_like(u)
+    num = np.empty_like(u)
+    den = np.empty_like(u)
+    for _ in range(max_iterations):
+        np.exp(u, out=ex)
+        np.multiply(a, ex, out=den)
+        np.subtract(den, a, out=num)
+        num += v_t * u
+        num -= x
+        den += v_t
+        num /= den
+        u -= num
+        np.abs(num, out=num)
+        num /= 1.0 + np.abs(u)
+        if num.max() < tol:
+            break
+    return u
+
+
+def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
+    """Half-period cosine samples and the DCT-I weights giving harmonic amplitudes 0..k_max.
+
+    The drive is a cosine, so every waveform in the chain is even in time: the M + 1 points of
+    half a period define the whole period of N = 2M points, and the harmonic amplitudes are a
+    DCT-I of them (the DFT of the even extension).
+    """
+    theta = np.pi * np.arange(m + 1) / m
+    w = np.full(m + 1, 2.0)
+    w[0] = w[-1] = 1.0
+    k = np.arange(k_max + 1)
+    basis = (w[:, None] * np.cos(theta[:, None] * k[None, :])) / m
+    basis[:, 0] *= 0.5
+    return np.cos(theta), basis
+
+
+def chain_waveform(chain: LargeSignalChain, amp_vpk: np.ndarray, n_points: int = 64) -> np.ndarray:
+    """Output of the chain (AC part, volts) over half a period of a cosine drive of peak
+    ``amp_vpk`` at the channel input, shape ``(samples, n_points/2 + 1)``.
+
+    Midband: coupling capacitors short, the bypassed emitter resistance shorted, bias fixed at
+    its rest value; each stage drives the next stage's small-signal input impedance.  The
+    transistor is the exponential junction with base current (i_E = (beta+1)/beta·i_C) and
+    emitter degeneration, solved implicitly; cutoff follows from the exponential, saturation and
+    the op-amp rails are hard limits (a saturated collector follows the emitter up).
+    """
+    cos_t, _ = _cos_weights(n_points // 2, 1)
+    x = np.asarray(amp_vpk, dtype=float)[:, None] * cos_t[None, :]
+    v_t = chain.v_t[:, None]
+    for kind, c in zip(chain.kinds, chain.coef, strict=True):
+        if kind == "common_emitter":
+            ic, r_e, r_ac, room = c[:, 0:1], c[:, 1:2], c[:, 2:3], c[:, 3:4]
+            di = ic * np.expm1(solve_drive(x, ic * r_e, v_t))
+            x = np.maximum(-di * r_ac, di * r_e - room)
+        elif kind == "emitter_follower":
+            ie, r, room = c[:, 0:1], c[:, 1:2], c[:, 3:4]
+            x = np.minimum(ie * np.expm1(solve_drive(x, ie * r, v_t)) * r, room)
+        else:
+            x = np.clip(c[:, 0:1] * x, c[:, 1:2], c[:, 2:3])
+    return x
+
+
+def harmonics(
+    chain: LargeSignalChain,
+    amp_vpk: np.ndarray,
+    n_points: int = 64,
+    k_max: int = THD_HARMONICS,
+    workers: int = 1,
+) -> np.ndarray:
+    """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift) of the channel output
+    for a sine of peak ``amp_vpk`` at its input, shape ``(samples, k_max + 1)``.
+
+    Solved in blocks of :data:`BLOCK_ROWS` samples; ``workers`` > 1 spreads the blocks over
+    threads (numpy releases the GIL inside its loops)."""
+    _, basis = _cos_weights(n_points // 2, k_max)
+    amp = np.asarray(amp_vpk, dtype=float)
+    n = amp.shape[0]
+    out = np.empty((n, k_max + 1))
+
+    def block(i0: int) -> None:
+        sl = slice(i0, min(i0 + BLOCK_ROWS, n))
+        out[sl] = np.abs(chain_waveform(chain.take(sl), amp[sl], n_points) @ basis)
+
+    starts = range(0, n, BLOCK_ROWS)
+    if workers > 1 and n > BLOCK_ROWS:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            list(pool.map(block, starts))
+    else:
+        for i0 in starts:
+            block(i0)
+    return out
+
+
+def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
+    """THD_F in percent: sqrt(sum of harmonics 2..k_max squared) over the fundamental."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+
+
+def criterion_level(
+    chain: LargeSignalChain,
+    *,
+    swing_vpk: np.ndarray,
+    gain: np.ndarray,
+    guess_vpk: np.ndarray,
+    criterion: str,
+    thd_percent: float,
+    compression_db: float,
+    n_points: int = 64,
+    iterations: int = 10,
+    workers: int = 1,
+) -> np.ndarray:
+    """Input peak level where the board's clipping criterion is met, for every sample at once.
+
+    ``criterion`` "thd": THD reaches ``thd_percent``; "compression": the fundamental gain has
+    dropped ``compression_db`` below the small-signal ``gain``.  The search works on level in dB
+    around ``guess_vpk`` (capped just above the swing-limited threshold ``swing_vpk``): first
+    the bracket is widened where needed (only those samples are re-solved), then the iterations
+    alternate an Illinois (modified regula falsi) step on log THD against dB with a bisection
+    step, so the bracket at least halves every two iterations, even at the kink where hard
+    clipping begins.  Samples that cannot be bracketed come back NaN.
+    """
+
+    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> np.ndarray:
+        amp = 10.0 ** (level_db / 20.0)
+        h = harmonics(chain.take(rows), amp, n_points, workers=workers)
+        if criterion == "compression":
+            with np.errstate(divide="ignore"):
+                comp = 20.0 * np.log10(np.abs(gain[rows]) * amp / np.maximum(h[:, 1], 1e-300))
+            return comp - compression_db
+        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent)
+
+    every = slice(None)
+    ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12))
+    with np.errstate(divide="ignore"):
+        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)), ref + 0.5)
+    a, b = start - 1.5, start + 1.5
+    fa, fb = g(a, every), g(b, every)
+    for _ in range(6):  # widen: 3, 6, 12 ... dB steps where the bracket misses
+        lo_bad, hi_bad = np.flatnonzero(fa > 0), np.flatnonzero(fb < 0)
+        if lo_bad.size == 0 and hi_bad.size == 0:
+            break
+        if lo_bad.size:
+            b[lo_bad], fb[lo_bad] = a[lo_bad], fa[lo_bad]
+            a[lo_bad] -= 6.0
+            fa[lo_bad] = g(a[lo_bad], lo_bad)
+        if hi_bad.size:
+            a[hi_bad], fa[hi_bad] = b[hi_bad], fb[hi_bad]
+            b[hi_bad] += 6.0
+            fb[hi_bad] = g(b[hi_bad], hi_bad)
+    side = np.zeros_like(a)  # Illinois: which end was kept last time (-1 a, +1 b)
+    for it in range(iterations):
+        if it % 2 == 0:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                c = b - fb * (b - a) / (fb - fa)
+            c = np.where(np.isfinite(c) & (c > a) & (c < b), c, 0.5 * (a + b))
+        else:
+            c = 0.5 * (a + b)
+        fc = g(c, every)
+        right = fc > 0  # root in [a, c]
+        fa_new = np.where(right, np.where(side == -1, 0.5 * fa, fa), fc)
+        fb_new = np.where(right, fc, np.where(side == 1, 0.5 * fb, fb))
+        a, b = np.where(right, a, c), np.where(right, c, b)
+        fa, fb = fa_new, fb_new
+        side = np.where(right, -1.0, 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c = b - fb * (b - a) / (fb - fa)
+    c = np.where(np.isfinite(c) & (c >= a) & (c <= b), c, 0.5 * (a + b))
+    bad = ~(fa <= 0) | ~(fb >= 0)
+    return np.where(bad, np.nan, 10.0 ** (c / 20.0))
+
+
+# --- the whole channel -------------------------------------------------------------------------
+
+
+def evaluate_channel(
+    board: Board,
+    channel: Channel,
+    p: Arrays,
+    *,
+    thd_points: int | None = 64,
+    search_points: int | None = 64,
+    search_iterations: int = 10,
+    workers: int = 1,
+) -> ChannelArrays:
+    """Everything the model predicts for one channel, over the samples in ``p``.
+
+    ``thd_points`` / ``search_points``: points per period for THD at the nominal level and for
+    the criterion search (None skips that part); ``workers`` threads share the large-signal
+    blocks.  Problems (saturated or cut off at rest, a
+    chain that cannot drive its load) are returned with the samples they hit, not raised.
+    """
+    n = max(np.asarray(v).size for v in p.values())
+    problems: list[Problem] = []
+    stages = _dc(board, channel, p, n, problems)
+    _small_signal(channel, p, stages, n)
+    _swing(channel, p, stages, n)
+    res = ChannelArrays(channel.name, n, stages, _b(p["v_t"], n), problems=problems)
+
+    # channel gain, impedances, clipping referred to the input
+    cum = np.ones(n)
+    clip = np.full(n, np.inf)
+    clip_stage = np.zeros(n, dtype=int)
+    clip_pos = np.zeros(n, dtype=bool)
+    after = [sum(s.inverting for s in stages[j + 1 :]) % 2 == 1 for j in range(len(stages))]
+    for j, s in enumerate(stages):
+        cum = cum * s.gain
+        with np.errstate(divide="ignore"):
+            lim_up = s.swing_pos_v / np.abs(cum)
+            lim_dn = s.swing_neg_v / np.abs(cum)
+        # input peak at which this stage's positive / negative output limit is hit
+        first_up = lim_up <= lim_dn
+        lim = np.minimum(lim_up, lim_dn)
+        # the stage output side maps to the channel output side through later inversions
+        out_pos = first_up != after[j]
+        better = lim < clip
+        clip = np.where(better, lim, clip)
+        clip_stage = np.where(better, j, clip_stage)
+        clip_pos = np.where(better, out_pos, clip_pos)
+    res.gain_midband = cum
+    factor, corner, tau = _low_end(channel, p, stages, n, board.conditions.frequency_hz)
+    res.gain = cum * factor
+    res.input_ohm = stages[0].input_ohm
+    res.output_ohm = stages[-1].output_ohm
+    res.clip_input_vpk = clip
+    res.clip_stage = clip_stage
+    res.clip_positive = clip_pos
+    res.low_corner_hz = corner
+    res.settle_time_s = 5.0 * tau
+    res.supply_current_a = sum((s.supply_a for s in stages), np.zeros(n))
+
+    nominal_vpk = board.conditions.nominal_input_vrms * np.sqrt(2.0)
+    short = clip < nominal_vpk
+    if np.any(short):
+        j = int(clip_stage[short][0])
+        st = channel.stages[j]
+        s = stages[j]
+        i = int(np.flatnonzero(short)[0])
+        needed = float(nominal_vpk * abs(np.prod([x.gain[i] for x in stages[: j + 1]])))
+        problems.append(
+            Problem(
+                f"channel.{channel.name}.stage[{j}]({st.name})",
+                f"cannot drive its load: it swings only +{float(s.swing_pos_v[i]):.3g} V / "
+                f"-{float(s.swing_neg_v[i]):.3g} V peak into {float(s.r_next[i]):.4g} ohm "
+                f"(load_ohm or the next stage), but the nominal input "
+                f"{board.conditions.nominal_input_vrms:g} V rms needs {needed:.3g} V peak there",
+                "raise the load resistance, lower conditions.nominal_input_vrms or the gain",
+                short,
+            )
+        )
+
+    chain = LargeSignalChain.from_arrays(res)
+    if thd_points:
+        h = harmonics(chain, np.full(n, nominal_vpk), thd_points, workers=workers)
+        res.thd_percent = thd_from_harmonics(h)
+    if search_points:
+        c = board.conditions
+        if c.clip_criterion == "thd" and res.thd_percent is not None:
+            # THD grows about in proportion to level below clipping (HD2-dominated)
+            with np.errstate(divide="ignore"):
+                guess = nominal_vpk * c.clip_thd_percent / np.maximum(res.thd_percent, 1e-12)
+        else:
+            guess = clip
+        res.thd_clip_input_vpk = criterion_level(
+            chain,
+            swing_vpk=clip,
+            gain=res.gain_midband,
+            guess_vpk=guess,
+            criterion=c.clip_criterion,
+            thd_percent=c.clip_thd_percent,
+            compression_db=c.clip_compression_db,
+            n_points=search_points,
+            iterations=search_iterations,
+            workers=workers,
+        )
+    return res

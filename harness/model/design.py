@@ -1,0 +1,228 @@
+"""The nominal design of a channel: the vectorised model run on size-one arrays.
+
+``design_channel`` and ``operating_point`` are what the run layer and the reports use;
+``validate_board`` is what a loader calls to refuse a board whose circuit cannot work.
+Circuit problems are raised as :class:`~harness.errors.BoardFileError` naming the board
+file, channel, stage and field (e.g. ``channel.A.stage[0](gain).rc``).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+
+from harness.errors import BoardFileError
+from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower
+from harness.model.core import ChannelArrays, LargeSignalChain, evaluate_channel, harmonics
+from harness.model.params import channel_parameters, nominal_arrays
+
+#: Points per period of the large-signal solution for the nominal design (the Monte Carlo
+#: uses fewer; 256 resolves harmonics 2..10 of a clipped wave with negligible aliasing).
+NOMINAL_POINTS = 256
+NOMINAL_SEARCH_ITERATIONS = 30
+
+
+@dataclass(frozen=True)
+class StageDesign:
+    """One stage at rest and for small signals.  ``vc_v`` is None for op-amp stages."""
+
+    name: str
+    kind: str
+    ic_a: float
+    ib_a: float
+    vb_v: float | None
+    ve_v: float | None
+    vc_v: float | None
+    output_v: float
+    gain: float
+    input_ohm: float
+    output_ohm: float
+    swing_pos_v: float  # peak swing of this stage's output above its rest value
+    swing_neg_v: float  # ... and below it
+    supply_current_a: float
+
+
+@dataclass(frozen=True)
+class ChannelDesign:
+    """A channel's nominal figures (SI units; gains are linear and signed unless ``_db``)."""
+
+    channel: str
+    gain: float
+    gain_db: float
+    inverting: bool
+    input_ohm: float
+    output_ohm: float
+    stages: tuple[StageDesign, ...]
+    clip_input_vrms: float  # swing-limited threshold referred to the input
+    clip_stage: str
+    clip_side: Literal["positive", "negative"]  # half-cycle of the channel OUTPUT
+    thd_percent: float  # at the nominal level, large-signal solution
+    thd_clip_input_vrms: float  # input level where the board's clip criterion is met
+    clip_criterion: str
+    output_vrms_nominal: float
+    supply_current_a: float
+    low_corner_hz: float
+    settle_time_s: float
+
+    @property
+    def phase_deg(self) -> float:
+        return 180.0 if self.inverting else 0.0
+
+
+def _arrays(
+    board: Board, channel: Channel, params: Mapping[str, float] | None, *, search: bool = True
+) -> ChannelArrays:
+    p = nominal_arrays(channel_parameters(board, channel), params)
+    return evaluate_channel(
+        board,
+        channel,
+        p,
+        thd_points=NOMINAL_POINTS,
+        search_points=NOMINAL_POINTS if search else None,
+        search_iterations=NOMINAL_SEARCH_ITERATIONS,
+    )
+
+
+def _raise_first(board: Board, res: ChannelArrays) -> None:
+    for prob in res.problems:
+        if prob.mask[0]:
+            raise BoardFileError(board.source, prob.location, prob.reason, hint=prob.hint)
+
+
+def _channel(board: Board, channel_name: str) -> Channel:
+    try:
+        return board.channel(channel_name)
+    except KeyError:
+        names = ", ".join(c.name for c in board.channels)
+        raise BoardFileError(
+            board.source,
+            f"channel.{channel_name}",
+            "no such channel",
+            hint=f"channels on this board: {names}",
+        ) from None
+
+
+def design_channel(
+    board: Board, channel_name: str, params: Mapping[str, float] | None = None
+) -> ChannelDesign:
+    """Nominal design of one channel.  ``params`` overrides model parameters by key (see
+    :func:`harness.model.params.channel_parameters`, e.g. ``{"gain.re": 0.0}``).
+
+    Raises BoardFileError (file, ``channel.<c>.stage[i](<name>).<field>``) when a transistor is
+    saturated or cut off at rest or the chain cannot drive its load at the nominal level.
+    """
+    ch = _channel(board, channel_name)
+    res = _arrays(board, ch, params)
+    _raise_first(board, res)
+    return to_design(board, ch, res, 0)
+
+
+def to_design(board: Board, ch: Channel, res: ChannelArrays, i: int) -> ChannelDesign:
+    """Sample ``i`` of a vectorised result as a :class:`ChannelDesign`."""
+    stages = []
+    for st, s in zip(ch.stages, res.stages, strict=True):
+        bjt = isinstance(st, CommonEmitter | EmitterFollower)
+        stages.append(
+            StageDesign(
+                name=st.name,
+                kind=st.kind,
+                ic_a=float(s.ic_a[i]),
+                ib_a=float(s.ib_a[i]),
+                vb_v=float(s.vb_v[i]) if bjt else None,
+                ve_v=float(s.ve_v[i]) if bjt else None,
+                vc_v=float(s.vc_v[i]) if bjt else None,
+                output_v=float(s.vout_dc_v[i]),
+                gain=float(s.gain[i]),
+                input_ohm=float(s.input_ohm[i]),
+                output_ohm=float(s.output_ohm[i]),
+                swing_pos_v=float(s.swing_pos_v[i]),
+                swing_neg_v=float(s.swing_neg_v[i]),
+                supply_current_a=float(s.supply_a[i]),
+            )
+        )
+    gain = float(res.gain[i])
+    thd = float(res.thd_percent[i]) if res.thd_percent is not None else math.nan
+    thd_clip = (
+        float(res.thd_clip_input_vpk[i]) / math.sqrt(2.0)
+        if res.thd_clip_input_vpk is not None
+        else math.nan
+    )
+    return ChannelDesign(
+        channel=ch.name,
+        gain=gain,
+        gain_db=20.0 * math.log10(abs(gain)),
+        inverting=res.inverting,
+        input_ohm=float(res.input_ohm[i]),
+        output_ohm=float(res.output_ohm[i]),
+        stages=tuple(stages),
+        clip_input_vrms=float(res.clip_input_vpk[i]) / math.sqrt(2.0),
+        clip_stage=ch.stages[int(res.clip_stage[i])].name,
+        clip_side="positive" if bool(res.clip_positive[i]) else "negative",
+        thd_percent=thd,
+        thd_clip_input_vrms=thd_clip,
+        clip_criterion=criterion_text(board),
+        output_vrms_nominal=abs(gain) * board.conditions.nominal_input_vrms,
+        supply_current_a=float(res.supply_current_a[i]),
+        low_corner_hz=float(res.low_corner_hz[i]),
+        settle_time_s=float(res.settle_time_s[i]),
+    )
+
+
+def criterion_text(board: Board) -> str:
+    c = board.conditions
+    if c.clip_criterion == "compression":
+        return f"{c.clip_compression_db:g} dB gain compression"
+    return f"THD {c.clip_thd_percent:g} %"
+
+
+def operating_point_arrays(ch: Channel, res: ChannelArrays) -> dict[str, np.ndarray]:
+    """``"<stage>.<quantity>"`` -> volts at rest: collector_v, emitter_v, base_v (BJT stages),
+    output_v (op-amp stages)."""
+    out: dict[str, np.ndarray] = {}
+    for st, s in zip(ch.stages, res.stages, strict=True):
+        if isinstance(st, CommonEmitter | EmitterFollower):
+            out[f"{st.name}.collector_v"] = s.vc_v
+            out[f"{st.name}.emitter_v"] = s.ve_v
+            out[f"{st.name}.base_v"] = s.vb_v
+        else:
+            out[f"{st.name}.output_v"] = s.vout_dc_v
+    return out
+
+
+def operating_point(
+    board: Board, channel_name: str, params: Mapping[str, float] | None = None
+) -> dict[str, float]:
+    """DC voltages at rest, keyed ``"<stage>.<quantity>"`` (see :func:`operating_point_arrays`)."""
+    ch = _channel(board, channel_name)
+    res = _arrays(board, ch, params, search=False)
+    _raise_first(board, res)
+    return {k: float(v[0]) for k, v in operating_point_arrays(ch, res).items()}
+
+
+def large_signal_harmonics(
+    board: Board,
+    channel_name: str,
+    input_vrms: float,
+    *,
+    params: Mapping[str, float] | None = None,
+    n_points: int = NOMINAL_POINTS,
+) -> np.ndarray:
+    """Harmonic amplitudes 0..10 (V peak) of the channel output for a sine of ``input_vrms``
+    at its input, from the large-signal solution (index 1 is the fundamental)."""
+    ch = _channel(board, channel_name)
+    res = _arrays(board, ch, params, search=False)
+    _raise_first(board, res)
+    amp = np.array([input_vrms * math.sqrt(2.0)])
+    return harmonics(LargeSignalChain.from_arrays(res), amp, n_points)[0]
+
+
+def validate_board(board: Board) -> None:
+    """Refuse a board whose circuit cannot work: raises BoardFileError naming the file and
+    ``channel.<c>.stage[i](<name>).<field>`` (saturated or cut off at rest, cannot drive its load).
+    Cheap enough for a loader to call: the criterion search is skipped."""
+    for ch in board.channels:
+        _raise_first(board, _arrays(board, ch, None, search=False))

@@ -1,0 +1,269 @@
+"""Monte Carlo limits, clipping side and criterion search: checks against scipy references,
+ngspice and the model's own nominal path (the same functions at size one)."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy.integrate import quad
+from scipy.optimize import brentq
+
+from harness.cli.main import main
+from harness.files import load_board
+from harness.model import compute_limits, design_channel
+from harness.model.core import evaluate_channel
+from harness.model.design import to_design
+from harness.model.limits import MC_SEARCH_ITERATIONS, MC_SEARCH_POINTS, MC_THD_POINTS
+from harness.model.params import channel_parameters, nominal_arrays, sample_arrays
+from harness.model.spice import channel_netlist
+
+from .boards import board_text, make_board, write_board
+
+TWIN = "limits/demo-twin-preamp.toml"
+OPAMP = "limits/demo-opamp-line.toml"
+
+
+def _clipped_sine_harmonic(k: int, r: float) -> float:
+    """k-th Fourier amplitude of cos(t) clipped at +-r (scipy.integrate.quad)."""
+    val, _ = quad(lambda t: np.clip(np.cos(t), -r, r) * np.cos(k * t), 0, np.pi, limit=200)
+    return 2.0 * val / np.pi
+
+
+def test_hard_clip_criterion_matches_fourier_series() -> None:
+    """A hard symmetric clipper (op-amp stage at its rails) reaches THD(2-10) = 1 % at a drive
+    A/L found here from the Fourier series of the clipped sine (scipy.integrate.quad +
+    scipy.optimize.brentq, about 1.031); the model's criterion search must land there."""
+
+    def thd(ratio: float) -> float:
+        r = 1.0 / ratio
+        h = [_clipped_sine_harmonic(k, r) for k in range(1, 11)]
+        return 100.0 * math.sqrt(sum(x * x for x in h[1:])) / h[0]
+
+    ratio = brentq(lambda a: thd(a) - 1.0, 1.0001, 1.2, xtol=1e-10)
+    board = load_board(OPAMP)
+    d = design_channel(board, "AUX")
+    assert d.thd_clip_input_vrms / d.clip_input_vrms == pytest.approx(ratio, rel=5e-4)
+
+
+def test_compression_criterion_matches_describing_function(tmp_path) -> None:
+    """1 dB compression of a hard clipper: describing function A1 = (2A/pi)(asin r + r sqrt(1-r^2)),
+    r = L/A (textbook describing-function result, from memory; solved with scipy brentq,
+    about A/L = 1.26) against the model with clip_criterion = "compression"."""
+    text = board_text(
+        '[[channel]]\nname = "X"\n  [[channel.stage]]\n  kind = "opamp_inverting"\n'
+        '  name = "amp"\n  opamp = "u"\n  r_in = "10k"\n  r_f = "47k"\n  c_in = "10u"\n',
+        vcc=15.0,
+        negative='negative_v = "-15 0%"',
+        load="100k",
+        nominal=0.1,
+    )
+    text = text.replace("source_ohm = 50.0", 'source_ohm = 50.0\nclip_criterion = "compression"')
+    board = load_board(write_board(tmp_path, text))
+
+    def gain_db(a: float) -> float:
+        r = 1.0 / a
+        return 20 * math.log10((2 / math.pi) * (math.asin(r) + r * math.sqrt(1 - r * r)))
+
+    ratio = brentq(lambda a: gain_db(a) + 1.0, 1.0001, 3.0, xtol=1e-10)
+    d = design_channel(board, "X")
+    assert d.clip_criterion == "1 dB gain compression"
+    assert d.thd_clip_input_vrms / d.clip_input_vrms == pytest.approx(ratio, rel=1e-3)
+
+
+def test_mc_resolution_close_to_nominal_resolution() -> None:
+    """The Monte Carlo's coarser large-signal grid (32 points, 10 search iterations) gives the
+    same THD and criterion level as the nominal 256-point solution: within 0.5 % / 0.01 dB."""
+    for path, name in ((TWIN, "A"), (OPAMP, "MIC")):
+        board = load_board(path)
+        ch = board.channel(name)
+        res = evaluate_channel(
+            board,
+            ch,
+            nominal_arrays(channel_parameters(board, ch)),
+            thd_points=MC_THD_POINTS,
+            search_points=MC_SEARCH_POINTS,
+            search_iterations=MC_SEARCH_ITERATIONS,
+        )
+        d = design_channel(board, name)
+        level = float(res.thd_clip_input_vpk[0]) / math.sqrt(2)
+        assert 20 * math.log10(level / d.thd_clip_input_vrms) == pytest.approx(0, abs=0.01)
+        if d.thd_percent > 1e-6:
+            assert float(res.thd_percent[0]) == pytest.approx(d.thd_percent, rel=5e-3)
+
+
+def test_vectorised_equals_per_sample() -> None:
+    """The same functions serve the nominal design and the Monte Carlo: sample i of a vector
+    run equals a size-one run on sample i's parameters."""
+    board = load_board(TWIN)
+    ch = board.channel("A")
+    specs = channel_parameters(board, ch)
+    p = sample_arrays(specs, np.random.default_rng(5), 50)
+    vec = evaluate_channel(board, ch, p)
+    for i in (0, 17, 49):
+        one = evaluate_channel(board, ch, {k: v[i : i + 1] for k, v in p.items()})
+        a, b = to_design(board, ch, vec, i), to_design(board, ch, one, 0)
+        assert a.gain == pytest.approx(b.gain, rel=1e-12)
+        assert a.thd_percent == pytest.approx(b.thd_percent, rel=1e-9)
+        assert a.thd_clip_input_vrms == pytest.approx(b.thd_clip_input_vrms, rel=1e-9)
+        assert a.stages[0].vc_v == pytest.approx(b.stages[0].vc_v, rel=1e-12)
+
+
+def test_limits_reproducible_and_cover_fresh_boards() -> None:
+    """Same seed, same limits (digest); and a fresh Monte Carlo population drawn with another
+    seed falls inside the gain limits in about the stated coverage (binomial: 4000 boards at
+    coverage 0.9973 leave on average 11 outside; we allow 0-40)."""
+    board = load_board(TWIN)
+    a = compute_limits(board, samples=4000, seed=11, workers=1)
+    b = compute_limits(board, samples=4000, seed=11, workers=2)
+    c = compute_limits(board, samples=4000, seed=12)
+    assert a.digest == b.digest != c.digest
+    assert a.provenance.board_digest == board.digest and len(board.digest) == 64
+    lim = a.channels["A"].gain_db
+    ch = board.channel("A")
+    fresh = evaluate_channel(
+        board,
+        ch,
+        sample_arrays(channel_parameters(board, ch), np.random.default_rng(99), 4000),
+        thd_points=None,
+        search_points=None,
+    )
+    gains = 20 * np.log10(np.abs(fresh.gain))
+    outside = int(np.sum((gains < lim.low) | (gains > lim.high)))
+    assert 0 <= outside <= 40
+    assert lim.low < lim.nominal < lim.high
+    thd = a.channels["A"].thd_percent
+    assert thd.low is None and thd.high > thd.nominal
+
+
+def test_worst_case_corners_bound_the_monte_carlo() -> None:
+    """Gain is monotone in every part, so the sensitivity-signed extreme corners bound every Monte
+    Carlo board: corner low <= MC low and corner high >= MC high (and so are reported as not
+    covered by the MC interval)."""
+    board = load_board(TWIN)
+    lim = compute_limits(board, samples=3000, seed=4).channels["A"]
+    wc = lim.worst_case["gain_db"]
+    assert wc.low <= lim.gain_db.low and wc.high >= lim.gain_db.high
+    assert wc.covered is False
+
+
+def test_limits_json_roundtrip_and_digest() -> None:
+    """to_dict is JSON-serialisable and from_dict rebuilds a set with the same digest."""
+    from harness.model.limits import BoardLimits
+
+    lim = compute_limits(load_board(OPAMP), samples=500)
+    doc = json.loads(json.dumps(lim.to_dict()))
+    assert BoardLimits.from_dict(doc).digest == lim.digest
+    assert lim.channels["AUX"].inverting and lim.channels["AUX"].phase_deg == 180.0
+    assert not lim.channels["MIC"].inverting and lim.channels["MIC"].phase_deg == 0.0
+
+
+def _peaks(stdout: str) -> tuple[float, float]:
+    """Max and min of v(out) over the last period, from ngspice ``meas`` lines."""
+    vals = {}
+    for line in stdout.splitlines():
+        parts = line.replace("=", " ").split()
+        if len(parts) >= 2 and parts[0] in ("vmax", "vmin"):
+            vals[parts[0]] = float(parts[1])
+    return vals["vmax"], vals["vmin"]
+
+
+def _clip_side_spice(spice, board, channel: str, level_vrms: float) -> str:
+    net = channel_netlist(board, channel, amplitude_vpk=level_vrms * math.sqrt(2))
+    period = 1.0 / board.conditions.frequency_hz
+    meas = (
+        f"meas tran vmax max v(out) from={19 * period:.9g} to={20 * period:.9g}\n"
+        f"meas tran vmin min v(out) from={19 * period:.9g} to={20 * period:.9g}\n"
+    )
+    net = net.replace("quit\n", meas + "quit\n")
+    vmax, vmin = _peaks(spice(net))
+    return "positive" if vmax < -vmin else "negative"
+
+
+@pytest.mark.ngspice
+def test_clip_side_against_ngspice(spice, tmp_path) -> None:
+    """Which half-cycle of the OUTPUT clips first, against ngspice transients driven 2 dB past
+    the swing limit: the demo channel (cutoff of the inverting CE stage: its collector high side,
+    the positive output half) and a CE stage biased near saturation (negative output half)."""
+    board = load_board(TWIN)
+    d = design_channel(board, "A")
+    assert d.clip_side == "positive"
+    assert _clip_side_spice(spice, board, "A", d.clip_input_vrms * 10 ** (2 / 20)) == "positive"
+    sat = make_board(
+        tmp_path,
+        r1="68k",
+        r2="15k",
+        rc="6k8",
+        re="470R",
+        bypass='re_bypassed = "1k"\n  c_e = "100u"',
+        load="22k",
+        beta=290,
+        is_a=1.2e-14,
+    )
+    d2 = design_channel(sat, "X")
+    assert d2.clip_side == "negative"
+    assert _clip_side_spice(spice, sat, "X", d2.clip_input_vrms * 10 ** (2 / 20)) == "negative"
+
+
+def test_second_inverting_stage_flips_clip_side(tmp_path) -> None:
+    """An inverting stage after the clipping stage turns its clipped half-cycle over (derived
+    from the stage polarity): the same CE stage followed by an inverting op-amp of gain -0.5
+    clips on the other output half-cycle."""
+    one = make_board(
+        tmp_path,
+        r1="68k",
+        r2="15k",
+        rc="6k8",
+        re="470R",
+        bypass='re_bypassed = "1k"\n  c_e = "100u"',
+        load="22k",
+    )
+    two_text = board_text(
+        '[[channel]]\nname = "X"\n  [[channel.stage]]\n  kind = "common_emitter"\n'
+        '  name = "gain"\n  transistor = "q"\n  r1 = "68k"\n  r2 = "15k"\n  rc = "6k8"\n'
+        '  re = "470R"\n  re_bypassed = "1k"\n  c_e = "100u"\n  c_in = "10u"\n  c_out = "10u"\n'
+        '  [[channel.stage]]\n  kind = "opamp_inverting"\n  name = "inv"\n  opamp = "u"\n'
+        '  r_in = "22k"\n  r_f = "11k"\n',
+        negative='negative_v = "-15 0%"',
+        load="22k",
+    )
+    two = load_board(write_board(tmp_path, two_text, "two.toml"))
+    d1, d2 = design_channel(one, "X"), design_channel(two, "X")
+    assert d1.clip_stage == d2.clip_stage == "gain"
+    assert {d1.clip_side, d2.clip_side} == {"positive", "negative"}
+    assert d1.inverting and not d2.inverting
+
+
+def test_cli_limits_json(capsys) -> None:
+    """``ampbench limits --json`` prints per channel gain_db, clip_input_vrms (nominal, low,
+    high), thd_percent (nominal, high), clip_stage, clip_side and the provenance."""
+    assert main(["limits", TWIN, "--samples", "300", "--seed", "5", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    ch = doc["channels"]["A"]
+    for key in ("gain_db", "clip_input_vrms", "swing_clip_input_vrms"):
+        assert set(ch[key]) >= {"nominal", "low", "high"}
+        assert ch[key]["low"] <= ch[key]["nominal"] <= ch[key]["high"]
+    assert ch["thd_percent"]["high"] >= ch["thd_percent"]["nominal"] > 0
+    assert ch["clip_stage"] == "gain" and ch["clip_side"] in ("positive", "negative")
+    prov = doc["provenance"]
+    assert prov["samples"] == 300 and prov["seed"] == 5 and len(prov["board_digest"]) == 64
+    assert prov["software_version"] and prov["method"] == "monte_carlo"
+    assert len(doc["digest"]) == 64
+
+
+def test_cli_limits_table(capsys) -> None:
+    """The table view names the channel, polarity, clipping stage and half-cycle and dBu."""
+    assert main(["limits", OPAMP, "--samples", "200"]) == 0
+    out = capsys.readouterr().out
+    assert "channel AUX" in out and "inverting" in out and "dBu" in out
+    assert "clips first: stage aux_gain" in out
+
+
+def test_cli_bad_samples(capsys) -> None:
+    """--samples below 100 is a usage error: exit status 2, no traceback."""
+    with pytest.raises(SystemExit) as info:
+        main(["limits", TWIN, "--samples", "5"])
+    assert info.value.code == 2
+    assert "Traceback" not in capsys.readouterr().err
