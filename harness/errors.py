@@ -169,7 +169,7 @@ class ScpiError(InstrumentError):
         self.code = code
         self.text = text
         super().__init__(
-            f"instrument error {code},\"{text}\"", resource=resource, command=command, role=role
+            f'instrument error {code},"{text}"', resource=resource, command=command, role=role
         )
 
 

@@ -13,8 +13,9 @@ from typing import Any
 from harness.errors import BoardFileError, InputFileError
 
 
-def read_toml(path: str | Path, error: type[InputFileError] = InputFileError
-              ) -> tuple[dict[str, Any], bytes]:
+def read_toml(
+    path: str | Path, error: type[InputFileError] = InputFileError
+) -> tuple[dict[str, Any], bytes]:
     """Read and parse a TOML file; returns (document, raw bytes).  Syntax errors keep
     tomllib's line and column."""
     p = Path(path)
@@ -29,17 +30,27 @@ def read_toml(path: str | Path, error: type[InputFileError] = InputFileError
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise error(str(p), f"byte {exc.start}", "not UTF-8 text",
-                    hint="save the file as UTF-8") from None
+        raise error(
+            str(p), f"byte {exc.start}", "not UTF-8 text", hint="save the file as UTF-8"
+        ) from None
     try:
         return tomllib.loads(text), raw
     except tomllib.TOMLDecodeError as exc:
         raise error(str(p), None, f"TOML syntax: {exc}", hint="fix the line named") from None
 
 
-def load_board(path: str | Path):
-    """Read and validate a board description (see README, "Board files")."""
+def load_board(path: str | Path, *, validate: bool = True):
+    """Read and validate a board description (see README, "Board files").
+
+    With ``validate`` the nominal design is checked too (each transistor active at rest, each
+    channel able to drive its load), so an unworkable board fails here with the file and field.
+    """
     from harness.model.board import board_from_dict
 
     doc, raw = read_toml(path, BoardFileError)
-    return board_from_dict(doc, str(path), raw)
+    board = board_from_dict(doc, str(path), raw)
+    if validate:
+        from harness.model import validate_board
+
+        validate_board(board)
+    return board

@@ -78,10 +78,13 @@ def parse_quantity(text: str | float | int) -> float:
     m = _PREFIXED.match(s)
     if m:
         return float(f"{m.group(1)}e{_EXPONENTS[m.group(2)]}")
+    sign = ""
+    if s[:1] in "+-":
+        sign, s = s[0], s[1:]
     m = _RKM.match(s)
     if m and (m.group(1) or m.group(3)):
         whole, letter, frac = m.groups()
-        return float(f"{whole or '0'}.{frac or '0'}e{_EXPONENTS[letter]}")
+        return float(f"{sign}{whole or '0'}.{frac or '0'}e{_EXPONENTS[letter]}")
     raise ValueParseError(
         raw,
         "not a number, an SI-prefixed number or an IEC 60062 code",
@@ -172,8 +175,17 @@ def format_si(value: float, digits: int = 3) -> str:
     """Format with an SI prefix (``4.7k``, ``100n``) for tables and messages."""
     if value == 0 or not math.isfinite(value):
         return f"{value:g}"
-    prefixes = [(1e12, "T"), (1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"),
-                (1e-6, "u"), (1e-9, "n"), (1e-12, "p")]
+    prefixes = [
+        (1e12, "T"),
+        (1e9, "G"),
+        (1e6, "M"),
+        (1e3, "k"),
+        (1.0, ""),
+        (1e-3, "m"),
+        (1e-6, "u"),
+        (1e-9, "n"),
+        (1e-12, "p"),
+    ]
     mag = abs(value)
     for scale, prefix in prefixes:
         if mag >= scale * 0.9995:
@@ -184,8 +196,9 @@ def format_si(value: float, digits: int = 3) -> str:
 # --- preferred values (IEC 60063:2015) --------------------------------------------------------
 
 E12: tuple[float, ...] = (1.0, 1.2, 1.5, 1.8, 2.2, 2.7, 3.3, 3.9, 4.7, 5.6, 6.8, 8.2)
-E24: tuple[float, ...] = tuple(sorted(E12 + (1.1, 1.3, 1.6, 2.0, 2.4, 3.0, 3.6, 4.3, 5.1, 6.2,
-                                              7.5, 9.1)))
+E24: tuple[float, ...] = tuple(
+    sorted((*E12, 1.1, 1.3, 1.6, 2.0, 2.4, 3.0, 3.6, 4.3, 5.1, 6.2, 7.5, 9.1))
+)
 
 
 def e96() -> tuple[float, ...]:

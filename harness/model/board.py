@@ -263,12 +263,13 @@ class _Reader:
                 hint=f"allowed fields here: {', '.join(sorted(allowed))}",
             )
 
-    def string(self, data: Mapping[str, Any], key: str, where: str, default: str | None = None
-               ) -> str:
+    def string(
+        self, data: Mapping[str, Any], key: str, where: str, default: str | None = None
+    ) -> str:
         if key not in data:
             if default is not None:
                 return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = \"...\"")
+            raise self.fail(f"{where}.{key}", "missing field", hint=f'add {key} = "..."')
         value = data[key]
         if not isinstance(value, str) or not value.strip():
             raise self.fail(f"{where}.{key}", "must be a non-empty text")
@@ -295,13 +296,22 @@ class _Reader:
             raise self.fail(f"{where}.{key}", f"must be greater than zero (got {value:g})")
         return value
 
-    def spread(self, data: Mapping[str, Any], key: str, where: str, *, required: bool = True,
-               positive: bool = True) -> Spread | None:
+    def spread(
+        self,
+        data: Mapping[str, Any],
+        key: str,
+        where: str,
+        *,
+        required: bool = True,
+        positive: bool = True,
+    ) -> Spread | None:
         loc = f"{where}.{key}"
         if key not in data:
             if not required:
                 return None
-            raise self.fail(loc, "missing field", hint=f"add {key} = {{ min = .., typ = .., max = .. }}")
+            raise self.fail(
+                loc, "missing field", hint=f"add {key} = {{ min = .., typ = .., max = .. }}"
+            )
         value = data[key]
         if not isinstance(value, Mapping):
             v = self.number(data, key, where, positive=positive)
@@ -313,8 +323,11 @@ class _Reader:
                 nums[k] = self.number(value, k, loc, positive=positive)
         if "typ" not in nums:
             if "min" in nums and "max" in nums:
-                nums["typ"] = math.sqrt(nums["min"] * nums["max"]) if positive else (
-                    nums["min"] + nums["max"]) / 2
+                nums["typ"] = (
+                    math.sqrt(nums["min"] * nums["max"])
+                    if positive
+                    else (nums["min"] + nums["max"]) / 2
+                )
             else:
                 raise self.fail(loc, "needs typ, or both min and max")
         lo, typ, hi = nums.get("min", nums["typ"]), nums["typ"], nums.get("max", nums["typ"])
@@ -336,7 +349,7 @@ class _Reader:
         loc = f"{where}.{key}"
         if key not in data:
             if required:
-                raise self.fail(loc, "missing component", hint=f"add {key} = \"<value> <tolerance>\"")
+                raise self.fail(loc, "missing component", hint=f'add {key} = "<value> <tolerance>"')
             return None
         raw = data[key]
         ref = ""
@@ -361,13 +374,19 @@ class _Reader:
             raise self.fail(loc, f"{exc.reason} ({value_text!r})", exc.hint) from None
         if value < 0 or (value == 0 and not allow_zero):
             what = "resistance" if kind == "resistor" else "value"
-            raise self.fail(loc, f"{what} must be greater than zero (got {value:g})",
-                            hint="remove the component if it is not fitted")
+            raise self.fail(
+                loc,
+                f"{what} must be greater than zero (got {value:g})",
+                hint="remove the component if it is not fitted",
+            )
         if tol_text is None:
             tol_text = default_tol
         if tol_text is None:
-            raise self.fail(loc, "no tolerance given",
-                            hint=f"write e.g. {key} = \"{value_text} 1%\" or set a default in [tolerances]")
+            raise self.fail(
+                loc,
+                "no tolerance given",
+                hint=f'write e.g. {key} = "{value_text} 1%" or set a default in [tolerances]',
+            )
         try:
             minus, plus = parse_tolerance(tol_text)
         except ValueParseError as exc:
@@ -375,8 +394,19 @@ class _Reader:
         return Part(nominal=value, tol_minus=minus, tol_plus=plus, ref=ref or loc, kind=kind)
 
 
-_CE_FIELDS = {"kind", "name", "transistor", "r1", "r2", "rc", "re", "re_bypassed", "c_e", "c_in",
-              "c_out"}
+_CE_FIELDS = {
+    "kind",
+    "name",
+    "transistor",
+    "r1",
+    "r2",
+    "rc",
+    "re",
+    "re_bypassed",
+    "c_e",
+    "c_in",
+    "c_out",
+}
 _EF_FIELDS = {"kind", "name", "transistor", "re", "r1", "r2", "c_in", "c_out", "coupling"}
 _INV_FIELDS = {"kind", "name", "opamp", "r_in", "r_f", "c_in", "c_out"}
 _NONINV_FIELDS = {"kind", "name", "opamp", "r_g", "r_f", "r_bias", "c_in", "c_g", "c_out"}
@@ -388,8 +418,11 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
     rd.known(data, {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "vbe_v", "note"}, where)
     polarity = rd.string(data, "polarity", where, default="npn").lower()
     if polarity != "npn":
-        raise rd.fail(f"{where}.polarity", f"polarity {polarity!r} is not supported",
-                      hint="describe NPN stages (polarity = \"npn\")")
+        raise rd.fail(
+            f"{where}.polarity",
+            f"polarity {polarity!r} is not supported",
+            hint='describe NPN stages (polarity = "npn")',
+        )
     vaf = rd.number(data, "vaf_v", where, default=0.0, positive=False) or None
     return Transistor(
         name=name,
@@ -405,8 +438,11 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
 def _opamp(rd: _Reader, name: str, data: Any, where: str) -> OpAmp:
     if not isinstance(data, Mapping):
         raise rd.fail(where, "must be a table")
-    rd.known(data, {"headroom_v", "gbw_hz", "open_loop_gain", "output_current_a", "quiescent_a",
-                    "note"}, where)
+    rd.known(
+        data,
+        {"headroom_v", "gbw_hz", "open_loop_gain", "output_current_a", "quiescent_a", "note"},
+        where,
+    )
     q = rd.spread(data, "quiescent_a", where, required=False)
     return OpAmp(
         name=name,
@@ -431,8 +467,11 @@ def _stage(
         raise rd.fail(where, "a stage must be a table")
     kind = rd.string(data, "kind", where)
     if kind not in STAGE_KINDS:
-        raise rd.fail(f"{where}.kind", f"unknown stage kind {kind!r}",
-                      hint=f"use one of: {', '.join(STAGE_KINDS)}")
+        raise rd.fail(
+            f"{where}.kind",
+            f"unknown stage kind {kind!r}",
+            hint=f"use one of: {', '.join(STAGE_KINDS)}",
+        )
     name = rd.string(data, "name", where)
     where = f"{where}({name})"
 
@@ -445,56 +484,108 @@ def _stage(
     def transistor() -> Transistor:
         ref = rd.string(data, "transistor", where)
         if ref not in transistors:
-            raise rd.fail(f"{where}.transistor", f"no transistor named {ref!r}",
-                          hint="define it in a [transistor.<name>] table")
+            raise rd.fail(
+                f"{where}.transistor",
+                f"no transistor named {ref!r}",
+                hint="define it in a [transistor.<name>] table",
+            )
         return transistors[ref]
 
     def opamp() -> OpAmp:
         ref = rd.string(data, "opamp", where)
         if ref not in opamps:
-            raise rd.fail(f"{where}.opamp", f"no op-amp named {ref!r}",
-                          hint="define it in an [opamp.<name>] table")
+            raise rd.fail(
+                f"{where}.opamp",
+                f"no op-amp named {ref!r}",
+                hint="define it in an [opamp.<name>] table",
+            )
         return opamps[ref]
 
     if kind == "common_emitter":
         rd.known(data, _CE_FIELDS, where)
         stage: Stage = CommonEmitter(
-            name=name, transistor=transistor(), r1=r("r1"), r2=r("r2"), rc=r("rc"),  # type: ignore[arg-type]
-            re=r("re"), re_bypassed=r("re_bypassed", False), c_e=c("c_e"),  # type: ignore[arg-type]
-            c_in=c("c_in"), c_out=c("c_out"),
+            name=name,
+            transistor=transistor(),
+            r1=r("r1"),
+            r2=r("r2"),
+            rc=r("rc"),  # type: ignore[arg-type]
+            re=rd.part(data, "re", where, tol_r, "resistor", allow_zero=True),  # type: ignore[arg-type]
+            re_bypassed=r("re_bypassed", False),
+            c_e=c("c_e"),
+            c_in=c("c_in"),
+            c_out=c("c_out"),
         )
+        if stage.re.nominal == 0 and stage.re_bypassed is None:
+            raise rd.fail(
+                f"{where}.re",
+                "resistance must be greater than zero (got 0)",
+                hint="re may be 0 only when re_bypassed carries the bias current",
+            )
         if stage.c_e is not None and stage.re_bypassed is None:
-            raise rd.fail(f"{where}.c_e", "bypass capacitor without re_bypassed",
-                          hint="give re_bypassed, the emitter resistance c_e bypasses")
+            raise rd.fail(
+                f"{where}.c_e",
+                "bypass capacitor without re_bypassed",
+                hint="give re_bypassed, the emitter resistance c_e bypasses",
+            )
     elif kind == "emitter_follower":
         rd.known(data, _EF_FIELDS, where)
         coupling = rd.string(data, "coupling", where, default="dc").lower()
         if coupling not in {"dc", "ac"}:
-            raise rd.fail(f"{where}.coupling", f"unknown coupling {coupling!r}",
-                          hint="use \"dc\" (base on the previous collector) or \"ac\"")
+            raise rd.fail(
+                f"{where}.coupling",
+                f"unknown coupling {coupling!r}",
+                hint='use "dc" (base on the previous collector) or "ac"',
+            )
         stage = EmitterFollower(
-            name=name, transistor=transistor(), re=r("re"),  # type: ignore[arg-type]
-            r1=r("r1", coupling == "ac"), r2=r("r2", coupling == "ac"),
-            c_in=c("c_in"), c_out=c("c_out"), dc_coupled=coupling == "dc",
+            name=name,
+            transistor=transistor(),
+            re=r("re"),  # type: ignore[arg-type]
+            r1=r("r1", coupling == "ac"),
+            r2=r("r2", coupling == "ac"),
+            c_in=c("c_in"),
+            c_out=c("c_out"),
+            dc_coupled=coupling == "dc",
         )
     elif kind == "opamp_inverting":
         rd.known(data, _INV_FIELDS, where)
-        stage = OpAmpInverting(name=name, opamp=opamp(), r_in=r("r_in"), r_f=r("r_f"),  # type: ignore[arg-type]
-                               c_in=c("c_in"), c_out=c("c_out"))
+        stage = OpAmpInverting(
+            name=name,
+            opamp=opamp(),
+            r_in=r("r_in"),
+            r_f=r("r_f"),  # type: ignore[arg-type]
+            c_in=c("c_in"),
+            c_out=c("c_out"),
+        )
     else:
         rd.known(data, _NONINV_FIELDS, where)
-        stage = OpAmpNonInverting(name=name, opamp=opamp(), r_g=r("r_g"), r_f=r("r_f"),  # type: ignore[arg-type]
-                                  r_bias=r("r_bias", False), c_in=c("c_in"), c_g=c("c_g"),
-                                  c_out=c("c_out"))
+        stage = OpAmpNonInverting(
+            name=name,
+            opamp=opamp(),
+            r_g=r("r_g"),
+            r_f=r("r_f"),  # type: ignore[arg-type]
+            r_bias=r("r_bias", False),
+            c_in=c("c_in"),
+            c_g=c("c_g"),
+            c_out=c("c_out"),
+        )
     return stage
 
 
-_TOP_FIELDS = {"board", "supply", "conditions", "limits", "tolerances", "transistor", "opamp",
-               "channel"}
+_TOP_FIELDS = {
+    "board",
+    "supply",
+    "conditions",
+    "limits",
+    "tolerances",
+    "transistor",
+    "opamp",
+    "channel",
+}
 
 
-def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes | None = None
-                    ) -> Board:
+def board_from_dict(
+    data: Mapping[str, Any], path: str = "<board>", raw: bytes | None = None
+) -> Board:
     """Validate a parsed board document and build the :class:`Board`.
 
     ``raw`` is the file's bytes, hashed into ``Board.digest`` so every limit and result can
@@ -531,23 +622,41 @@ def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes |
             raise rd.fail("supply.negative_v", exc.reason, exc.hint) from None
         if not neg < 0:
             raise rd.fail("supply.negative_v", "the negative rail must be below zero")
-        negative = Part(nominal=neg, tol_minus=minus, tol_plus=plus, ref="supply.negative_v",
-                        kind="voltage")
+        negative = Part(
+            nominal=neg, tol_minus=minus, tol_plus=plus, ref="supply.negative_v", kind="voltage"
+        )
     supply = Supply(positive=positive, negative=negative)  # type: ignore[arg-type]
 
     cond = rd.table(data, "conditions", "")
-    rd.known(cond, {"frequency_hz", "nominal_input_vrms", "safe_input_vrms", "source_ohm",
-                    "extra_frequencies_hz", "clip_criterion", "clip_thd_percent",
-                    "clip_compression_db", "load_ohm"}, "conditions")
+    rd.known(
+        cond,
+        {
+            "frequency_hz",
+            "nominal_input_vrms",
+            "safe_input_vrms",
+            "source_ohm",
+            "extra_frequencies_hz",
+            "clip_criterion",
+            "clip_thd_percent",
+            "clip_compression_db",
+            "load_ohm",
+        },
+        "conditions",
+    )
     extra = cond.get("extra_frequencies_hz", [])
     if not isinstance(extra, list):
         raise rd.fail("conditions.extra_frequencies_hz", "must be a list of frequencies")
-    extra_hz = tuple(rd.number({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
-                     for i, f in enumerate(extra))
+    extra_hz = tuple(
+        rd.number({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
+        for i, f in enumerate(extra)
+    )
     criterion = rd.string(cond, "clip_criterion", "conditions", default="thd").lower()
     if criterion not in {"thd", "compression"}:
-        raise rd.fail("conditions.clip_criterion", f"unknown criterion {criterion!r}",
-                      hint="use \"thd\" or \"compression\"")
+        raise rd.fail(
+            "conditions.clip_criterion",
+            f"unknown criterion {criterion!r}",
+            hint='use "thd" or "compression"',
+        )
     conditions = Conditions(
         frequency_hz=rd.number(cond, "frequency_hz", "conditions"),
         nominal_input_vrms=rd.number(cond, "nominal_input_vrms", "conditions"),
@@ -559,8 +668,11 @@ def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes |
         clip_compression_db=rd.number(cond, "clip_compression_db", "conditions", default=1.0),
     )
     if conditions.nominal_input_vrms > conditions.safe_input_vrms:
-        raise rd.fail("conditions.nominal_input_vrms", "nominal input is above the safe input level",
-                      hint="lower nominal_input_vrms or check safe_input_vrms")
+        raise rd.fail(
+            "conditions.nominal_input_vrms",
+            "nominal input is above the safe input level",
+            hint="lower nominal_input_vrms or check safe_input_vrms",
+        )
     if conditions.clip_thd_percent >= 100:
         raise rd.fail("conditions.clip_thd_percent", "must be under 100 %")
     board_load = rd.part(cond, "load_ohm", "conditions", tol_r or "0%", "resistor")
@@ -571,9 +683,13 @@ def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes |
     rd.known(lim, {"method", "samples", "coverage", "seed", "worst_case"}, "limits")
     method = rd.string(lim, "method", "limits", default="monte_carlo")
     if method != "monte_carlo":
-        raise rd.fail("limits.method", f"unknown method {method!r}", hint="use \"monte_carlo\"")
+        raise rd.fail("limits.method", f"unknown method {method!r}", hint='use "monte_carlo"')
     samples = lim.get("samples", 20000)
-    if not isinstance(samples, int) or isinstance(samples, bool) or not 100 <= samples <= 10_000_000:
+    if (
+        not isinstance(samples, int)
+        or isinstance(samples, bool)
+        or not 100 <= samples <= 10_000_000
+    ):
         raise rd.fail("limits.samples", "must be a whole number from 100 to 10000000")
     coverage = rd.number(lim, "coverage", "limits", default=0.9973)
     if not 0.5 <= coverage < 1.0:
@@ -584,8 +700,9 @@ def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes |
     worst = lim.get("worst_case", True)
     if not isinstance(worst, bool):
         raise rd.fail("limits.worst_case", "must be true or false")
-    policy = LimitPolicy(method="monte_carlo", samples=samples, coverage=coverage, seed=seed,
-                         worst_case=worst)
+    policy = LimitPolicy(
+        method="monte_carlo", samples=samples, coverage=coverage, seed=seed, worst_case=worst
+    )
 
     transistors: dict[str, Transistor] = {}
     tdata = data.get("transistor", {})
@@ -626,27 +743,45 @@ def board_from_dict(data: Mapping[str, Any], path: str = "<board>", raw: bytes |
         if len(set(names)) != len(names):
             raise rd.fail(f"{where}.stage", "two stages share a name")
         if isinstance(stages[0], EmitterFollower) and stages[0].dc_coupled:
-            raise rd.fail(f"{where}.stage[0]", "the first stage cannot be DC-coupled to a previous "
-                          "stage", hint="use coupling = \"ac\" with r1, r2 and c_in")
+            raise rd.fail(
+                f"{where}.stage[0]",
+                "the first stage cannot be DC-coupled to a previous stage",
+                hint='use coupling = "ac" with r1, r2 and c_in',
+            )
         for j, s in enumerate(stages[1:], start=1):
-            if isinstance(s, EmitterFollower) and s.dc_coupled and not isinstance(
-                stages[j - 1], CommonEmitter
+            if (
+                isinstance(s, EmitterFollower)
+                and s.dc_coupled
+                and not isinstance(stages[j - 1], CommonEmitter)
             ):
-                raise rd.fail(f"{where}.stage[{j}]({s.name}).coupling",
-                              "a DC-coupled follower must follow a common-emitter stage",
-                              hint="use coupling = \"ac\"")
+                raise rd.fail(
+                    f"{where}.stage[{j}]({s.name}).coupling",
+                    "a DC-coupled follower must follow a common-emitter stage",
+                    hint='use coupling = "ac"',
+                )
             if isinstance(s, EmitterFollower) and s.dc_coupled and stages[j - 1].c_out is not None:
-                raise rd.fail(f"{where}.stage[{j - 1}]({stages[j - 1].name}).c_out",
-                              "the previous stage has c_out but the follower is DC-coupled",
-                              hint="remove c_out or set coupling = \"ac\" on the follower")
+                raise rd.fail(
+                    f"{where}.stage[{j - 1}]({stages[j - 1].name}).c_out",
+                    "the previous stage has c_out but the follower is DC-coupled",
+                    hint='remove c_out or set coupling = "ac" on the follower',
+                )
         needs_neg = any(isinstance(s, OpAmpInverting | OpAmpNonInverting) for s in stages)
         if needs_neg and supply.negative is None:
-            raise rd.fail(f"{where}.stage", "op-amp stages need a split supply",
-                          hint="add negative_v to [supply]")
+            raise rd.fail(
+                f"{where}.stage",
+                "op-amp stages need a split supply",
+                hint="add negative_v to [supply]",
+            )
         load = rd.part(ch, "load_ohm", where, tol_r or "0%", "resistor", required=False)
-        channels.append(Channel(name=cname, input=rd.string(ch, "input", where, default="IN"),
-                                output=rd.string(ch, "output", where, default="OUT"),
-                                stages=stages, load_ohm=load or board_load))  # type: ignore[arg-type]
+        channels.append(
+            Channel(
+                name=cname,
+                input=rd.string(ch, "input", where, default="IN"),
+                output=rd.string(ch, "output", where, default="OUT"),
+                stages=stages,
+                load_ohm=load or board_load,
+            )
+        )  # type: ignore[arg-type]
 
     digest = hashlib.sha256(raw).hexdigest() if raw is not None else ""
     return Board(

@@ -32,11 +32,33 @@ junk_values = st.one_of(
     st.integers(min_value=-(10**12), max_value=10**12),
     st.floats(allow_nan=True, allow_infinity=True),
     st.text(max_size=12),
-    st.sampled_from(["4k7", "R47", "0", "-1k", "1e400", "10%", "150%", "k", "4k7 J", "1k ±",
-                     "npn", "pnp", "common_emitter", "warp_drive", "", " ", "+80%/-20%"]),
+    st.sampled_from(
+        [
+            "4k7",
+            "R47",
+            "0",
+            "-1k",
+            "1e400",
+            "10%",
+            "150%",
+            "k",
+            "4k7 J",
+            "1k ±",
+            "npn",
+            "pnp",
+            "common_emitter",
+            "warp_drive",
+            "",
+            " ",
+            "+80%/-20%",
+        ]
+    ),
     st.lists(st.integers(), max_size=3),
-    st.dictionaries(st.sampled_from(["value", "tol", "ref", "min", "typ", "max", "x"]),
-                    st.one_of(st.text(max_size=5), st.floats(), st.integers()), max_size=3),
+    st.dictionaries(
+        st.sampled_from(["value", "tol", "ref", "min", "typ", "max", "x"]),
+        st.one_of(st.text(max_size=5), st.floats(), st.integers()),
+        max_size=3,
+    ),
 )
 
 
