@@ -186,6 +186,8 @@ class Session:
             # A raw socket has no END indicator: without a read termination every read
             # times out.
             res.read_termination = "\n"
+        if _is_socket(self.resource):
+            _set_nodelay(res)
         self._res = res
         self._broken = False
 
@@ -507,3 +509,21 @@ class Session:
         if reply.strip() not in ("1", "+1"):
             raise self._typed(MalformedReply, f"*OPC? answered {reply!r}, expected 1", cmd)
         log.debug("%s operation complete after %.3f s", self.resource, time.perf_counter() - t0)
+
+
+def _set_nodelay(res: Any) -> None:
+    """Switch Nagle's algorithm off on a raw-socket resource (added by the run layer).
+
+    pyvisa-py does not apply VI_ATTR_TCPIP_NODELAY to SOCKET sessions, so a command followed
+    by a query (write, then SYSTem:ERRor?) waits for the peer's delayed ACK: about 40 ms per
+    configuration step on loopback.  Best effort: a backend without the socket keeps Nagle.
+    """
+    import socket
+
+    try:
+        sess = res.visalib.sessions.get(res.session)
+        sock = getattr(sess, "interface", None)
+        if isinstance(sock, socket.socket):
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+    except (AttributeError, OSError, TypeError) as exc:  # other backends: leave as is
+        log.debug("TCP_NODELAY not set on %s: %s", getattr(res, "resource_name", "?"), exc)

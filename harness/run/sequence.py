@@ -1,0 +1,1397 @@
+"""The test sequence for one board: supply, DC test points, gain / phase / THD, clipping
+threshold, extra frequencies; every measurement decided and stored as soon as it is made.
+
+Only driver calls here, no SCPI text.  Safety lives in :mod:`harness.run.safety` and is
+used on every path: the generator output is off before the first step, after the last and
+on any exit (exception, Ctrl-C, SIGTERM, a lost instrument); no level above the board's
+safe input level is ever commanded; rises ramp; the supply goes off when the quiescent
+check fails and at the end.
+
+Steps, in order:
+
+1. before any signal: limits the bench cannot resolve (a THD limit under the scope's
+   floor) are stored as ``not resolvable``;
+2. supply on with its current limit; the quiescent current against the model's limit (a
+   shorted board stops here, supply off, verdict FAIL);
+3. DC test points with the DMM through the switch, against the operating-point limits;
+4. per group of channels the scope sees at once: a coherent record at the nominal level
+   (gain, phase, THD), then the clipping-threshold search started at the model's predicted
+   threshold, every channel of the group advancing from the same acquisitions;
+5. gain at the board's extra frequencies (information: the model gives no limits there).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import math
+import time
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field, replace
+from typing import Any, Literal
+
+import numpy as np
+
+from harness import __version__
+from harness.errors import (
+    AmpbenchError,
+    AnalysisError,
+    FixtureFileError,
+    InstrumentError,
+    RunAborted,
+)
+from harness.measure import (
+    ClipCriterion,
+    RecordAnalysis,
+    SearchStep,
+    analyze_uniform,
+    clip_threshold,
+    measurement_floor,
+    next_search_level,
+    plan_coherent,
+)
+from harness.measure.floor import FLOOR_MARGIN
+from harness.model.board import Board
+from harness.run.decisions import (
+    STRICT,
+    BenchUncertainty,
+    DecisionPolicy,
+    amplitude_rel_u,
+    decide,
+    gain_uncertainty_db,
+    thd_uncertainty_percent,
+    threshold_uncertainty_db,
+)
+from harness.run.fixture import ChannelConnection, FixtureConfig
+from harness.run.progress import NullProgress, Progress
+from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
+from harness.store import MeasurementRow, RunHeader, SweepPointRow
+
+log = logging.getLogger("harness.run.sequence")
+
+#: Record length cap: longer records lower the floor but cost acquisition time.
+MAX_POINTS = 20000
+#: Longest record wanted (acquisition time per step).
+MAX_RECORD_S = 0.1
+#: Test frequency may differ from the board's by this fraction (coherent sampling).
+FREQ_TOLERANCE = 0.01
+#: Fewest cycles in a record (sine fit and harmonics stay well conditioned).
+MIN_CYCLES = 5
+#: A record fills at most this fraction of the scope range (headroom for tolerances).
+RANGE_FILL = 0.8
+#: Output fill for the clipping search: the digitiser's own nonlinearity (integral
+#: nonlinearity makes harmonics that grow with the fraction of full scale used) would
+#: otherwise add to or cancel the board's harmonics near the criterion.
+SEARCH_FILL = 0.4
+#: A record using less than this fraction of its target fill is re-ranged down.
+RANGE_UNDERUSE = 0.35
+#: Phase tolerance of the polarity check: a wrong polarity reads 180 degrees off.
+PHASE_TOLERANCE_DEG = 45.0
+#: Expanded uncertainty of a phase reading (degrees); small against the tolerance.
+PHASE_U_DEG = 1.0
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """How a run is made.  ``settle_wait_s`` None waits the model's settle time after each
+    level change; a number overrides it (stated in the run record).  ``settle="verify"``
+    repeats the record after a level change until two agree instead of waiting."""
+
+    operator: str = ""
+    station_name: str = ""
+    keep_records: bool = False
+    policy: DecisionPolicy = STRICT
+    bench: BenchUncertainty = field(default_factory=BenchUncertainty)
+    settle: Literal["wait", "verify"] = "wait"
+    settle_wait_s: float | None = None
+    max_step_up_db: float = 6.0
+    resolution_db: float = 0.1
+    max_search_acquisitions: int = 24
+    max_rerange: int = 4
+    max_points: int = MAX_POINTS
+    extra_frequencies: bool = True
+    correct_adc_nonlinearity: bool = True
+    sleep: Callable[[float], None] = time.sleep
+
+
+@dataclass
+class ChannelVerdict:
+    channel: str
+    verdict: Literal["PASS", "FAIL"]
+    failing: list[str]
+
+
+@dataclass
+class RunResult:
+    run_id: int
+    serial: str
+    status: Literal["complete", "aborted"]
+    verdict: Literal["PASS", "FAIL"] | None
+    reason: str | None
+    retest: int
+    measurements: list[MeasurementRow]
+    channels: dict[str, ChannelVerdict]
+    acquisitions: int
+    search_acquisitions: int
+    generator_state: str
+    settle_note: str
+    elapsed_s: float
+    instrument_s: float
+    waiting_s: float
+
+    @property
+    def overhead_s(self) -> float:
+        """Time not spent in instrument calls or settling waits."""
+        return max(self.elapsed_s - self.instrument_s - self.waiting_s, 0.0)
+
+    def failing(self) -> list[MeasurementRow]:
+        return [m for m in self.measurements if m.decision not in ("pass", "info")]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "run_id": self.run_id,
+            "serial": self.serial,
+            "status": self.status,
+            "verdict": self.verdict,
+            "reason": self.reason,
+            "retest": self.retest,
+            "channels": {
+                k: {"verdict": v.verdict, "failing": v.failing} for k, v in self.channels.items()
+            },
+            "acquisitions": self.acquisitions,
+            "search_acquisitions": self.search_acquisitions,
+            "generator_state": self.generator_state,
+            "settle_note": self.settle_note,
+            "elapsed_s": round(self.elapsed_s, 3),
+            "measurements": [
+                {
+                    "channel": m.channel,
+                    "name": m.name,
+                    "value": m.value,
+                    "unit": m.unit,
+                    "low": m.low,
+                    "high": m.high,
+                    "uncertainty": m.uncertainty,
+                    "decision": m.decision,
+                    "step": m.step,
+                    "detail": json.loads(m.detail_json) if m.detail_json else None,
+                }
+                for m in self.measurements
+            ],
+        }
+
+
+class _Clock:
+    """Time spent inside instrument calls, for the overhead figure."""
+
+    def __init__(self) -> None:
+        self.instrument_s = 0.0
+        self.waiting_s = 0.0
+
+
+class _Timed:
+    """Proxy of a driver that adds the time of every method call to a clock."""
+
+    def __init__(self, target: Any, clock: _Clock) -> None:
+        self._target = target
+        self._clock = clock
+
+    def __getattr__(self, name: str) -> Any:
+        value = getattr(self._target, name)
+        if not callable(value):
+            return value
+        clock = self._clock
+
+        def call(*args: Any, **kwargs: Any) -> Any:
+            t0 = time.perf_counter()
+            try:
+                return value(*args, **kwargs)
+            finally:
+                clock.instrument_s += time.perf_counter() - t0
+
+        return call
+
+
+def choose_range(vpp: float, ranges: Iterable[float], fill: float = RANGE_FILL) -> float:
+    """Smallest scope range holding ``vpp`` within ``fill`` of full scale (else the largest)."""
+    rs = sorted(float(r) for r in ranges)
+    for r in rs:
+        if vpp <= fill * r:
+            return r
+    return rs[-1]
+
+
+def _wrap_near(phase_deg: float, expected: float) -> float:
+    d = (phase_deg - expected + 180.0) % 360.0 - 180.0
+    return expected + d
+
+
+def _identity_text(identity: Any) -> str:
+    if isinstance(identity, str):
+        return identity
+    fields = [getattr(identity, k, "") for k in ("maker", "model", "serial", "firmware")]
+    if any(fields):
+        return ",".join(str(f) for f in fields)
+    return str(identity)
+
+
+def _limit_get(limit: Any, attr: str) -> float | None:
+    v = getattr(limit, attr, None)
+    return None if v is None else float(v)
+
+
+@dataclass
+class _ChannelState:
+    conn: ChannelConnection
+    limits: Any
+    points: list[RecordAnalysis] = field(default_factory=list)
+    levels_commanded: list[float] = field(default_factory=list)
+    done: bool = False
+    step: Any = None
+    nominal: RecordAnalysis | None = None
+
+
+class Sequencer:
+    """One board's run; use :func:`run_board`."""
+
+    def __init__(
+        self,
+        instruments: Any,
+        board: Board,
+        limits: Any,
+        fixture: FixtureConfig,
+        serial: str,
+        store: Any,
+        options: RunOptions,
+        progress: Progress,
+        *,
+        board_file: str,
+        station_file: str,
+    ) -> None:
+        self.clock = _Clock()
+        self.inst = instruments
+        self.gen_raw = _Timed(instruments.generator, self.clock)
+        self.scope = _Timed(instruments.scope, self.clock)
+        self.switch = _Timed(instruments.switch, self.clock) if instruments.switch else None
+        self.dmm = _Timed(instruments.dmm, self.clock) if instruments.dmm else None
+        self.supply_raw = _Timed(instruments.supply, self.clock) if instruments.supply else None
+        self.board = board
+        self.limits = limits
+        self.fixture = fixture
+        self.serial = serial
+        self.store = store
+        self.opt = options
+        self.progress = progress
+        self.board_file = board_file
+        self.station_file = station_file
+        self.rows: list[MeasurementRow] = []
+        self.run_id = -1
+        self.acquisitions = 0
+        self.search_acquisitions = 0
+        self.ranges: dict[int, float] = {}
+        self.scope_ranges = tuple(float(r) for r in self.scope.ranges_vpp)
+        cond = board.conditions
+        self.criterion = ClipCriterion(
+            kind=cond.clip_criterion,
+            threshold_percent=cond.clip_thd_percent,
+            db=cond.clip_compression_db,
+        )
+        self.settle_s = (
+            options.settle_wait_s
+            if options.settle_wait_s is not None
+            else max(
+                float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels
+            )
+        )
+        if options.settle == "verify":
+            self.settle_note = (
+                "settling verified by repeating the record after each level "
+                "change until gain and THD agree"
+            )
+        elif options.settle_wait_s is not None:
+            self.settle_note = (
+                f"waited {self.settle_s:.3g} s after each level change "
+                "(operator override of the model's settle time)"
+            )
+        else:
+            self.settle_note = (
+                f"waited the model's settle time {self.settle_s:.3g} s after each level change"
+            )
+        self.safe = SafeGenerator(
+            self.gen_raw,
+            cond.safe_input_vrms,
+            direct_vrms=cond.nominal_input_vrms,
+            max_step_up_db=options.max_step_up_db,
+            output=fixture.generator_output,
+        )
+        self.supply: SupplyGuard | None = None
+        if fixture.supply is not None and self.supply_raw is not None:
+            s = fixture.supply
+            neg = (
+                (s.negative_output, float(s.negative_voltage_v))
+                if s.negative_output is not None and s.negative_voltage_v is not None
+                else None
+            )
+            self.supply = SupplyGuard(
+                self.supply_raw, s.voltage_v, s.current_limit_a, s.output, negative=neg
+            )
+        self.plan = self._plan(cond.frequency_hz)
+        self.step_name = "setup"
+        self._timebase: tuple[float, int] | None = None
+        self._fill: dict[int, float] = {}
+        self._raw_thd: dict[int, float] = {}
+        self._trigger: int | None = None
+
+    # --- helpers --------------------------------------------------------------------
+    def _plan(self, frequency_hz: float) -> Any:
+        """A coherent record near ``frequency_hz``: the longest record (lowest noise floor)
+        that lasts at most MAX_RECORD_S, relaxed step by step if none fits."""
+        lengths = sorted(
+            (n for n in self.scope.record_lengths if n <= self.opt.max_points), reverse=True
+        ) or [min(self.scope.record_lengths)]
+        rates = list(self.scope.sample_rates_hz)
+        last: Exception | None = None
+        for max_s in (MAX_RECORD_S, 2.5 * MAX_RECORD_S, 10 * MAX_RECORD_S):
+            for n in lengths:
+                try:
+                    plan = plan_coherent(
+                        frequency_hz,
+                        rates,
+                        [n],
+                        min_cycles=MIN_CYCLES,
+                        tolerance_rel=FREQ_TOLERANCE,
+                    )
+                except AnalysisError as exc:
+                    last = exc
+                    continue
+                if plan.n_samples / plan.sample_rate_hz <= max_s:
+                    return plan
+        return (
+            plan_coherent(frequency_hz, rates, lengths, min_cycles=MIN_CYCLES)
+            if last
+            else plan_coherent(frequency_hz, rates, lengths)
+        )
+
+    def _row(
+        self,
+        channel: str,
+        name: str,
+        value: float | None,
+        unit: str,
+        low: float | None,
+        high: float | None,
+        u: float | None,
+        decision: str,
+        detail: dict | None = None,
+    ) -> MeasurementRow:
+        row = MeasurementRow(
+            channel=channel,
+            name=name,
+            value=value,
+            unit=unit,
+            low=low,
+            high=high,
+            uncertainty=u,
+            decision=decision,
+            step=self.step_name,
+            detail_json=json.dumps(detail, default=_json_default) if detail else None,
+        )
+        self.store.add_measurement(self.run_id, row)
+        self.rows.append(row)
+        self.progress.measurement(row)
+        return row
+
+    def _decide_row(
+        self,
+        channel: str,
+        name: str,
+        value: float | None,
+        unit: str,
+        limit: Any,
+        u: float,
+        detail: dict | None = None,
+    ) -> MeasurementRow:
+        low, high = _limit_get(limit, "low"), _limit_get(limit, "high")
+        if value is None or not math.isfinite(value):
+            decision = "fail" if (low is not None or high is not None) else "info"
+            value = None
+        else:
+            decision = decide(value, low, high, u)
+        if self._unresolvable(channel, name):
+            decision = "not resolvable"
+        return self._row(channel, name, value, unit, low, high, u, decision, detail)
+
+    def _unresolvable(self, channel: str, name: str) -> bool:
+        return any(
+            r.channel == channel
+            and r.name == name
+            and r.decision == "not resolvable"
+            and r.step == "precheck"
+            for r in self.rows
+        )
+
+    def _wait_settle(self, *, always: bool = False) -> None:
+        """Wait the settle time after a change (in "verify" mode only when ``always``)."""
+        if (always or self.opt.settle == "wait") and self.settle_s > 0:
+            t0 = time.perf_counter()
+            self.opt.sleep(self.settle_s)
+            self.clock.waiting_s += time.perf_counter() - t0
+        hb = getattr(self.store, "heartbeat", None)
+        if hb is not None:
+            hb(self.run_id)
+
+    # --- acquisition ----------------------------------------------------------------
+    def _tip_ranges(self, probe: float) -> tuple[float, ...]:
+        return tuple(r * probe for r in self.scope_ranges)
+
+    def _set_range(self, scope_input: int, range_vpp: float, probe: float) -> None:
+        """Configure an input for a full-scale range in probe-tip volts (only on change)."""
+        if self.ranges.get(scope_input) == range_vpp:
+            return
+        setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
+
+    def _preset_ranges(
+        self, group: list[_ChannelState], level_vrms: float, fill: float = RANGE_FILL
+    ) -> None:
+        """Ranges from the expected levels: the input from the level, each output from the
+        level times the gain (the nominal record's once known, else the model's)."""
+        for st in group:
+            c = st.conn
+            # The input probe at the same fill as the output: its record then carries the
+            # digitiser's own harmonics at the same fraction of full scale (added_thd_percent).
+            self._set_range(
+                c.input_scope,
+                choose_range(2 * math.sqrt(2) * level_vrms, self._tip_ranges(c.input_probe), fill),
+                c.input_probe,
+            )
+            self._fill[c.input_scope] = fill
+            if st.nominal is not None and st.nominal.gain is not None:
+                gain = abs(st.nominal.gain)
+            else:
+                gain = (
+                    float(st.limits.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
+                )
+            out_vpp = 2 * math.sqrt(2) * level_vrms * gain
+            # Past clipping the output stops growing: never range above the supply span.
+            span = self.board.supply.v_pos - self.board.supply.v_neg
+            out_vpp = min(out_vpp, 1.1 * span)
+            self._set_range(
+                c.output_scope,
+                choose_range(out_vpp, self._tip_ranges(c.output_probe), fill),
+                c.output_probe,
+            )
+            self._fill[c.output_scope] = fill
+
+    def _inputs(self, group: list[_ChannelState]) -> list[int]:
+        used: list[int] = []
+        for st in group:
+            for n in (st.conn.input_scope, st.conn.output_scope):
+                if n not in used:
+                    used.append(n)
+        return used
+
+    def _acquire(
+        self, group: list[_ChannelState], plan: Any, label: str
+    ) -> dict[str, RecordAnalysis]:
+        """One acquisition of every input of the group (re-ranged and repeated when a record
+        is over-range or uses too little of its range, at most ``max_rerange`` times)."""
+        inputs = self._inputs(group)
+        tb = (float(plan.sample_rate_hz), int(plan.n_samples))
+        if self._timebase != tb:
+            self.scope.configure_timebase(*tb)
+            self._timebase = tb
+        if self._trigger != inputs[0]:
+            self.scope.configure_trigger(inputs[0], 0.0)
+            self._trigger = inputs[0]
+        for attempt in range(self.opt.max_rerange + 1):
+            acq = self.scope.acquire(inputs)
+            self.acquisitions += 1
+            changed = False
+            for n in inputs:
+                v = np.asarray(acq.volts[n], dtype=float)
+                lo, hi = acq.adc_limits[n]
+                lsb = (hi - lo) / 2 ** int(acq.bits)
+                over = bool(np.any(v >= hi - 0.5 * lsb) or np.any(v <= lo + 0.5 * lsb))
+                rng = self.ranges.get(n, hi - lo)
+                pkpk = float(np.max(v) - np.min(v))
+                new = rng
+                probe = next(
+                    (s.conn.input_probe if s.conn.input_scope == n else s.conn.output_probe)
+                    for s in group
+                    if n in (s.conn.input_scope, s.conn.output_scope)
+                )
+                tips = self._tip_ranges(probe)
+                if over:
+                    bigger = [r for r in tips if r > rng * (1 + 1e-9)]
+                    new = bigger[0] if bigger else rng
+                elif pkpk < RANGE_UNDERUSE * self._fill.get(n, RANGE_FILL) * rng:
+                    new = min(choose_range(pkpk, tips, self._fill.get(n, RANGE_FILL)), rng)
+                if new != rng and attempt < self.opt.max_rerange:
+                    self.progress.note(
+                        f"scope input {n}: range {rng:g} -> {new:g} Vpp "
+                        f"({'over-range' if over else 'under-used'})"
+                    )
+                    self.ranges.pop(n, None)
+                    self._set_range(n, new, probe)
+                    changed = True
+            if changed:
+                continue
+            break
+        out: dict[str, RecordAnalysis] = {}
+        for st in group:
+            c = st.conn
+            x = np.asarray(acq.volts[c.input_scope], dtype=float)
+            y = np.asarray(acq.volts[c.output_scope], dtype=float)
+            a = analyze_uniform(
+                x,
+                y,
+                acq.sample_rate_hz,
+                in_adc=tuple(acq.adc_limits[c.input_scope]),
+                out_adc=tuple(acq.adc_limits[c.output_scope]),
+                adc_bits=int(acq.bits),
+                frequency_hz=plan.frequency_hz,
+            )
+            if a.thd_percent is not None and self.opt.correct_adc_nonlinearity:
+                corr = added_thd_percent(
+                    x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
+                )
+                if corr is not None:
+                    self._raw_thd[id(a)] = a.thd_percent
+                    a = replace(a, thd_percent=corr)
+            out[c.board_channel] = a
+            if self.opt.keep_records:
+                self.store.add_record(
+                    self.run_id,
+                    c.board_channel,
+                    label,
+                    acq.sample_rate_hz,
+                    {
+                        "input": np.asarray(acq.volts[c.input_scope]),
+                        "output": np.asarray(acq.volts[c.output_scope]),
+                    },
+                )
+        return out
+
+    def _measure_at(
+        self,
+        group: list[_ChannelState],
+        level_vrms: float,
+        plan: Any,
+        label: str,
+        fill: float = RANGE_FILL,
+    ) -> dict[str, RecordAnalysis]:
+        """Move the generator (ramped), let the board settle, record."""
+        changed = abs(level_vrms - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
+        self._preset_ranges(group, level_vrms, fill)
+        self.safe.set_level(level_vrms)
+        if self.safe.output_state != "on":
+            self.safe.on()
+        if changed:
+            self._wait_settle()
+        res = self._acquire(group, plan, label)
+        if self.opt.settle == "verify" and changed:
+            for _ in range(4):
+                again = self._acquire(group, plan, label + " (settling check)")
+                if all(_agree(res[k], again[k]) for k in res):
+                    res = again
+                    break
+                res = again
+        return res
+
+    # --- steps ----------------------------------------------------------------------
+    def validate(self) -> None:
+        """Checks of the inputs against the model, before anything is stored or driven."""
+        sup = self.limits.supply_current_a
+        high = _limit_get(sup, "high")
+        if (
+            self.fixture.supply is not None
+            and high is not None
+            and self.fixture.supply.current_limit_a < high
+        ):
+            raise FixtureFileError(
+                self.fixture.path,
+                "supply.current_limit_a",
+                f"{self.fixture.supply.current_limit_a:g} A is below the board's highest "
+                f"quiescent current {high:.3g} A: a good board would trip the supply",
+                hint=f"set current_limit_a to at least {1.5 * high:.2g}",
+            )
+        missing = [
+            c.board_channel
+            for c in self.fixture.channels
+            if c.board_channel not in self.limits.channels
+        ]
+        if missing:
+            raise FixtureFileError(
+                self.fixture.path,
+                "channel",
+                f"no limits for channel(s) {', '.join(missing)}",
+                hint="recompute the limits for this board file",
+            )
+
+    def precheck(self) -> None:
+        """Before any signal: limits the bench cannot resolve are stored as such."""
+        self.step_name = "precheck"
+        bits = _scope_bits(self.inst.scope)
+        for c in self.fixture.channels:
+            lim = self.limits.channels[c.board_channel]
+            vout = float(lim.output_vrms_nominal)
+            rng = choose_range(2 * math.sqrt(2) * vout, self._tip_ranges(c.output_probe))
+            fl = measurement_floor(bits, rng, vout * math.sqrt(2), 0.0, self.plan.n_samples)
+            high = _limit_get(lim.thd_percent, "high")
+            resolvable_at = FLOOR_MARGIN * fl.thd_percent
+            if high is not None and high < resolvable_at:
+                self._row(
+                    c.board_channel,
+                    "thd",
+                    None,
+                    "%",
+                    None,
+                    high,
+                    None,
+                    "not resolvable",
+                    {
+                        "floor_percent": fl.thd_percent,
+                        "resolvable_from_percent": resolvable_at,
+                        "why": "THD limit below the bench's measurement floor",
+                    },
+                )
+            if self.criterion.kind == "thd" and self.criterion.threshold_percent < resolvable_at:
+                clim = lim.clip_input_vrms
+                self._row(
+                    c.board_channel,
+                    "clip_input",
+                    None,
+                    "V rms",
+                    _limit_get(clim, "low"),
+                    _limit_get(clim, "high"),
+                    None,
+                    "not resolvable",
+                    {"why": "clip criterion THD below the bench's floor"},
+                )
+            clim = lim.clip_input_vrms
+            low = _limit_get(clim, "low")
+            if low is not None and low > self.board.conditions.safe_input_vrms:
+                self._row(
+                    c.board_channel,
+                    "clip_input",
+                    None,
+                    "V rms",
+                    low,
+                    _limit_get(clim, "high"),
+                    None,
+                    "not resolvable",
+                    {"why": "the whole limit lies above the safe input level"},
+                )
+
+    def quiescent(self) -> bool:
+        """Supply on; False when the board draws the wrong current (supply then off)."""
+        if self.supply is None:
+            return True
+        self.step_name = "supply"
+        self.progress.step("supply", "supply on, quiescent current")
+        self.supply.on()
+        self._wait_settle(always=True)  # coupling capacitors charge: wait in every mode
+        tripped = self.supply.tripped()
+        current = self.supply.current_a()
+        lim = self.limits.supply_current_a
+        u = 2 * (0.005 * abs(current) + 20e-6)  # supply read-back: common practice figure
+        self._decide_row(
+            "",
+            "supply_current",
+            current,
+            "A",
+            lim,
+            u,
+            {"tripped": tripped, "current_limit_a": self.supply.current_limit_a},
+        )
+        if tripped or _gross(current, lim, self.supply.current_limit_a):
+            self.supply.off()
+            self.progress.note(
+                "quiescent current grossly out of limits (short or open "
+                "supply path): supply off, no signal applied"
+            )
+            return False
+        return True
+
+    def dc_points(self) -> None:
+        if not self.fixture.test_points or self.dmm is None:
+            return
+        self.step_name = "dc"
+        self.progress.step("dc", f"{len(self.fixture.test_points)} DC test points")
+        b = self.opt.bench
+        del b
+        for tp in self.fixture.test_points:
+            lim = self.limits.channels[tp.board_channel].operating_point.get(tp.key)
+            if tp.route and self.switch is not None:
+                self.switch.close(list(tp.route))
+            try:
+                v = float(self.dmm.dc_volts())
+            finally:
+                if tp.route and self.switch is not None:
+                    self.switch.open(list(tp.route))
+            u = 2 * (0.0005 * abs(v) + 0.5e-3)  # DMM read-back: common practice figure
+            self._decide_row(
+                tp.board_channel,
+                f"dc.{tp.key}",
+                v,
+                "V",
+                lim,
+                u,
+                {"test_point": tp.name, "quantity": tp.key},
+            )
+
+    def nominal(self, group: list[_ChannelState]) -> None:
+        self.step_name = "nominal"
+        names = ", ".join(s.conn.board_channel for s in group)
+        self.progress.step(
+            "nominal", f"gain, phase, THD at {self.plan.frequency_hz:.6g} Hz ({names})"
+        )
+        level = self.board.conditions.nominal_input_vrms
+        # the generator at the planned (coherent) frequency exactly, output still off
+        self.safe.configure(self.plan.frequency_hz, level)
+        res = self._measure_at(group, level, self.plan, "nominal")
+        b = self.opt.bench
+        for st in group:
+            ch = st.conn.board_channel
+            a = res[ch]
+            st.nominal = a
+            lim = st.limits
+            detail = {"record": a.to_dict(), "level_vrms": level}
+            if a.gain_db is None:
+                for name, unit, limit in (
+                    ("gain", "dB", lim.gain_db),
+                    ("thd", "%", lim.thd_percent),
+                ):
+                    self._decide_row(ch, name, None, unit, limit, 0.0, detail)
+                continue
+            u_in = amplitude_rel_u(_resid_ratio(a, "in"), a.n_samples)
+            u_out = amplitude_rel_u((a.thdn_percent or 0.0) / 100, a.n_samples)
+            ug = gain_uncertainty_db(u_in, u_out, b)
+            self._decide_row(ch, "gain", a.gain_db, "dB", lim.gain_db, ug, detail)
+            expected = float(lim.phase_deg)
+            ph = _wrap_near(a.phase_deg, expected)
+            self._row(
+                ch,
+                "phase",
+                ph,
+                "deg",
+                expected - PHASE_TOLERANCE_DEG,
+                expected + PHASE_TOLERANCE_DEG,
+                PHASE_U_DEG,
+                decide(
+                    ph, expected - PHASE_TOLERANCE_DEG, expected + PHASE_TOLERANCE_DEG, PHASE_U_DEG
+                ),
+                {"expected_deg": expected, "inverting": bool(lim.inverting)},
+            )
+            uthd = thd_uncertainty_percent(a.thd_percent or 0.0, a.floor.thd_percent, b)
+            self._decide_row(
+                ch,
+                "thd",
+                a.thd_percent,
+                "%",
+                lim.thd_percent,
+                uthd,
+                {"thd_report": a.thd_report, "floor_percent": a.floor.thd_percent},
+            )
+            st.points.append(a)
+            st.levels_commanded.append(level)
+            self._sweep_point(ch, a, level)
+
+    def _sweep_point(
+        self, ch: str, a: RecordAnalysis, commanded: float, sweep: str = "clip"
+    ) -> None:
+        self.store.add_sweep_point(
+            self.run_id,
+            SweepPointRow(
+                channel=ch,
+                sweep=sweep,
+                level_vrms=a.input_vrms,
+                gain_db=a.gain_db,
+                thd_percent=a.thd_percent,
+                thdn_percent=a.thdn_percent,
+                clipped=a.clipped,
+                clip_side=a.clip_side,
+                extra_json=json.dumps(
+                    {
+                        "commanded_vrms": commanded,
+                        "frequency_hz": a.frequency_hz,
+                        "over_range": a.over_range,
+                        "asymmetry": float(a.clip.asymmetry),
+                    }
+                ),
+            ),
+        )
+
+    def clip_search(self, group: list[_ChannelState]) -> None:
+        self.step_name = "clip"
+        safe = self.board.conditions.safe_input_vrms
+        self.progress.step(
+            "clip",
+            f"clipping threshold ({self.criterion.label}), "
+            f"{self.opt.resolution_db:g} dB resolution",
+        )
+        active = [
+            s
+            for s in group
+            if s.nominal is not None
+            and s.nominal.gain_db is not None
+            and not self._unresolvable(s.conn.board_channel, "clip_input")
+        ]
+        for s in group:
+            if s not in active:
+                s.done = True
+        # Measured level per commanded level (source divider, probe): the search works on
+        # the measured input level; the generator is commanded in its own terms.
+        ratio = {}
+        for s in active:
+            a = s.nominal
+            ratio[s.conn.board_channel] = a.input_vrms / self.board.conditions.nominal_input_vrms
+        n = 0
+        while any(not s.done for s in active) and n < self.opt.max_search_acquisitions:
+            proposals: list[tuple[float, _ChannelState]] = []
+            for s in active:
+                if s.done:
+                    continue
+                k = ratio[s.conn.board_channel]
+                step = self._next(s, k * safe)
+                s.step = step
+                if step.done:
+                    s.done = True
+                    continue
+                proposals.append((min(step.level_vrms / k, safe), s))
+            if not proposals:
+                break
+            level, steering = min(proposals, key=lambda p: p[0])
+            if any(abs(level - c) < 1e-9 * level for c in steering.levels_commanded):
+                # the level was already measured (e.g. capped at the safe level): stop
+                steering.done = True
+                continue
+            res = self._measure_at(group, level, self.plan, f"clip {n}", SEARCH_FILL)
+            n += 1
+            self.search_acquisitions += 1
+            for s in group:
+                a = res[s.conn.board_channel]
+                self._sweep_point(s.conn.board_channel, a, level)
+                if a.gain_db is not None and a.thd_percent is not None:
+                    s.points.append(a)
+                    s.levels_commanded.append(level)
+        for s in active:
+            self._threshold_row(s)
+
+    def _next(self, s: _ChannelState, max_measured: float):
+        lim = s.limits.clip_input_vrms
+        start = float(lim.nominal) * (
+            s.nominal.input_vrms / self.board.conditions.nominal_input_vrms
+        )
+        # The model's limits bracket a good board: expand by about half their span.
+        lo, hi = _limit_get(lim, "low"), _limit_get(lim, "high")
+        expand = 3.0
+        if lo and hi and lo > 0:
+            expand = min(max(10 * math.log10(hi / lo), 0.5), 3.0)
+        # The nominal record is far below the threshold: as a bracket end it would slow
+        # false position (THD there is at the floor), so the search uses its own points and
+        # starts at the model's prediction, expanding by about half the limits' span.
+        pts = list(s.points[1:])
+        if (
+            not pts
+            and s.points
+            and self.criterion.kind == "thd"
+            and (s.points[0].thd_percent or 0) >= self.criterion.threshold_percent
+        ):
+            pts = list(s.points)  # clipping already at the nominal level
+        if not pts:
+            return SearchStep(min(start, max_measured), False, False, "model's prediction")
+        step = next_search_level(
+            pts,
+            self.criterion,
+            start_vrms=min(start, max_measured),
+            max_vrms=max_measured,
+            resolution_db=self.opt.resolution_db,
+            expand_db=expand,
+            small_signal_gain_db=s.nominal.gain_db if s.nominal else None,
+        )
+        if not step.done and not step.bracketed and len(pts) >= 2 and step.level_vrms:
+            step = self._extrapolate(step, pts, s, expand, max_measured)
+        th = step.threshold
+        if (
+            not step.done
+            and step.bracketed
+            and th is not None
+            and th.below_vrms
+            and th.above_vrms
+            and len(pts) >= 3
+        ):
+            # Safeguard: false position that lands twice on the same side of the crossing
+            # creeps; bisect (in dB) instead.
+            sides = [self._meets(p, s) for p in pts[-2:]]
+            if sides[0] == sides[1]:
+                mid = math.sqrt(th.below_vrms * th.above_vrms)
+                step = SearchStep(min(mid, max_measured), False, True, "bisecting", th)
+        return step
+
+    def _score(self, p: RecordAnalysis, s: _ChannelState) -> float:
+        """Signed distance to the criterion (>= 0: met): log10 THD ratio, or dB."""
+        if self.criterion.kind == "thd":
+            return math.log10(max(p.thd_percent or 0.0, 1e-9) / self.criterion.threshold_percent)
+        g0 = s.nominal.gain_db if s.nominal and s.nominal.gain_db is not None else 0.0
+        return (g0 - (p.gain_db if p.gain_db is not None else g0)) - self.criterion.db
+
+    def _extrapolate(
+        self,
+        step: SearchStep,
+        pts: list[RecordAnalysis],
+        s: _ChannelState,
+        expand_db: float,
+        max_measured: float,
+    ) -> SearchStep:
+        """While no bracket exists, aim past the crossing the two nearest points predict
+        (secant on score vs level in dB, overshooting by half the expansion step), instead
+        of creeping in fixed steps; the move stays between 0.5x and 4x the expansion."""
+        up = step.level_vrms > max(p.input_vrms for p in pts)
+        ordered = sorted(pts, key=lambda p: p.input_vrms)
+        a, b = (ordered[-2], ordered[-1]) if up else (ordered[1], ordered[0])
+        xa, xb = 20 * math.log10(a.input_vrms), 20 * math.log10(b.input_vrms)
+        fa, fb = self._score(a, s), self._score(b, s)
+        # Without a usable secant, grow the expansion geometrically (1, 2, 4... steps).
+        m = len(pts)
+        grown = min(expand_db * 2 ** max(m - 1, 0), 6.0)
+        plain = min(10 ** ((xb + (grown if up else -grown)) / 20), max_measured)
+        plain_step = SearchStep(plain, False, False, "expanding", step.threshold)
+        if xa == xb or fa == fb:
+            return plain_step
+        x_cross = xb + (0.0 - fb) * (xb - xa) / (fb - fa)
+        move = x_cross - xb
+        if (move > 0) != up:
+            return plain_step  # the curve bends the wrong way
+        move = (abs(move) + 0.5 * expand_db) * (1 if up else -1)
+        lim = max(4 * expand_db, grown)
+        move = max(min(move, lim), -lim)
+        if abs(move) < 0.5 * expand_db:
+            move = 0.5 * expand_db * (1 if up else -1)
+        level = min(10 ** ((xb + move) / 20), max_measured)
+        return SearchStep(level, False, False, "extrapolating", step.threshold)
+
+    def _meets(self, p: RecordAnalysis, s: _ChannelState) -> bool:
+        """The record meets the clipping criterion."""
+        if self.criterion.kind == "thd":
+            return (p.thd_percent or 0.0) >= self.criterion.threshold_percent
+        g0 = s.nominal.gain_db if s.nominal and s.nominal.gain_db is not None else 0.0
+        return (g0 - (p.gain_db or g0)) >= self.criterion.db
+
+    def _threshold_row(self, s: _ChannelState) -> None:
+        ch = s.conn.board_channel
+        lim = s.limits.clip_input_vrms
+        safe = self.board.conditions.safe_input_vrms
+        step = s.step
+        th = step.threshold if step is not None else None
+        if (th is None or not th.bracketed) and s.points:
+            th = clip_threshold(
+                [p.input_vrms for p in s.points],
+                [p.thd_percent for p in s.points],
+                [p.gain_db for p in s.points],
+                self.criterion,
+                s.nominal.gain_db if s.nominal else None,
+            )
+        detail: dict[str, Any] = {
+            "criterion": self.criterion.label,
+            "points": len(s.points),
+            "expected_side": getattr(s.limits, "clip_side", None),
+            "expected_stage": getattr(s.limits, "clip_stage", None),
+            "reason": step.reason if step is not None else None,
+        }
+        if th is not None and th.bracketed and th.level_vrms is not None:
+            side, asym = _clip_side(s.points, th.level_vrms)
+            detail.update(
+                {
+                    "below_vrms": th.below_vrms,
+                    "above_vrms": th.above_vrms,
+                    "interp_u_db": th.uncertainty_db,
+                    "side": side,
+                    "asymmetry": asym,
+                }
+            )
+            u_rel = amplitude_rel_u(_resid_ratio(s.nominal, "in"), s.nominal.n_samples)
+            u_db = threshold_uncertainty_db(
+                0.0, u_rel, self.opt.bench, settled=True, fit_u_db=th.uncertainty_db or 0.0
+            )
+            u_v = th.level_vrms * (10 ** (u_db / 20) - 1)
+            detail["u_db"] = u_db
+            self._decide_row(ch, "clip_input", th.level_vrms, "V rms", lim, u_v, detail)
+            self._row(
+                ch,
+                "clip_side",
+                asym,
+                "",
+                None,
+                None,
+                None,
+                "info",
+                {
+                    "side": side,
+                    "expected": detail["expected_side"],
+                    "stage": detail["expected_stage"],
+                },
+            )
+            return
+        low, high = _limit_get(lim, "low"), _limit_get(lim, "high")
+        if (
+            th is not None
+            and th.below_vrms is not None
+            and not th.bracketed
+            and th.above_vrms is None
+        ):
+            # Criterion not met up to the safe level: a result, not an excess.
+            top = th.below_vrms
+            detail.update(
+                {
+                    "result": "threshold above safe level",
+                    "safe_input_vrms": safe,
+                    "highest_measured_vrms": top,
+                }
+            )
+            if high is not None and high <= top:
+                decision = "fail"
+            elif high is not None:
+                decision = "not resolvable"
+            else:
+                decision = decide(top, low, None, 0.0)
+            self._row(ch, "clip_input", None, "V rms", low, high, None, decision, detail)
+            self.progress.note(f"channel {ch}: threshold above safe level {safe:g} V rms")
+            return
+        if th is not None and th.above_vrms is not None and not th.bracketed:
+            detail.update(
+                {
+                    "result": "criterion met at the lowest level measured",
+                    "lowest_measured_vrms": th.above_vrms,
+                }
+            )
+            self._row(
+                ch,
+                "clip_input",
+                None,
+                "V rms",
+                low,
+                high,
+                None,
+                "fail" if low is not None and th.above_vrms < low else "not resolvable",
+                detail,
+            )
+            return
+        detail["result"] = "search did not converge"
+        self._row(ch, "clip_input", None, "V rms", low, high, None, "fail", detail)
+
+    def frequencies(self, group: list[_ChannelState]) -> None:
+        extra = self.board.conditions.extra_frequencies_hz
+        if not extra or not self.opt.extra_frequencies:
+            return
+        self.step_name = "frequency"
+        self.progress.step("frequency", "gain at " + ", ".join(f"{f:g}" for f in extra) + " Hz")
+        level = self.board.conditions.nominal_input_vrms
+        self.safe.set_level(level)
+        for f in extra:
+            plan = self._plan(f)
+            self.safe.set_frequency(plan.frequency_hz)
+            self._wait_settle()
+            res = self._measure_at(group, level, plan, f"{f:g} Hz")
+            for s in group:
+                ch = s.conn.board_channel
+                a = res[ch]
+                self._sweep_point(ch, a, level, sweep="frequency")
+                rel = None
+                if a.gain_db is not None and s.nominal is not None and s.nominal.gain_db:
+                    rel = a.gain_db - s.nominal.gain_db
+                self._row(
+                    ch,
+                    f"gain@{f:g}Hz",
+                    a.gain_db,
+                    "dB",
+                    None,
+                    None,
+                    None,
+                    "info",
+                    {
+                        "frequency_hz": plan.frequency_hz,
+                        "relative_db": rel,
+                        "phase_deg": a.phase_deg,
+                    },
+                )
+        self.safe.set_frequency(self.plan.frequency_hz)
+
+    # --- the whole run --------------------------------------------------------------
+    def header(self) -> RunHeader:
+        ids = getattr(self.inst, "identities", {}) or {}
+        limits_dict = self.limits.to_dict()
+        prov = limits_dict.get("provenance") if isinstance(limits_dict, dict) else None
+        return RunHeader(
+            serial=self.serial,
+            part_number=self.board.part_number,
+            board_name=self.board.name,
+            board_file=self.board_file,
+            board_digest=self.board.digest,
+            limits_json=json.dumps(limits_dict, sort_keys=True, default=_json_default),
+            limits_digest=str(self.limits.digest),
+            station=self.opt.station_name or self.station_file,
+            fixture=f"{self.fixture.name} ({self.fixture.path}, sha256 {self.fixture.digest})",
+            operator=self.opt.operator,
+            instruments={role: _identity_text(i) for role, i in ids.items()},
+            software_version=__version__,
+            settle_note=self.settle_note,
+            limits_provenance=json.dumps(prov, sort_keys=True, default=_json_default)
+            if prov is not None
+            else None,
+        )
+
+    def verdicts(self) -> dict[str, ChannelVerdict]:
+        out: dict[str, ChannelVerdict] = {}
+        board_rows = [r for r in self.rows if r.channel == ""]
+        for c in self.fixture.channels:
+            ch = c.board_channel
+            rows = [r for r in self.rows if r.channel == ch] + board_rows
+            failing = [
+                f"{r.name} ({r.decision})" for r in rows if not self.opt.policy.accepts(r.decision)
+            ]
+            ok = bool(rows) and not failing
+            out[ch] = ChannelVerdict(ch, "PASS" if ok else "FAIL", failing)
+        return out
+
+    def run(self) -> RunResult:
+        t0 = time.perf_counter()
+        self.validate()
+        self.run_id = self.store.begin_run(self.header())
+        retest = 0
+        with contextlib.suppress(AttributeError, AmpbenchError):  # a store without get_run
+            retest = int(self.store.get_run(self.run_id).retest)
+        status: Literal["complete", "aborted"] = "complete"
+        reason: str | None = None
+        error: BaseException | None = None
+        try:
+            with sigterm_raises():
+                try:
+                    self.precheck()
+                    with self.safe:  # generator off before the first step
+                        ok = self.quiescent()
+                        if ok:
+                            self.dc_points()
+                            for grp in self.fixture.groups():
+                                group = [
+                                    _ChannelState(c, self.limits.channels[c.board_channel])
+                                    for c in grp
+                                ]
+                                route = sorted({r for c in grp for r in c.route})
+                                if route and self.switch is not None:
+                                    self.switch.close(route)
+                                try:
+                                    self.nominal(group)
+                                    self.clip_search(group)
+                                    self.frequencies(group)
+                                finally:
+                                    self.safe.off()
+                                    if route and self.switch is not None:
+                                        self.switch.open(route)
+                        else:
+                            reason = (
+                                "quiescent current grossly out of limits: stopped before any signal"
+                            )
+                finally:
+                    self._shutdown()
+        except BaseException as exc:
+            status = "aborted"
+            error = exc
+            reason = _abort_reason(exc, self.step_name)
+        if self.safe.output_state == "unknown":
+            reason = (reason + "; " if reason else "") + "generator output state unknown"
+        verdicts = self.verdicts()
+        verdict: Literal["PASS", "FAIL"] | None = None
+        if status == "complete":
+            verdict = "PASS" if all(v.verdict == "PASS" for v in verdicts.values()) else "FAIL"
+        self.store.finish_run(self.run_id, status, verdict, reason)
+        result = RunResult(
+            run_id=self.run_id,
+            serial=self.serial,
+            status=status,
+            verdict=verdict,
+            reason=reason,
+            retest=retest,
+            measurements=list(self.rows),
+            channels=verdicts,
+            acquisitions=self.acquisitions,
+            search_acquisitions=self.search_acquisitions,
+            generator_state=self.safe.output_state,
+            settle_note=self.settle_note,
+            elapsed_s=time.perf_counter() - t0,
+            instrument_s=self.clock.instrument_s,
+            waiting_s=self.clock.waiting_s,
+        )
+        if error is not None:
+            if isinstance(error, KeyboardInterrupt | RunAborted):
+                raise error
+            if isinstance(error, InstrumentError | AnalysisError):
+                raise RunAborted(f"{error}", step=self.step_name) from error
+            raise error
+        return result
+
+    def _shutdown(self) -> None:
+        """Every exit path: generator off (SafeGenerator), supply off, routes open."""
+        self.safe.safe_off()
+        if self.supply is not None:
+            self.supply.safe_off()
+        if self.switch is not None and self.fixture.needs_switch:
+            try:
+                self.switch.open_all()
+            except BaseException as exc:
+                log.warning("switch open_all failed: %s", exc)
+
+
+def _abort_reason(exc: BaseException, step: str) -> str:
+    if isinstance(exc, KeyboardInterrupt):
+        return f"interrupted by the operator (Ctrl-C) at step {step}"
+    if isinstance(exc, RunAborted):
+        return exc.reason if exc.step else f"{exc.reason} at step {step}"
+    return f"{type(exc).__name__} at step {step}: {exc}"
+
+
+def added_thd_percent(
+    x: np.ndarray,
+    y: np.ndarray,
+    plan: Any,
+    in_adc: tuple[float, float],
+    out_adc: tuple[float, float],
+    k_max: int = 10,
+) -> float | None:
+    """THD the board adds, with the digitiser's own harmonics removed (percent).
+
+    A static ADC nonlinearity (integral nonlinearity: a polynomial in the code) puts the
+    same relative harmonics, at the same phase relative to the fundamental, on any sine
+    recorded at the same fraction r of full scale; harmonic k of a polynomial's leading term
+    grows as r^(k-1).  The input probe sees the generator's clean sine: its phase-normalised
+    complex harmonics, scaled from its own fraction of full scale to the output's, estimate
+    the digitiser's share of the output's harmonics, which is subtracted as complex
+    amplitudes.  Needs a coherent record (harmonic k exactly in FFT bin k·J); returns None
+    otherwise.  What remains is the distortion added between the two probes: the
+    generator's own distortion, already present at the input, is not charged to the board.
+    """
+    n = len(y)
+    j = int(plan.cycles)
+    if len(x) != n or n != int(plan.n_samples) or j < 1:
+        return None
+    kk = [k for k in range(2, k_max + 1) if k * j < n // 2]
+    if not kk:
+        return None
+    fx, fy = np.fft.rfft(x - np.mean(x)), np.fft.rfft(y - np.mean(y))
+
+    def rel(f: np.ndarray, adc: tuple[float, float]) -> tuple[np.ndarray, float]:
+        h1 = f[j]
+        phi = float(np.angle(h1))
+        r = 2 * abs(h1) / n / ((adc[1] - adc[0]) / 2)  # fraction of full scale
+        return np.array([f[k * j] / abs(h1) * np.exp(-1j * k * phi) for k in kk]), r
+
+    rx, r_in = rel(fx, in_adc)
+    ry, r_out = rel(fy, out_adc)
+    if not (r_in > 0 and r_out > 0):
+        return None
+    scale = np.array([(r_out / r_in) ** (k - 1) for k in kk])
+    added = ry - rx * scale
+    return float(100 * np.sqrt(np.sum(np.abs(added) ** 2)))
+
+
+def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
+    """A board that must not see a signal: the supply is limiting (within 10 % of its
+    current limit) or the current is off by more than a factor of two (a short, a missing
+    part).  A smaller excess is a fail but the test goes on, for the repair diagnosis."""
+    if current >= 0.9 * current_limit_a:
+        return True
+    low, high = _limit_get(limit, "low"), _limit_get(limit, "high")
+    return (high is not None and current > 2 * high) or (low is not None and current < low / 2)
+
+
+def _agree(a: RecordAnalysis, b: RecordAnalysis) -> bool:
+    """Two records after a level change agree: settled."""
+    if a.gain_db is None or b.gain_db is None:
+        return False
+    if abs(a.gain_db - b.gain_db) > 0.02:
+        return False
+    ta, tb = a.thd_percent or 0.0, b.thd_percent or 0.0
+    return abs(ta - tb) <= 0.05 * max(ta, tb) + a.floor.thd_percent
+
+
+def _resid_ratio(a: RecordAnalysis | None, which: str) -> float:
+    """Residual-to-fundamental ratio of the input record; the quantisation part of the
+    floor stands in (the input is a clean generator sine)."""
+    if a is None:
+        return 0.0
+    return float(a.floor.thdn_ratio) if which == "in" else float((a.thdn_percent or 0) / 100)
+
+
+def _clip_side(points: list[RecordAnalysis], threshold_vrms: float) -> tuple[str | None, float]:
+    """Which half-cycle of the output limits first: from the lowest record at or above the
+    threshold (crest deficit asymmetry: > 0 means the negative half-cycle falls short)."""
+    above = sorted(
+        (p for p in points if p.input_vrms >= threshold_vrms * 0.999), key=lambda p: p.input_vrms
+    )
+    if not above:
+        above = sorted(points, key=lambda p: p.input_vrms)[-1:]
+    if not above:
+        return None, 0.0
+    p = above[0]
+    asym = float(p.clip.asymmetry)
+    if p.clip_side:
+        return p.clip_side, asym
+    return ("negative" if asym > 0 else "positive"), asym
+
+
+def _scope_bits(scope: Any) -> int | None:
+    for attr in ("adc_bits", "bits"):
+        v = getattr(scope, attr, None)
+        if isinstance(v, int):
+            return v
+    prof = getattr(scope, "profile", None)
+    settings = getattr(prof, "settings", None) or {}
+    v = settings.get("adc_bits") if hasattr(settings, "get") else None
+    return int(v) if v else None
+
+
+def _json_default(o: Any) -> Any:
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if hasattr(o, "to_dict"):
+        return o.to_dict()
+    if hasattr(o, "__dataclass_fields__"):
+        from dataclasses import asdict
+
+        return asdict(o)
+    return str(o)
+
+
+def run_board(
+    instruments: Any,
+    board: Board,
+    limits: Any,
+    fixture: FixtureConfig,
+    serial: str,
+    store: Any,
+    *,
+    options: RunOptions | None = None,
+    progress: Progress | None = None,
+    board_file: str = "",
+    station_file: str = "",
+) -> RunResult:
+    """Test one board; returns the result (status complete) or raises RunAborted /
+    KeyboardInterrupt after marking the run aborted.  The store must be open and
+    ``recover_aborted()`` already called."""
+    seq = Sequencer(
+        instruments,
+        board,
+        limits,
+        fixture,
+        serial,
+        store,
+        options or RunOptions(),
+        progress or NullProgress(),
+        board_file=board_file or board.source,
+        station_file=station_file,
+    )
+    return seq.run()

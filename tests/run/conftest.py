@@ -1,0 +1,53 @@
+"""Shared fixtures of the run-layer tests: the demo board, its limits, a bench factory."""
+
+from __future__ import annotations
+
+import re
+import socket
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import pytest
+
+from harness.files import load_board
+
+REPO = Path(__file__).resolve().parents[2]
+BOARD_FILE = REPO / "limits" / "demo-twin-preamp.toml"
+FIXTURE_FILE = REPO / "fixtures" / "fixture-twin-preamp.toml"
+
+
+@pytest.fixture(scope="session")
+def board():
+    return load_board(BOARD_FILE)
+
+
+@pytest.fixture(scope="session")
+def limits(board):
+    from harness.model import compute_limits
+
+    return compute_limits(board)
+
+
+def fast_station(path: Path, timeout_ms: int = 1000) -> Path:
+    """A station file written by the sim, with a short I/O timeout for fault tests."""
+    text = path.read_text()
+    path.write_text(re.sub(r"(?m)^timeout_ms = \d+", f"timeout_ms = {timeout_ms}", text))
+    return path
+
+
+@contextmanager
+def sim_bench(board, tmp_path: Path, faults=(), timeout_ms: int = 2000) -> Iterator:
+    """A started SimBench (127.0.0.1, ephemeral ports, no latency) and its station file."""
+    from harness.sim.bench import SimBench
+
+    with SimBench(board, faults=faults, latency=False, host="127.0.0.1") as bench:
+        station = fast_station(bench.write_station(tmp_path / "station.toml"), timeout_ms)
+        yield bench, station
+
+
+def free_port() -> int:
+    """A loopback port nobody listens on (bound, read, released)."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
