@@ -1,0 +1,136 @@
+"""``ampbench sim serve BOARD.toml``: run the simulated bench until Ctrl-C / SIGTERM."""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import threading
+from pathlib import Path
+from typing import Any
+
+from harness.errors import AmpbenchError
+from harness.files import load_board
+
+LOOPBACK = "127.0.0.1"
+
+
+def register(subparsers: Any) -> None:
+    sim = subparsers.add_parser("sim", help="the simulated bench (SCPI servers + board physics)")
+    sim_sub = sim.add_subparsers(dest="sim_command", metavar="SIMCOMMAND")
+    serve = sim_sub.add_parser(
+        "serve",
+        help="serve one SCPI instrument per role on 127.0.0.1 for a board",
+        description="Start a simulated generator, scope, switch, DMM and supply for BOARD "
+        "on 127.0.0.1, write a station file and a fixture file for them and serve until "
+        "Ctrl-C or SIGTERM.",
+    )
+    serve.add_argument("board", type=Path, help="board description (limits/*.toml)")
+    serve.add_argument(
+        "--station-out",
+        type=Path,
+        default=Path("station-sim.toml"),
+        help="station file to write (default: %(default)s)",
+    )
+    serve.add_argument(
+        "--fixture-out",
+        type=Path,
+        default=Path("fixture-sim.toml"),
+        help="fixture file to write (default: %(default)s)",
+    )
+    serve.add_argument(
+        "--port-base",
+        type=int,
+        default=0,
+        help="first TCP port (generator; the others follow); 0 = ephemeral",
+    )
+    serve.add_argument(
+        "--host",
+        default=LOOPBACK,
+        help="address to listen on (default 127.0.0.1; anything else is "
+        "reachable from the network: a warning is printed)",
+    )
+    serve.add_argument(
+        "--fault",
+        action="append",
+        default=[],
+        metavar="SPEC",
+        help="component fault (R104:drift=1.3, A.gain:low_beta=40) or "
+        "instrument fault (scope:no_reply@fetch,count=1); repeatable",
+    )
+    serve.add_argument(
+        "--latency",
+        action="store_true",
+        help="realistic timing: 1-3 ms per command, acquisition and transfer "
+        "times (default: instant)",
+    )
+    serve.add_argument("--seed", type=int, default=20240601, help="noise seed")
+    serve.set_defaults(func=_serve)
+    sim.set_defaults(func=lambda args: (sim.print_help(), 2)[1])
+
+
+def _serve(
+    args: argparse.Namespace,
+    *,
+    ready: threading.Event | None = None,
+    stop: threading.Event | None = None,
+) -> int:
+    from harness.sim.bench import SimBench
+
+    if not 0 <= args.port_base <= 65535 - 5:
+        raise _UsageError(f"--port-base {args.port_base} is not a TCP port (0-65530)")
+    board = load_board(args.board)
+    if args.host != LOOPBACK:
+        print(
+            f"ampbench: warning: listening on {args.host}, not loopback: anyone who can "
+            "reach this address can drive the simulated bench",
+            file=sys.stderr,
+        )
+    bench = SimBench(
+        board,
+        faults=args.fault,
+        latency=args.latency,
+        host=args.host,
+        port_base=args.port_base,
+        seed=args.seed,
+    )
+    stop = stop or threading.Event()
+    try:
+        bench.start()
+    except OSError as exc:
+        raise _UsageError(
+            f"cannot listen on {args.host}: {exc.strerror or exc}",
+            hint="choose another --port-base or 0 for ephemeral ports",
+        ) from None
+    old = {}
+    if threading.current_thread() is threading.main_thread():
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            old[sig] = signal.signal(sig, lambda *_: stop.set())
+    try:
+        bench.write_station(args.station_out)
+        bench.write_fixture(args.fixture_out)
+        print(f"simulated bench for {board.name} ({board.part_number})")
+        for role, resource in bench.resources.items():
+            print(f"  {role:<9} {resource}")
+        print(f"station file: {args.station_out}")
+        print(f"fixture file: {args.fixture_out}")
+        for f in bench.faults:
+            print(f"  component fault: {f.spec}")
+        for role, dev in bench.devices.items():
+            for armed in dev.faults:
+                print(f"  instrument fault: {armed.fault.spec}")
+        print("serving; Ctrl-C to stop", flush=True)
+        if ready is not None:
+            ready.set()
+        while not stop.wait(0.2):
+            pass
+    finally:
+        bench.stop()
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
+    print("stopped", flush=True)
+    return 0
+
+
+class _UsageError(AmpbenchError, ValueError):
+    """A command-line value that cannot work (port, address)."""

@@ -1,0 +1,205 @@
+"""What stands behind the simulated instruments: the board, its supply and the wiring.
+
+One :class:`World` per bench holds the board physics (``physics.BoardSim``), the wiring
+of the fixture the bench writes (generator output 1 drives every channel input in
+parallel; scope input 1 probes the common input, inputs 2.. the channel outputs in board
+order; switch relay ``<c><nn>`` connects the DMM to test point ``nn`` of channel ``c``)
+and the bench-wide lock every instrument works under.  The instruments ask it for the
+signals at their inputs; they never talk to each other directly.
+
+The channels share one input node.  Each channel's response is first computed alone
+behind the 50 Ω source; if their input voltages differ (a faulty channel loads the node
+differently) the node is re-solved with every other channel's input impedance as a
+Thevenin load on the source, so the common-input probe and each output stay consistent.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+
+from harness.model.board import Board, CommonEmitter, EmitterFollower
+
+__all__ = ["Drive", "SignalSet", "TestPoint", "World", "test_points"]
+
+
+class ResponseLike(Protocol):
+    def evaluate(self, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]: ...
+
+
+@dataclass(frozen=True)
+class TestPoint:
+    """A DC test point reachable through switch relay ``relay``."""
+
+    relay: int
+    channel: str
+    stage: str
+    quantity: str  # collector_v, emitter_v, base_v
+
+    @property
+    def key(self) -> str:
+        return f"{self.stage}.{self.quantity}"
+
+
+def test_points(board: Board) -> tuple[TestPoint, ...]:
+    """Relays ``<c><nn>``: channel c (1-based, board order), nn counting collector,
+    emitter, base of each BJT stage in order (A.gain: 101-103, A.buffer: 104-106)."""
+    points = []
+    for c, channel in enumerate(board.channels, start=1):
+        n = 0
+        for stage in channel.stages:
+            if not isinstance(stage, CommonEmitter | EmitterFollower):
+                continue
+            for quantity in ("collector_v", "emitter_v", "base_v"):
+                n += 1
+                points.append(TestPoint(c * 100 + n, channel.name, stage.name, quantity))
+    return tuple(points)
+
+
+@dataclass(frozen=True)
+class Drive:
+    """What the generator puts out: EMF peak volts behind ``source_ohm``."""
+
+    emf_vpk: float
+    frequency_hz: float
+    offset_v: float
+    source_ohm: float
+    on: bool
+
+
+@dataclass(frozen=True)
+class SignalSet:
+    """A snapshot of every scope-visible signal: call ``signal(k, t)`` for input k."""
+
+    frequency_hz: float
+    inputs: Sequence[Callable[[np.ndarray], np.ndarray]]
+
+    def signal(self, scope_input: int, t: np.ndarray) -> np.ndarray:
+        if 1 <= scope_input <= len(self.inputs):
+            return self.inputs[scope_input - 1](t)
+        return np.zeros_like(t)  # nothing wired to this input
+
+
+def _fundamental(resp: ResponseLike, frequency_hz: float) -> float:
+    """Peak of the fundamental of v_in over one period (input-node loading estimate)."""
+    n = 256
+    t = np.arange(n) / (n * frequency_hz)
+    v_in, _ = resp.evaluate(t)
+    return float(2.0 * abs(np.fft.rfft(np.asarray(v_in, dtype=float))[1]) / n)
+
+
+class World:
+    """Board + supply + generator state behind the instruments (thread-safe via ``lock``).
+
+    ``sim`` is a ``physics.BoardSim``.  ``drive``, ``rails`` and ``closed_relays`` are
+    callables the bench points at its instruments, so the world always reads their
+    present state.  The board sees the supply it is given: ``rails()`` returns the
+    positive output volts and the negative output's magnitude; the physics takes one
+    positive rail with the negative one tracking it, so a split board runs on the weaker
+    of the two (relative to nominal); an output switched off is 0 V, a dead board.
+    """
+
+    def __init__(self, board: Board, sim: Any, *, rng_seed: int = 20240601) -> None:
+        self.board = board
+        self.sim = sim
+        self.lock = threading.RLock()
+        self.rng = np.random.default_rng(rng_seed)
+        self.points = test_points(board)
+        self._by_relay = {p.relay: p for p in self.points}
+        self._cache: dict[tuple, SignalSet] = {}
+        self.drive: Callable[[], Drive] = lambda: Drive(0.0, 1000.0, 0.0, 50.0, False)
+        self.rails: Callable[[], tuple[float, float]] = lambda: (
+            board.supply.v_pos,
+            abs(board.supply.v_neg),
+        )
+        self.closed_relays: Callable[[], Sequence[int]] = lambda: ()
+
+    # -- board state ----------------------------------------------------------------------------
+
+    def board_supply_v(self) -> float:
+        """The positive rail the physics runs on (0 = off), capped at twice nominal."""
+        v_pos, v_neg = self.rails()
+        nominal = self.board.supply
+        ratio = max(v_pos, 0.0) / nominal.v_pos
+        if nominal.negative is not None:
+            ratio = min(ratio, max(v_neg, 0.0) / abs(nominal.v_neg))
+        return round(min(ratio, 2.0) * nominal.v_pos, 4)
+
+    def supply_current_a(self, supply_v: float) -> float:
+        return float(self.sim.supply_current_a(supply_v))
+
+    def operating_point(self) -> dict[str, dict[str, float]]:
+        """Operating point per channel at the present supply."""
+        v = self.board_supply_v()
+        return {
+            ch.name: dict(self.sim.operating_point(ch.name, supply_v=v))
+            for ch in self.board.channels
+        }
+
+    def test_point_v(self, relay: int) -> float:
+        point = self._by_relay.get(relay)
+        if point is None:
+            return 0.0
+        v = self.board_supply_v()
+        return float(self.sim.operating_point(point.channel, supply_v=v).get(point.key, 0.0))
+
+    def is_test_point(self, relay: int) -> bool:
+        return relay in self._by_relay
+
+    # -- signals --------------------------------------------------------------------------------
+
+    def signals(self) -> SignalSet:
+        """Every scope-visible signal for the present drive and supply (cached)."""
+        d = self.drive()
+        v = self.board_supply_v()
+        emf = d.emf_vpk if d.on else 0.0
+        offset = d.offset_v if d.on else 0.0
+        key = (emf, d.frequency_hz, offset, d.source_ohm, v)
+        hit = self._cache.get(key)
+        if hit is not None:
+            return hit
+        if len(self._cache) > 64:
+            self._cache.clear()
+        responses = self._respond(v, emf, d.frequency_hz, offset, d.source_ohm)
+        inputs: list[Callable[[np.ndarray], np.ndarray]] = [_pick(responses[0], 0)]
+        inputs += [_pick(r, 1) for r in responses]
+        result = SignalSet(d.frequency_hz, inputs)
+        self._cache[key] = result
+        return result
+
+    def _respond(
+        self, v: float, emf: float, f: float, offset: float, rs: float
+    ) -> list[ResponseLike]:
+        sim = self.sim
+        names = [ch.name for ch in self.board.channels]
+        first = [sim.respond(n, emf, f, offset, rs, supply_v=v) for n in names]
+        if len(names) == 1 or emf == 0.0:
+            return first
+        vin = [_fundamental(r, f) for r in first]
+        if max(vin) <= 0 or (max(vin) - min(vin)) / max(vin) < 1e-4:
+            return first
+        # each channel's input impedance magnitude from the divider it forms with rs
+        z = [rs * x / (emf - x) if emf - x > 1e-12 * emf else math.inf for x in vin]
+        out = []
+        for k, name in enumerate(names):
+            g_others = sum(1.0 / zj for j, zj in enumerate(z) if j != k and zj > 0)
+            if g_others <= 0:
+                out.append(first[k])
+                continue
+            z_o = 1.0 / g_others
+            e_th = emf * z_o / (rs + z_o)
+            r_th = rs * z_o / (rs + z_o)
+            out.append(sim.respond(name, e_th, f, offset, r_th, supply_v=v))
+        return out
+
+
+def _pick(resp: ResponseLike, which: int) -> Callable[[np.ndarray], np.ndarray]:
+    def sig(t: np.ndarray) -> np.ndarray:
+        return np.asarray(resp.evaluate(t)[which], dtype=float)
+
+    return sig
