@@ -1,0 +1,363 @@
+"""``ampbench line``: the production loop — scan, test, big verdict, next board.
+
+The operator's name is asked once; then serial numbers are read one line at a time
+(typed, or from a barcode scanner acting as a keyboard).  The verdict is drawn as a big
+word in block letters inside a coloured frame, so it reads from a metre away, for
+colour-blind operators and on a monochrome terminal alike.
+
+Exit status: 0 when the session ends normally (quit / exit typed, end of input, Ctrl-C at
+the prompt), 2 when it ends on an error (a setup or store error, an instrument lost and not
+reconnected).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import unicodedata
+from typing import Any, Literal, TextIO
+
+from harness.errors import ValueParseError
+from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
+from harness.run.runner import prepare
+from harness.run.sequence import RunOptions, RunResult
+
+#: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
+#: its end and refused, so its tail never becomes the next serial number.
+MAX_LINE = 4096
+MAX_OPERATOR = 64
+
+# Block letters of our own design: 7 rows, each "X" drawn two cells wide.
+_GLYPHS: dict[str, tuple[str, ...]] = {
+    "P": ("XXXXX ", "XX  XX", "XX  XX", "XXXXX ", "XX    ", "XX    ", "XX    "),
+    "A": (" XXXX ", "XX  XX", "XX  XX", "XXXXXX", "XX  XX", "XX  XX", "XX  XX"),
+    "S": (" XXXXX", "XX    ", "XX    ", " XXXX ", "    XX", "    XX", "XXXXX "),
+    "F": ("XXXXXX", "XX    ", "XX    ", "XXXXX ", "XX    ", "XX    ", "XX    "),
+    "I": ("XXXXXX", "  XX  ", "  XX  ", "  XX  ", "  XX  ", "  XX  ", "XXXXXX"),
+    "L": ("XX    ", "XX    ", "XX    ", "XX    ", "XX    ", "XX    ", "XXXXXX"),
+    " ": ("   ",) * 7,
+}
+
+
+def big_word(word: str, ink: str = "█") -> list[str]:
+    """``word`` (letters of PASS / FAIL) in 7-row block letters, one string per row."""
+    rows = [""] * 7
+    for i, ch in enumerate(word.upper()):
+        glyph = _GLYPHS.get(ch)
+        if glyph is None:
+            raise ValueError(f"no block letter for {ch!r}")
+        for r in range(7):
+            cells = "".join(ink * 2 if c == "X" else "  " for c in glyph[r])
+            rows[r] += ("  " if i else "") + cells
+    width = max(len(r) for r in rows)
+    return [r.ljust(width) for r in rows]
+
+
+def read_line(stream: TextIO, limit: int = MAX_LINE) -> str | None:
+    """One line from ``stream`` without its ending; None at end of input.  A line longer
+    than ``limit`` is consumed to its end and returned truncated to ``limit + 1``
+    characters (so it is still refused as too long)."""
+    line = stream.readline(limit)
+    if line == "":
+        return None
+    if len(line) >= limit and not line.endswith("\n"):
+        while True:  # drain the rest of the over-long line
+            more = stream.readline(limit)
+            if more == "" or more.endswith("\n"):
+                break
+        return line[: limit + 1] + "…"
+    return line.rstrip("\r\n")
+
+
+def check_operator(name: str) -> str:
+    """An operator name: printable, at most 64 characters."""
+    s = name.strip()
+    if not s:
+        raise ValueParseError(name, "the operator name is empty", hint="type your name or id")
+    if len(s) > MAX_OPERATOR:
+        raise ValueParseError(s[:20] + "...", f"longer than {MAX_OPERATOR} characters")
+    for ch in s:
+        if not ch.isprintable() or unicodedata.category(ch).startswith("C"):
+            raise ValueParseError(
+                s.encode("unicode_escape").decode(),
+                f"operator name has a control character (U+{ord(ch):04X})",
+            )
+    return s
+
+
+class StepProgress:
+    """One dim line per step; measurements only with ``details``."""
+
+    def __init__(self, console: Any, details: bool = False) -> None:
+        from harness.cli.cmd_run import RichProgress
+
+        self.console = console
+        self.inner = RichProgress(console) if details else None
+
+    def step(self, name: str, text: str) -> None:
+        if self.inner is not None:
+            self.inner.step(name, text)
+        else:
+            self.console.print(f"[dim]  {name}: {text}[/dim]", highlight=False)
+
+    def measurement(self, row: Any) -> None:
+        if self.inner is not None:
+            self.inner.measurement(row)
+
+    def note(self, text: str) -> None:
+        if self.inner is not None:
+            self.inner.note(text)
+
+
+class TerminalUI:
+    """The loop's terminal: rich output on ``console``, lines from ``stdin``."""
+
+    def __init__(self, console: Any, stdin: TextIO, *, details: bool = False) -> None:
+        self.console = console
+        self.stdin = stdin
+        self.details = details
+        enc = (getattr(console, "encoding", "") or "").lower()
+        self.ink = "█" if "utf" in enc else "#"
+
+    def prompt(self, text: str) -> str | None:
+        self.console.print(text, end="", highlight=False, markup=False, soft_wrap=True)
+        self.console.file.flush()
+        return read_line(self.stdin)
+
+    def header(self, info: LineHeader) -> None:
+        from rich.panel import Panel
+        from rich.table import Table
+
+        t = Table.grid(padding=(0, 2))
+        t.add_column(style="bold")
+        t.add_column()
+        t.add_row("board", f"{info.board_name} ({info.part_number} rev {info.revision})")
+        t.add_row("board file", info.board_file)
+        t.add_row("station", info.station)
+        t.add_row("fixture", info.fixture)
+        t.add_row("operator", info.operator)
+        t.add_row("results", info.db)
+        t.add_row("limits digest", info.limits_digest)
+        if info.limits_method:
+            t.add_row("limits", info.limits_method)
+        for role, idn in info.instruments.items():
+            t.add_row(role, idn)
+        self.console.print(Panel(t, title="ampbench production line", expand=False))
+        self.console.print(
+            "Scan or type a serial number and press Enter; quit, exit or Ctrl-C ends.",
+            highlight=False,
+        )
+
+    def read_serial(self) -> str | None:
+        return self.prompt("serial> ")
+
+    def ask(self, question: str, *, default: bool) -> bool:
+        hint = "[Y/n]" if default else "[y/N]"
+        while True:
+            answer = self.prompt(f"{question} {hint} ")
+            if answer is None:
+                self.console.print("")
+                return default
+            a = answer.strip().lower()
+            if not a:
+                return default
+            if a in ("y", "yes"):
+                return True
+            if a in ("n", "no"):
+                return False
+            self.console.print("answer y or n", highlight=False)
+
+    def message(self, text: str, kind: Literal["info", "warning", "error"] = "info") -> None:
+        style = {"info": "", "warning": "bold yellow", "error": "bold red"}[kind]
+        label = {"info": "", "warning": "WARNING: ", "error": "ERROR: "}[kind]
+        self.console.print(
+            f"{label}{text}", style=style or None, highlight=False, markup=False, soft_wrap=True
+        )
+
+    def testing(self, serial: str, retest: int) -> None:
+        flag = f"  RETEST #{retest}" if retest else ""
+        self.console.rule(f"testing {serial}{flag}")
+
+    def verdict(self, outcome: BoardOutcome, result: RunResult | None) -> None:
+        from rich.align import Align
+        from rich.panel import Panel
+        from rich.text import Text
+
+        serial = outcome.serial
+        retest = f"RETEST #{outcome.retest}" if outcome.retest else "first test"
+        if outcome.outcome == "ABORTED":
+            body = Text(f"ABORTED — {outcome.reason or 'no verdict'}", style="bold")
+            self.console.print(
+                Panel(body, title=f"{serial} · {retest}", border_style="yellow", expand=False)
+            )
+            self.console.print(
+                f"VERDICT {serial}: ABORTED ({retest})", highlight=False, soft_wrap=True
+            )
+            return
+        ok = outcome.outcome == "PASS"
+        style = "bold white on green" if ok else "bold white on red"
+        big = Text("\n".join(big_word(outcome.outcome, self.ink)), style=style)
+        lines: list[Any] = [Align.center(big)]
+        if outcome.failing:
+            lines.append(Text("not accepted: " + ", ".join(outcome.failing)))
+        if result is not None and result.reason:
+            lines.append(Text(f"reason: {result.reason}"))
+        from rich.console import Group
+
+        self.console.print(
+            Panel(
+                Group(*lines),
+                title=f"{serial} · {retest}",
+                subtitle=f"run {outcome.run_id}",
+                border_style="green" if ok else "red",
+                padding=(1, 2),
+            )
+        )
+        # the word once more as plain text: logs, screen readers, copy and paste
+        self.console.print(
+            f"VERDICT {serial}: {outcome.outcome} ({retest})", highlight=False, soft_wrap=True
+        )
+
+    def summary(self, s: SessionSummary) -> None:
+        from rich.table import Table
+
+        t = Table(title=f"session summary (ended by {s.ended_by or 'operator'})")
+        for col in (
+            "boards",
+            "pass",
+            "fail",
+            "yield",
+            "first-pass yield",
+            "runs",
+            "retests",
+            "aborted",
+            "refused scans",
+        ):
+            t.add_column(col, justify="right")
+        y = "-" if s.yield_percent is None else f"{s.yield_percent:.1f} %"
+        fp = "-" if s.first_pass_percent is None else f"{s.first_pass_percent:.1f} %"
+        t.add_row(
+            str(s.boards),
+            str(s.passed),
+            str(s.failed),
+            y,
+            fp,
+            str(s.runs),
+            str(s.retests),
+            str(s.aborted),
+            str(s.refused),
+        )
+        self.console.print(t)
+        self.console.print(
+            f"SUMMARY boards={s.boards} pass={s.passed} fail={s.failed} yield={y} "
+            f"runs={s.runs} retests={s.retests} aborted={s.aborted} refused={s.refused}",
+            highlight=False,
+            soft_wrap=True,
+        )
+        if s.error:
+            self.console.print(f"session ended on: {s.error}", style="bold red", markup=False)
+
+    def progress(self) -> StepProgress:
+        return StepProgress(self.console, self.details)
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "line",
+        help="production loop: scan a serial, test, show the verdict, next board",
+        description="Test board after board on one station: limits computed once, "
+        "instruments kept connected, a big PASS/FAIL after each board, a session "
+        "summary at the end (quit, exit, end of input or Ctrl-C at the prompt).",
+    )
+    p.add_argument("--station", required=True, help="station file (TOML)")
+    p.add_argument("--fixture", required=True, help="fixture file (TOML)")
+    p.add_argument("--board", required=True, help="board file (TOML, limits/)")
+    p.add_argument("--db", default=None, help="results database (default: ampbench-results.db)")
+    p.add_argument("--operator", default=None, help="who tests (asked once when not given)")
+    p.add_argument("--scanner-prefix", default="", help="text the scanner sends before a code")
+    p.add_argument("--scanner-suffix", default="", help="text the scanner sends after a code")
+    p.add_argument("--details", action="store_true", help="print every measurement")
+    p.add_argument("--keep-records", action="store_true", help="store the raw records too")
+    p.add_argument(
+        "--settle-wait",
+        type=float,
+        default=None,
+        metavar="S",
+        help="seconds to wait after each level change (default: the model's)",
+    )
+    p.add_argument(
+        "--verify-settling",
+        action="store_true",
+        help="repeat records after level changes until they agree",
+    )
+    p.add_argument(
+        "--accept-conditional-pass",
+        action="store_true",
+        help="count 'conditional pass' as pass (shared risk; default: FAIL)",
+    )
+    p.add_argument(
+        "--max-points",
+        type=int,
+        default=None,
+        metavar="N",
+        help="cap on the record length (shorter: faster, higher THD floor)",
+    )
+    p.add_argument(
+        "--no-extra-frequencies",
+        action="store_true",
+        help="skip the gain at the board's extra frequencies (information only)",
+    )
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any = None) -> int:
+    from rich.console import Console
+
+    from harness.run.decisions import DecisionPolicy
+    from harness.store import DEFAULT_DB
+
+    stdin = stdin if stdin is not None else sys.stdin
+    console = console or Console(highlight=False)
+    if args.max_points is not None and args.max_points < 1:
+        raise ValueParseError(str(args.max_points), "--max-points must be a positive count")
+    # Everything is read and the limits computed before the operator is asked anything.
+    prep = prepare(args.board, args.fixture, args.station)
+    ui = TerminalUI(console, stdin, details=args.details)
+    if args.operator is not None:
+        operator = check_operator(args.operator)
+    else:
+        operator = ""
+        while not operator:
+            try:
+                name = ui.prompt("operator> ")
+            except KeyboardInterrupt:
+                console.print("")
+                return 0
+            if name is None:
+                return 0  # nobody there: nothing tested
+            try:
+                operator = check_operator(name)
+            except ValueParseError as exc:
+                ui.message(str(exc), "error")
+    kw: dict[str, Any] = {}
+    if args.max_points is not None:
+        kw["max_points"] = args.max_points
+    options = RunOptions(
+        operator=operator,
+        keep_records=args.keep_records,
+        settle="verify" if args.verify_settling else "wait",
+        settle_wait_s=args.settle_wait,
+        policy=DecisionPolicy(accept_conditional_pass=args.accept_conditional_pass),
+        extra_frequencies=not args.no_extra_frequencies,
+        **kw,
+    )
+    summary = run_line(
+        prep,
+        args.db or DEFAULT_DB,
+        ui,
+        operator=operator,
+        options=options,
+        scanner_prefix=args.scanner_prefix,
+        scanner_suffix=args.scanner_suffix,
+    )
+    return 2 if summary.error else 0
