@@ -1027,11 +1027,12 @@ class Sequencer:
                 None,
                 None,
                 None,
-                "info",
+                _side_decision(side, s.limits),
                 {
                     "side": side,
                     "expected": detail["expected_side"],
                     "stage": detail["expected_stage"],
+                    "expected_fraction": _side_fraction(s.limits, side),
                 },
             )
             return
@@ -1339,6 +1340,34 @@ def _clip_side(points: list[RecordAnalysis], threshold_vrms: float) -> tuple[str
     if p.clip_side:
         return p.clip_side, asym
     return ("negative" if asym > 0 else "positive"), asym
+
+
+#: A measured clipping side that the model gives to fewer boards than this is a fault clue
+#: strong enough to fail on (for example a drifted bias resistor moving the clipping from one
+#: half-cycle to the other); where the model itself is split, the side is recorded only.
+SIDE_DECISIVE_FRACTION = 0.99
+
+
+def _side_fraction(limits: Any, side: str | None) -> float | None:
+    fractions = getattr(limits, "clip_side_fraction", None) or {}
+    if side is None or not hasattr(fractions, "get"):
+        return None
+    value = fractions.get(side)
+    return None if value is None else float(value)
+
+
+def _side_decision(side: str | None, limits: Any) -> str:
+    """Decide the clipping side against the model: pass when it is the side the model
+    expects; fail when the model gives the other side to at least 99 % of good boards."""
+    expected = getattr(limits, "clip_side", None)
+    if side is None or expected is None:
+        return "info"
+    if side == expected:
+        return "pass"
+    fraction = _side_fraction(limits, expected)
+    if fraction is not None and fraction >= SIDE_DECISIVE_FRACTION:
+        return "fail"
+    return "info"
 
 
 def _scope_bits(scope: Any) -> int | None:
