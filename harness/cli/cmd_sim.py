@@ -116,7 +116,7 @@ def _serve(
         print(f"fixture file: {args.fixture_out}")
         for f in bench.faults:
             print(f"  component fault: {f.spec}")
-        for role, dev in bench.devices.items():
+        for dev in bench.devices.values():
             for armed in dev.faults:
                 print(f"  instrument fault: {armed.fault.spec}")
         print("serving; Ctrl-C to stop", flush=True)

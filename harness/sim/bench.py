@@ -182,7 +182,7 @@ class SimBench:
     ) -> InstrumentFault:
         """Arm an instrument fault at run time, e.g. ``inject("scope", "no_reply",
         on="FETCh", count=1)``; ``after`` counts from the instrument's present total."""
-        dev = self.devices[role] if role in self.devices else None
+        dev = self.devices.get(role)
         if dev is None:
             raise FaultSpecError(
                 f"{role}:{kind}", f"no instrument {role!r}", hint=f"use one of: {', '.join(ROLES)}"

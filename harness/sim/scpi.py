@@ -391,9 +391,9 @@ class Outcome:
     """What one program message produced, for the transport to deliver.
 
     ``ready_at``: an overlapped operation (acquisition, relay settling) must finish
-    before the reply goes out; ``close_after``: send this many bytes of ``reply`` then drop the connection
-    (an injected fault); ``power_cycle_s``: drop every connection and refuse new ones
-    for this long; ``delay_s``: wait before sending (latency, slow fault).
+    before the reply goes out; ``close_after``: send this many bytes of ``reply``, then
+    drop the connection (an injected fault); ``power_cycle_s``: drop every connection
+    and refuse new ones for this long; ``delay_s``: wait before sending (latency, slow fault).
     """
 
     reply: bytes | None = None

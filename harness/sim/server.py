@@ -14,6 +14,7 @@ only frames lines, delays replies as the device asks and applies the connection 
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import socket
 import threading
@@ -201,11 +202,7 @@ class ScpiServer:
 
 
 def _close(sock: socket.socket) -> None:
-    try:
+    with contextlib.suppress(OSError):
         sock.shutdown(socket.SHUT_RDWR)
-    except OSError:
-        pass
-    try:
+    with contextlib.suppress(OSError):
         sock.close()
-    except OSError:  # pragma: no cover
-        pass

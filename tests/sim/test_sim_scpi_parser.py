@@ -73,10 +73,14 @@ class Toy(ScpiDevice):
 
     COMMANDS = (
         Command("[SOURce#:]FREQuency[:CW]", _freq, (FREQ,)),
-        Command("[SOURce#:]FREQuency[:CW]?", _freq_q,
-                (Choice(("MINimum", "MAXimum"), optional=True),)),
-        Command("[SOURce#:]VOLTage[:LEVel][:IMMediate][:AMPLitude]", _volt,
-                (Num("V", 0.001, 10.0, 0.1),)),
+        Command(
+            "[SOURce#:]FREQuency[:CW]?", _freq_q, (Choice(("MINimum", "MAXimum"), optional=True),)
+        ),
+        Command(
+            "[SOURce#:]VOLTage[:LEVel][:IMMediate][:AMPLitude]",
+            _volt,
+            (Num("V", 0.001, 10.0, 0.1),),
+        ),
         Command("[SOURce#:]VOLTage[:LEVel][:IMMediate][:AMPLitude]?", _volt_q),
         Command("OUTPut#[:STATe]", _outp, (Bool(),)),
         Command("OUTPut#[:STATe]?", _outp_q),
@@ -102,14 +106,14 @@ def errors(dev: ScpiDevice) -> list[int]:
 
 HEADER_FORMS = [
     # (message, what it must set) -- SCPI-99 vol. 1 §6.2.1-6.2.5
-    ("SOURce1:FREQuency:CW 2000", 2000.0),   # long form, every node
-    ("SOUR1:FREQ:CW 2000", 2000.0),          # short form
-    ("sour:freq:cw 2000", 2000.0),           # case-insensitive
-    ("FrEqUeNcY 2000", 2000.0),              # optional nodes left out, mixed case
+    ("SOURce1:FREQuency:CW 2000", 2000.0),  # long form, every node
+    ("SOUR1:FREQ:CW 2000", 2000.0),  # short form
+    ("sour:freq:cw 2000", 2000.0),  # case-insensitive
+    ("FrEqUeNcY 2000", 2000.0),  # optional nodes left out, mixed case
     ("FREQ 2000", 2000.0),
-    (":FREQ:CW 2000", 2000.0),               # leading colon = root
-    ("SOURCE:FREQUENCY 2000", 2000.0),       # suffix omitted = 1
-    ("SOUR1:FREQ 2 KHZ", 2000.0),            # unit with multiplier
+    (":FREQ:CW 2000", 2000.0),  # leading colon = root
+    ("SOURCE:FREQUENCY 2000", 2000.0),  # suffix omitted = 1
+    ("SOUR1:FREQ 2 KHZ", 2000.0),  # unit with multiplier
 ]
 
 
@@ -121,8 +125,17 @@ def test_header_forms_accepted(toy: Toy, message: str, expected: float) -> None:
     assert errors(toy) == []
 
 
-@pytest.mark.parametrize("message", ["FREQU 1000", "FREQUENC 1000", "SOUR:FRE 1000",
-                                     "SOURC:FREQ 1000", "FREQ:CWX 1000", "VOLTAGES 1"])
+@pytest.mark.parametrize(
+    "message",
+    [
+        "FREQU 1000",
+        "FREQUENC 1000",
+        "SOUR:FRE 1000",
+        "SOURC:FREQ 1000",
+        "FREQ:CWX 1000",
+        "VOLTAGES 1",
+    ],
+)
 def test_neither_long_nor_short_form_is_113(toy: Toy, message: str) -> None:
     """Only the long or the short form is a mnemonic: FREQU is -113 Undefined header
     (SCPI-99 vol. 1 §6.2.1, NOTES.md)."""
@@ -178,24 +191,32 @@ def test_queries_in_one_message_answer_in_one_line(toy: Toy) -> None:
         ("2 KHZ", "HZ", 2000.0),
         ("2khz", "HZ", 2000.0),
         ("3 HZ", "HZ", 3.0),
-        ("1 MHZ", "HZ", 1e6),      # M + HZ is mega, the exception
-        ("1 MAHZ", "HZ", 1e6),     # MA is mega
-        ("1 MOHM", "OHM", 1e6),    # the other exception
+        ("1 MHZ", "HZ", 1e6),  # M + HZ is mega, the exception
+        ("1 MAHZ", "HZ", 1e6),  # MA is mega
+        ("1 MOHM", "OHM", 1e6),  # the other exception
         ("250 UV", "V", 250e-6),
         ("5 NS", "S", 5e-9),
-        ("20 MA", "A", 20e-3),     # M + A: milliampere (the unit A follows the multiplier)
+        ("20 MA", "A", 20e-3),  # M + A: milliampere (the unit A follows the multiplier)
         ("1.25E3", "HZ", 1250.0),
         ("+.5e-1", None, 0.05),
-        ("1 E 3", "HZ", 1000.0),   # white space allowed around E (IEEE 488.2 §7.7.2.2)
+        ("1 E 3", "HZ", 1000.0),  # white space allowed around E (IEEE 488.2 §7.7.2.2)
     ],
 )
 def test_unit_suffix_table(token: str, unit: str | None, expected: float) -> None:
     assert parse_numeric(token, unit) == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(("token", "unit", "code"),
-                         [("1 KV", "HZ", -131), ("1 K", "HZ", -131), ("1 XYZ", "V", -131),
-                          ("1 V", None, -131), ("1.2.3", "V", -102), ("FOO", "V", -104)])
+@pytest.mark.parametrize(
+    ("token", "unit", "code"),
+    [
+        ("1 KV", "HZ", -131),
+        ("1 K", "HZ", -131),
+        ("1 XYZ", "V", -131),
+        ("1 V", None, -131),
+        ("1.2.3", "V", -102),
+        ("FOO", "V", -104),
+    ],
+)
 def test_bad_numbers(token: str, unit: str | None, code: int) -> None:
     with pytest.raises(ScpiFailure) as info:
         parse_numeric(token, unit)
@@ -223,21 +244,21 @@ def test_min_max_def(toy: Toy) -> None:
 @pytest.mark.parametrize(
     ("message", "code"),
     [
-        ("FREQ", -109),               # missing parameter
-        ("FREQ 1,2", -108),           # parameter not allowed
-        ("FREQ 2E6", -222),           # data out of range
-        ("FUNC TRIangle", -224),      # illegal parameter value
-        ("FUNC SINU", -224),          # neither long nor short form of a choice
+        ("FREQ", -109),  # missing parameter
+        ("FREQ 1,2", -108),  # parameter not allowed
+        ("FREQ 2E6", -222),  # data out of range
+        ("FUNC TRIangle", -224),  # illegal parameter value
+        ("FUNC SINU", -224),  # neither long nor short form of a choice
         ("OUTP MAYBE", -224),
-        ("FREQ 1 KV", -131),          # invalid suffix
-        ("FREQ1000", -113),           # no space: FREQ with suffix 1000 is no header here
-        ("FREQ 1.2.3", -102),         # syntax error
+        ("FREQ 1 KV", -131),  # invalid suffix
+        ("FREQ1000", -113),  # no space: FREQ with suffix 1000 is no header here
+        ("FREQ 1.2.3", -102),  # syntax error
         ("FREQ ,", -102),
-        ("ROUT:CLOS 1", -102),        # channel list without (@...)
+        ("ROUT:CLOS 1", -102),  # channel list without (@...)
         ("ROUT:CLOS (@1,x)", -224),
         ("*FOO", -113),
-        ("FREQ \"abc", -102),         # unterminated string
-        ("TEST:FAIL?", -221),         # execution error in a query
+        ('FREQ "abc', -102),  # unterminated string
+        ("TEST:FAIL?", -221),  # execution error in a query
     ],
 )
 def test_error_codes(toy: Toy, message: str, code: int) -> None:
@@ -279,8 +300,19 @@ def test_command_error_discards_rest_of_message_execution_error_does_not(toy: To
 
 
 def test_garbage_and_non_utf8_never_raise(toy: Toy) -> None:
-    for junk in (b"\xff\xfe\x00garbage", b"\x00\x01\x02", b"FREQ \x80", "FRÉQ 1".encode(),
-                 b";;;", b":::", b"*", b"?", b"(((", b"#9abc", b"FREQ (@" + b"9" * 50 + b")"):
+    for junk in (
+        b"\xff\xfe\x00garbage",
+        b"\x00\x01\x02",
+        b"FREQ \x80",
+        "FRÉQ 1".encode(),
+        b";;;",
+        b":::",
+        b"*",
+        b"?",
+        b"(((",
+        b"#9abc",
+        b"FREQ (@" + b"9" * 50 + b")",
+    ):
         assert toy.handle(junk) is None
     codes = errors(toy)
     assert codes and all(-199 <= c <= -100 for c in codes)
