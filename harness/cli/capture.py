@@ -7,6 +7,8 @@ from __future__ import annotations
 import csv
 import io
 import math
+import zipfile
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -85,7 +87,14 @@ def _read_npz(p: Path) -> Capture:
                 cols[c] = a.astype(np.float32 if a.dtype == np.float32 else np.float64)
     except CaptureFileError:
         raise
-    except (OSError, ValueError, EOFError) as exc:
+    except (
+        OSError,
+        ValueError,
+        EOFError,
+        zipfile.BadZipFile,
+        NotImplementedError,
+        zlib.error,
+    ) as exc:
         raise CaptureFileError(str(p), None, f"not a readable .npz file ({exc})") from None
     return _finish(str(p), cols, "arrays")
 
@@ -109,6 +118,8 @@ def _read_csv(p: Path) -> Capture:
             hint=f"first line must be {','.join(COLUMNS)}",
         )
     idx = [header.index(c) for c in COLUMNS]
+    if not any(ln.strip() and not ln.lstrip().startswith("#") for ln in lines[head_no + 1 :]):
+        raise CaptureFileError(str(p), None, "no data rows after the header")
     body = "\n".join(lines[head_no + 1 :])
     try:
         arr = np.loadtxt(

@@ -12,15 +12,17 @@ import contextlib
 import logging
 import math
 import time
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 
 from harness.errors import AmpbenchError, ConnectionLost, InstrumentError, MalformedReply
 from harness.instruments.scpi import DATATYPES, SCPI_FORMAT, channel_list, parse_bool, parse_number
 from harness.instruments.session import Session
+
+T = TypeVar("T")
 
 __all__ = [
     "Acquisition",
@@ -91,6 +93,17 @@ class _Driver:
     def _replay(self) -> None:
         for op, params in list(self._state.values()):
             self.session.configure(op, **params)
+
+    def _parsed(self, parse: Callable[[str], T], reply: str, command: str) -> T:
+        """Parse a reply; a reply that does not parse names this instrument and the command."""
+        try:
+            return parse(reply)
+        except MalformedReply as exc:
+            raise self.session._typed(MalformedReply, exc.message, command, exc.hint) from None
+
+    def _ask(self, parse: Callable[[str], T], op: str, **params: Any) -> T:
+        command = self.profile.render(op, **params)
+        return self._parsed(parse, self.session.query(command), command)
 
     def _err(self, message: str, hint: str | None = None) -> InstrumentError:
         return InstrumentError(
@@ -175,11 +188,11 @@ class Generator(_Driver):
         self._set(("output", o), "output_on" if on else "output_off", output=o)
 
     def is_on(self, output: int = 1) -> bool:
-        return parse_bool(self.session.ask("query_output", output=self._output_no(output)))
+        return self._ask(parse_bool, "query_output", output=self._output_no(output))
 
     def amplitude_setting(self, output: int = 1) -> float:
         """The amplitude the instrument reports (profile unit), if the profile can ask."""
-        return parse_number(self.session.ask("query_amplitude", output=self._output_no(output)))
+        return self._ask(parse_number, "query_amplitude", output=self._output_no(output))
 
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""
@@ -420,6 +433,9 @@ class Scope(_Driver):
             setup = self._inputs[n]
             volts[n] = self._to_volts(data, setup)
             limits[n] = self.adc_limits(setup)
+        # an error the scope queued during the acquisition must stop the run here, before
+        # the record is analysed and stored as if it were sound
+        self.session.check_errors(self.profile.render("fetch", input=wanted[-1]))
         return Acquisition(
             sample_rate_hz=self._rate_hz,
             volts=volts,
@@ -460,8 +476,9 @@ class Switch(_Driver):
         self._settle()
 
     def is_closed(self, channels: Iterable[int]) -> list[bool]:
-        reply = self.session.ask("query_closed", channels=channel_list(channels))
-        return [parse_bool(x) for x in reply.split(",")]
+        cmd = self.profile.render("query_closed", channels=channel_list(channels))
+        reply = self.session.query(cmd)
+        return [self._parsed(parse_bool, x, cmd) for x in reply.split(",")]
 
     @contextlib.contextmanager
     def routed(self, channels: Iterable[int]) -> Iterator[None]:
@@ -484,7 +501,7 @@ class Dmm(_Driver):
     def dc_volts(self, range_v: float | None = None) -> float:
         """One DC voltage reading; ``range_v=None`` lets the meter choose (DEFault)."""
         cmd = self.profile.render("measure_dc_volts", range_v="DEF" if range_v is None else range_v)
-        value = parse_number(self.session.query(cmd))
+        value = self._parsed(parse_number, self.session.query(cmd), cmd)
         self.session.check_errors(cmd)
         return value
 
@@ -513,16 +530,16 @@ class Supply(_Driver):
         self._set(("output", o), "output_on" if on else "output_off", output=o)
 
     def is_on(self, output: int = 1) -> bool:
-        return parse_bool(self.session.ask("query_output", output=self._output_no(output)))
+        return self._ask(parse_bool, "query_output", output=self._output_no(output))
 
     def current_a(self, output: int = 1) -> float:
-        return parse_number(self.session.ask("measure_current", output=self._output_no(output)))
+        return self._ask(parse_number, "measure_current", output=self._output_no(output))
 
     def voltage_v(self, output: int = 1) -> float:
-        return parse_number(self.session.ask("measure_voltage", output=self._output_no(output)))
+        return self._ask(parse_number, "measure_voltage", output=self._output_no(output))
 
     def tripped(self, output: int = 1) -> bool:
-        return parse_bool(self.session.ask("query_tripped", output=self._output_no(output)))
+        return self._ask(parse_bool, "query_tripped", output=self._output_no(output))
 
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""

@@ -71,6 +71,7 @@ class SafeGenerator:
         self.max_commanded_vrms = 0.0
         self.output_state: OutputState = "unknown"
         self.steps = 0
+        self._seen_reconnects = self._reconnects()
 
     # --- checks -----------------------------------------------------------------------
     def check(self, vrms: float) -> float:
@@ -115,10 +116,28 @@ class SafeGenerator:
         plan.append(target)
         return plan
 
+    def _reconnects(self) -> int:
+        session = getattr(self._gen, "session", None)
+        count = getattr(session, "reconnects", 0)
+        return count if isinstance(count, int) else 0
+
+    def _resync(self) -> None:
+        """After a reconnect the generator's output is off (a replay never switches it on):
+        bring the output back on through the ramp, so the record after it is not silence."""
+        count = self._reconnects()
+        if count == self._seen_reconnects:
+            return
+        self._seen_reconnects = count
+        if self.output_state == "on":
+            log.warning("generator reconnected with its output off; switching on again, ramped")
+            self.output_state = "off"
+            self.on()
+
     def set_level(self, vrms: float) -> None:
         """Move to ``vrms`` (ramping up while the output is on)."""
         for v in self.ramp_plan(vrms):
             self._command(v)
+        self._resync()
 
     def configure(self, frequency_hz: float, level_vrms: float) -> None:
         """Set a sine at ``frequency_hz`` with the output off, then the level."""
@@ -134,6 +153,7 @@ class SafeGenerator:
         self._gen.configure_sine(frequency_hz, output=self.output)
         if level > 0:
             self._command(level)
+        self._resync()
 
     def on(self) -> None:
         """Switch the output on at the present level; a level above ``direct_vrms`` is
@@ -143,6 +163,7 @@ class SafeGenerator:
             self._command(self.direct_vrms)
         self._gen.output(True, output=self.output)
         self.output_state = "on"
+        self._seen_reconnects = self._reconnects()
         if target > self.level_vrms:
             self.set_level(target)
 
