@@ -9,10 +9,10 @@ from __future__ import annotations
 
 import os
 import shutil
-import subprocess
 from pathlib import Path
 
 import pytest
+from spice_runner import run_ngspice
 
 REPO = Path(__file__).resolve().parent.parent
 LIMITS_DIR = REPO / "limits"
@@ -39,23 +39,6 @@ def ngspice() -> str:
 def chromium() -> str:
     """Path of a headless-capable Chromium (Debian package ``chromium``)."""
     return _require_tool("chromium", "chromium")
-
-
-def run_ngspice(binary: str, netlist: str, tmp_path: Path, timeout_s: float = 60.0) -> str:
-    """Run ``ngspice -b`` on a netlist text and return its stdout (raises on failure)."""
-    cir = tmp_path / "check.cir"
-    cir.write_text(netlist)
-    proc = subprocess.run(
-        [binary, "-b", str(cir)],
-        capture_output=True,
-        text=True,
-        timeout=timeout_s,
-        cwd=tmp_path,
-        check=False,
-    )
-    if proc.returncode != 0:
-        raise AssertionError(f"ngspice failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
-    return proc.stdout
 
 
 @pytest.fixture

@@ -72,7 +72,7 @@ __all__ = [
 ]
 
 _TABLE_POINTS = 1 << 15  # band-limited upsampling table for evaluate()
-_CACHE_SIZE = 512
+_CACHE_SIZE = 64
 
 
 class SimulationError(AmpbenchError, ArithmeticError):
