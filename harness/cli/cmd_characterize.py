@@ -16,6 +16,7 @@ import math
 from pathlib import Path
 from typing import Any
 
+from harness.cli.run_args import RichProgress, add_bench_files, add_db, add_settle_wait
 from harness.run.characterize import CharacterizationResult, CharacterizeOptions
 
 
@@ -28,11 +29,8 @@ def register(sub: argparse._SubParsersAction) -> None:
         "compare gain, THD, clipping threshold and the low -3 dB corner with the "
         "model's bands, store every point and write an HTML report.",
     )
-    p.add_argument("--station", required=True, help="station file (TOML)")
-    p.add_argument("--fixture", required=True, help="fixture file (TOML)")
-    p.add_argument("--board", required=True, help="board file (TOML, limits/)")
-    p.add_argument("--serial", required=True, help="the prototype's serial number")
-    p.add_argument("--db", default=None, help="results database (default: ampbench-results.db)")
+    add_bench_files(p, serial_help="the prototype's serial number")
+    add_db(p)
     p.add_argument("-o", "--output", default=None, help="HTML report (default: char-SERIAL.html)")
     p.add_argument("--operator", default="", help="who runs it")
     p.add_argument("--step-db", type=float, default=1.0, help="level step (dB, default 1)")
@@ -45,13 +43,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--f-start", type=float, default=10.0, help="lowest frequency (Hz)")
     p.add_argument("--f-stop", type=float, default=20000.0, help="highest frequency (Hz)")
     p.add_argument("--per-decade", type=int, default=6, help="frequency points per decade")
-    p.add_argument(
-        "--settle-wait",
-        type=float,
-        default=None,
-        metavar="S",
-        help="seconds after each change (default: the model's settle time)",
-    )
+    add_settle_wait(p, "seconds after each change (default: the model's settle time)")
     p.add_argument("--max-points", type=int, default=8192, help="record length cap")
     p.set_defaults(func=run)
 
@@ -59,7 +51,6 @@ def register(sub: argparse._SubParsersAction) -> None:
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
 
-    from harness.cli.cmd_run import RichProgress
     from harness.instruments.bench import connect
     from harness.run.characterize import characterize
     from harness.run.runner import prepare, validate_serial

@@ -73,7 +73,7 @@ def run_demo(
             prep = prepare(board_file, fixture_file, station_file, limits=limits)
             progress = None
             if progress_console is not None:
-                from harness.cli.cmd_run import RichProgress
+                from harness.cli.run_args import RichProgress
 
                 progress_console.rule(f"{demo.serial}: {demo.story}")
                 progress = RichProgress(progress_console)

@@ -17,10 +17,12 @@ import sys
 import unicodedata
 from typing import Any, Literal, TextIO
 
+from harness.cli import run_args
+from harness.cli.run_args import RichProgress
 from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import prepare
-from harness.run.sequence import RunOptions, RunResult
+from harness.run.sequence import RunResult
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
 #: its end and refused, so its tail never becomes the next serial number.
@@ -89,8 +91,6 @@ class StepProgress:
     """One dim line per step; measurements only with ``details``."""
 
     def __init__(self, console: Any, details: bool = False) -> None:
-        from harness.cli.cmd_run import RichProgress
-
         self.console = console
         self.inner = RichProgress(console) if details else None
 
@@ -269,32 +269,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         "instruments kept connected, a big PASS/FAIL after each board, a session "
         "summary at the end (quit, exit, end of input or Ctrl-C at the prompt).",
     )
-    p.add_argument("--station", required=True, help="station file (TOML)")
-    p.add_argument("--fixture", required=True, help="fixture file (TOML)")
-    p.add_argument("--board", required=True, help="board file (TOML, limits/)")
-    p.add_argument("--db", default=None, help="results database (default: ampbench-results.db)")
+    run_args.add_bench_files(p)
+    run_args.add_db(p)
     p.add_argument("--operator", default=None, help="who tests (asked once when not given)")
     p.add_argument("--scanner-prefix", default="", help="text the scanner sends before a code")
     p.add_argument("--scanner-suffix", default="", help="text the scanner sends after a code")
     p.add_argument("--details", action="store_true", help="print every measurement")
-    p.add_argument("--keep-records", action="store_true", help="store the raw records too")
-    p.add_argument(
-        "--settle-wait",
-        type=float,
-        default=None,
-        metavar="S",
-        help="seconds to wait after each level change (default: the model's)",
-    )
-    p.add_argument(
-        "--verify-settling",
-        action="store_true",
-        help="repeat records after level changes until they agree",
-    )
-    p.add_argument(
-        "--accept-conditional-pass",
-        action="store_true",
-        help="count 'conditional pass' as pass (shared risk; default: FAIL)",
-    )
+    run_args.add_run_settings(p)
     p.add_argument(
         "--max-points",
         type=int,
@@ -313,7 +294,6 @@ def register(sub: argparse._SubParsersAction) -> None:
 def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any = None) -> int:
     from rich.console import Console
 
-    from harness.run.decisions import DecisionPolicy
     from harness.store import DEFAULT_DB
 
     stdin = stdin if stdin is not None else sys.stdin
@@ -342,14 +322,8 @@ def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any =
     kw: dict[str, Any] = {}
     if args.max_points is not None:
         kw["max_points"] = args.max_points
-    options = RunOptions(
-        operator=operator,
-        keep_records=args.keep_records,
-        settle="verify" if args.verify_settling else "wait",
-        settle_wait_s=args.settle_wait,
-        policy=DecisionPolicy(accept_conditional_pass=args.accept_conditional_pass),
-        extra_frequencies=not args.no_extra_frequencies,
-        **kw,
+    options = run_args.run_options(
+        args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
     )
     summary = run_line(
         prep,

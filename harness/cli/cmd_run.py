@@ -11,49 +11,12 @@ import json
 import sys
 from typing import Any
 
+from harness.cli import run_args
+from harness.cli.run_args import RichProgress
 from harness.run.runner import execute, prepare, validate_serial
-from harness.run.sequence import RunOptions, RunResult
+from harness.run.sequence import RunResult
 
-_COLOURS = {
-    "pass": "green",
-    "info": "cyan",
-    "conditional pass": "yellow",
-    "conditional fail": "yellow",
-    "not resolvable": "magenta",
-    "fail": "red",
-}
-
-
-class RichProgress:
-    """Progress lines with rich: one line per step, one per measurement."""
-
-    def __init__(self, console: Any) -> None:
-        self.console = console
-
-    def step(self, name: str, text: str) -> None:
-        self.console.print(f"[bold]> {name}[/bold]: {text}")
-
-    def measurement(self, row: Any) -> None:
-        colour = _COLOURS.get(row.decision, "white")
-        value = "-" if row.value is None else f"{row.value:.5g}"
-        lim = _limits_text(row)
-        ch = f"{row.channel}: " if row.channel else ""
-        self.console.print(
-            f"    {ch}{row.name} = {value} {row.unit} {lim} [{colour}]{row.decision}[/{colour}]",
-            highlight=False,
-        )
-
-    def note(self, text: str) -> None:
-        self.console.print(f"    [dim]{text}[/dim]")
-
-
-def _limits_text(row: Any) -> str:
-    if row.low is None and row.high is None:
-        return ""
-    lo = "-inf" if row.low is None else f"{row.low:.5g}"
-    hi = "+inf" if row.high is None else f"{row.high:.5g}"
-    u = "" if row.uncertainty is None else f" U={row.uncertainty:.2g}"
-    return f"[{lo} .. {hi}]{u}"
+__all__ = ["RichProgress", "print_verdict", "register", "run"]
 
 
 def print_verdict(console: Any, result: RunResult, title: str | None = None) -> None:
@@ -86,51 +49,24 @@ def register(sub: argparse._SubParsersAction) -> None:
         "points, gain, phase, THD, clipping threshold; decide every "
         "measurement against the model's limits and store it.",
     )
-    p.add_argument("--station", required=True, help="station file (TOML)")
-    p.add_argument("--fixture", required=True, help="fixture file (TOML)")
-    p.add_argument("--board", required=True, help="board file (TOML, limits/)")
-    p.add_argument("--serial", required=True, help="the board's serial number")
+    run_args.add_bench_files(p, serial_help="the board's serial number")
     p.add_argument("--operator", default="", help="who runs the test")
-    p.add_argument("--db", default=None, help="results database (default: ampbench-results.db)")
+    run_args.add_db(p)
     p.add_argument("--json", action="store_true", help="print the result as JSON")
-    p.add_argument("--keep-records", action="store_true", help="store the raw records too")
-    p.add_argument(
-        "--settle-wait",
-        type=float,
-        default=None,
-        metavar="S",
-        help="seconds to wait after each level change (default: the model's settle time)",
-    )
-    p.add_argument(
-        "--verify-settling",
-        action="store_true",
-        help="repeat records after level changes until they agree, instead of waiting",
-    )
-    p.add_argument(
-        "--accept-conditional-pass",
-        action="store_true",
-        help="count 'conditional pass' as pass (shared risk; default: FAIL)",
-    )
+    run_args.add_run_settings(p)
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
     from rich.console import Console
 
-    from harness.run.decisions import DecisionPolicy
     from harness.store import DEFAULT_DB
 
     serial = validate_serial(args.serial)  # before anything touches an instrument
     prep = prepare(args.board, args.fixture, args.station)
     console = Console(stderr=args.json)
     progress = None if args.json else RichProgress(console)
-    options = RunOptions(
-        operator=args.operator,
-        keep_records=args.keep_records,
-        settle="verify" if args.verify_settling else "wait",
-        settle_wait_s=args.settle_wait,
-        policy=DecisionPolicy(accept_conditional_pass=args.accept_conditional_pass),
-    )
+    options = run_args.run_options(args, operator=args.operator)
     if not args.json:
         console.print(
             f"[bold]{prep.board.name}[/bold] ({prep.board.part_number} rev "

@@ -21,15 +21,15 @@ Every point goes to the store as a sweep point (sweeps ``"level"`` and ``"freque
 frequency and phase in ``extra_json``); comparisons as measurements.  A complete run's
 verdict is PASS when every compared quantity lies in the model's band.
 
-Acquisition here is this module's own small loop over the driver calls (plan a coherent
-record, range the scope, acquire, analyse) rather than the sequencer's private helpers,
-which may change; it uses only public functions of the run layer (SafeGenerator,
-SupplyGuard, sigterm_raises, choose_range, added_thd_percent).
+Acquisition (plan a coherent record, range the scope, acquire, analyse), the run header
+and the row writing are the production sequence's own, from :mod:`harness.run.bench_ops`;
+only the policy differs: longer records are allowed, a sweep frequency may sit
+``FREQ_TOLERANCE`` off its target, and the digitiser-harmonic correction is applied only
+where input and output fill their ranges within ``FILL_MATCH`` of each other.
 """
 
 from __future__ import annotations
 
-import json
 import logging
 import math
 import time
@@ -39,28 +39,23 @@ from typing import Any, Literal
 
 import numpy as np
 
-from harness import __version__
-from harness.errors import AnalysisError, InstrumentError, RunAborted, SafetyError
-from harness.measure import (
-    ClipCriterion,
-    RecordAnalysis,
-    analyze_uniform,
-    clip_threshold,
-    plan_coherent,
-)
+from harness.errors import AnalysisError, RunAborted, SafetyError
+from harness.measure import RecordAnalysis, clip_threshold
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
+from harness.run.bench_ops import (
+    BoardRun,
+    plan_record,
+    raise_aborted,
+    routed,
+    run_guarded,
+)
 from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
-from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
-from harness.run.sequence import added_thd_percent, choose_range
-from harness.store import MeasurementRow, RunHeader, SweepPointRow
+from harness.store import MeasurementRow
 
 log = logging.getLogger("harness.run.characterize")
 
-#: A record fills at most this fraction of the scope range; under this share of it, re-range.
-RANGE_FILL = 0.8
-RANGE_UNDERUSE = 0.35
 #: The -3 dB point is bracketed from points this far (factor) below the model's lowest corner.
 CORNER_MARGIN = 0.4
 #: Mid-band reference: gains between this multiple of the model's corner and the test
@@ -196,148 +191,10 @@ def corner_from_sweep(points: Sequence[tuple[float, float]]) -> tuple[float, int
     return None
 
 
-class _Bench:
-    """Adapter: the few acquisition steps characterisation needs, on public driver calls."""
-
-    def __init__(self, instruments: Any, board: Board, fixture: FixtureConfig, opt) -> None:
-        self.inst = instruments
-        self.scope = instruments.scope
-        self.board = board
-        self.fixture = fixture
-        self.opt = opt
-        self.ranges: dict[int, float] = {}
-        self.scope_ranges = tuple(float(r) for r in self.scope.ranges_vpp)
-        self.timebase: tuple[float, int] | None = None
-        self.trigger: int | None = None
-        self.acquisitions = 0
-
-    def plan(self, frequency_hz: float, *, tolerance_rel: float = 0.01) -> Any:
-        """A coherent record near ``frequency_hz`` lasting at most max_record_s: the longest
-        record up to ``max_points``, else the shortest longer one that fits (low
-        frequencies need long records); else the shortest-lasting plan there is."""
-        all_lengths = sorted(int(n) for n in self.scope.record_lengths)
-        short = [n for n in all_lengths if n <= self.opt.max_points][::-1]
-        longer = [n for n in all_lengths if n > self.opt.max_points]
-        rates = list(self.scope.sample_rates_hz)
-        best = None
-        for n in short + longer:
-            try:
-                p = plan_coherent(
-                    frequency_hz,
-                    rates,
-                    [n],
-                    min_cycles=self.opt.min_cycles,
-                    tolerance_rel=tolerance_rel,
-                )
-            except AnalysisError:
-                continue
-            dur = p.n_samples / p.sample_rate_hz
-            if dur <= self.opt.max_record_s:
-                return p
-            if best is None or dur < best[0]:
-                best = (dur, p)
-        if best is None:
-            raise AnalysisError(
-                f"the scope cannot record {frequency_hz:.4g} Hz coherently within "
-                f"{100 * tolerance_rel:g} % (sample rates {rates}, record lengths "
-                f"{all_lengths})"
-            )
-        return best[1]
-
-    def _tips(self, probe: float) -> tuple[float, ...]:
-        return tuple(r * probe for r in self.scope_ranges)
-
-    def _set_range(self, n: int, rng: float, probe: float) -> None:
-        if self.ranges.get(n) == rng:
-            return
-        setup = self.scope.configure_input(n, range_vpp=rng, probe=probe)
-        self.ranges[n] = float(getattr(setup, "range_vpp", rng))
-
-    def preset(self, group: Sequence[ChannelConnection], level_vrms: float, gains: dict) -> None:
-        span = self.board.supply.v_pos - self.board.supply.v_neg
-        for c in group:
-            vin = 2 * math.sqrt(2) * level_vrms
-            self._set_range(
-                c.input_scope, choose_range(vin, self._tips(c.input_probe)), c.input_probe
-            )
-            vout = min(vin * gains[c.board_channel], 1.1 * span)
-            self._set_range(
-                c.output_scope, choose_range(vout, self._tips(c.output_probe)), c.output_probe
-            )
-
-    def acquire(self, group: Sequence[ChannelConnection], plan: Any) -> dict[str, RecordAnalysis]:
-        inputs: list[int] = []
-        for c in group:
-            for n in (c.input_scope, c.output_scope):
-                if n not in inputs:
-                    inputs.append(n)
-        probes = {c.input_scope: c.input_probe for c in group}
-        probes.update({c.output_scope: c.output_probe for c in group})
-        tb = (float(plan.sample_rate_hz), int(plan.n_samples))
-        if self.timebase != tb:
-            self.scope.configure_timebase(*tb)
-            self.timebase = tb
-        if self.trigger != inputs[0]:
-            self.scope.configure_trigger(inputs[0], 0.0)
-            self.trigger = inputs[0]
-        for attempt in range(self.opt.max_rerange + 1):
-            acq = self.scope.acquire(inputs)
-            self.acquisitions += 1
-            changed = False
-            for n in inputs:
-                v = np.asarray(acq.volts[n], dtype=float)
-                lo, hi = acq.adc_limits[n]
-                lsb = (hi - lo) / 2 ** int(acq.bits)
-                over = bool(np.any(v >= hi - 0.5 * lsb) or np.any(v <= lo + 0.5 * lsb))
-                rng = self.ranges.get(n, hi - lo)
-                tips = self._tips(probes[n])
-                new = rng
-                if over:
-                    bigger = [r for r in tips if r > rng * (1 + 1e-9)]
-                    new = bigger[0] if bigger else rng
-                elif float(np.ptp(v)) < RANGE_UNDERUSE * RANGE_FILL * rng:
-                    new = min(choose_range(float(np.ptp(v)), tips), rng)
-                if new != rng and attempt < self.opt.max_rerange:
-                    self.ranges.pop(n, None)
-                    self._set_range(n, new, probes[n])
-                    changed = True
-            if not changed:
-                break
-        out: dict[str, RecordAnalysis] = {}
-        for c in group:
-            x = np.asarray(acq.volts[c.input_scope], dtype=float)
-            y = np.asarray(acq.volts[c.output_scope], dtype=float)
-            a = analyze_uniform(
-                x,
-                y,
-                acq.sample_rate_hz,
-                in_adc=tuple(acq.adc_limits[c.input_scope]),
-                out_adc=tuple(acq.adc_limits[c.output_scope]),
-                adc_bits=int(acq.bits),
-                frequency_hz=plan.frequency_hz,
-            )
-            in_lo, in_hi = acq.adc_limits[c.input_scope]
-            out_lo, out_hi = acq.adc_limits[c.output_scope]
-            fill_ratio = (float(np.ptp(y)) / (out_hi - out_lo)) / max(
-                float(np.ptp(x)) / (in_hi - in_lo), 1e-12
-            )
-            # The digitiser-harmonic correction scales the input's harmonics by
-            # fill_ratio^(k-1): with unequal fills it would amplify the input's
-            # quantisation error into false harmonics, so it is used only near equal fill.
-            if a.thd_percent is not None and 1 / FILL_MATCH <= fill_ratio <= FILL_MATCH:
-                corr = added_thd_percent(
-                    x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
-                )
-                if corr is not None:
-                    from dataclasses import replace
-
-                    a = replace(a, thd_percent=corr)
-            out[c.board_channel] = a
-        return out
-
-
-class Characterizer:
+class Characterizer(BoardRun):
     """One characterisation run; use :func:`characterize`."""
+
+    fixture_note = "; characterisation"
 
     def __init__(
         self,
@@ -352,85 +209,31 @@ class Characterizer:
         *,
         board_file: str,
     ) -> None:
-        self.inst = instruments
-        self.board = board
-        self.limits = limits
-        self.fixture = fixture
-        self.serial = serial
-        self.store = store
-        self.opt = options
-        self.progress = progress
-        self.board_file = board_file
-        cond = board.conditions
-        self.criterion = ClipCriterion(
-            kind=cond.clip_criterion,
-            threshold_percent=cond.clip_thd_percent,
-            db=cond.clip_compression_db,
-        )
-        self.bench = _Bench(instruments, board, fixture, options)
-        self.safe = SafeGenerator(
-            instruments.generator,
-            cond.safe_input_vrms,
-            direct_vrms=cond.nominal_input_vrms,
-            max_step_up_db=options.max_step_up_db,
-            output=fixture.generator_output,
-        )
-        self.supply: SupplyGuard | None = None
-        if fixture.supply is not None and getattr(instruments, "supply", None) is not None:
-            s = fixture.supply
-            neg = (
-                (s.negative_output, float(s.negative_voltage_v))
-                if s.negative_output is not None and s.negative_voltage_v is not None
-                else None
-            )
-            self.supply = SupplyGuard(
-                instruments.supply, s.voltage_v, s.current_limit_a, s.output, negative=neg
-            )
-        self.settle_s = (
-            options.settle_wait_s
-            if options.settle_wait_s is not None
-            else max(
-                float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels
-            )
+        super().__init__(
+            instruments,
+            board,
+            limits,
+            fixture,
+            serial,
+            store,
+            options,
+            progress,
+            board_file=board_file,
+            generator=instruments.generator,
+            scope=instruments.scope,
+            supply=getattr(instruments, "supply", None),
         )
         self.settle_note = f"waited {self.settle_s:.3g} s after each level or frequency change" + (
             " (operator override)"
             if options.settle_wait_s is not None
             else " (the model's settle time)"
         )
-        self.rows: list[MeasurementRow] = []
         self.channels = {
             c.board_channel: ChannelCharacterization(c.board_channel) for c in fixture.channels
         }
-        self.run_id = -1
         self.step = "setup"
 
     # --- store ----------------------------------------------------------------------
-    def header(self) -> RunHeader:
-        ids = getattr(self.inst, "identities", {}) or {}
-        doc = self.limits.to_dict()
-        return RunHeader(
-            serial=self.serial,
-            part_number=self.board.part_number,
-            board_name=self.board.name,
-            board_file=self.board_file,
-            board_digest=self.board.digest,
-            limits_json=json.dumps(doc, sort_keys=True, default=str),
-            limits_digest=str(self.limits.digest),
-            station=self.opt.station_name,
-            fixture=f"{self.fixture.name} ({self.fixture.path}, sha256 {self.fixture.digest}); "
-            "characterisation",
-            operator=self.opt.operator,
-            instruments={
-                r: ",".join(
-                    str(getattr(i, k, "")) for k in ("maker", "model", "serial", "firmware")
-                )
-                for r, i in ids.items()
-            },
-            software_version=__version__,
-            settle_note=self.settle_note,
-        )
-
     def _row(
         self,
         ch: str,
@@ -448,22 +251,7 @@ class Characterizer:
             decision = "fail"
         else:
             decision = "pass" if limit.contains(value) else "fail"
-        row = MeasurementRow(
-            channel=ch,
-            name=name,
-            value=value,
-            unit=unit,
-            low=low,
-            high=high,
-            uncertainty=None,
-            decision=decision,
-            step=self.step,
-            detail_json=json.dumps(detail, default=_json_default) if detail else None,
-        )
-        self.store.add_measurement(self.run_id, row)
-        self.rows.append(row)
-        self.progress.measurement(row)
-        return row
+        return self.run_log.row(ch, name, value, unit, low, high, None, decision, self.step, detail)
 
     def _point(
         self,
@@ -491,20 +279,7 @@ class Characterizer:
             "over_range": a.over_range,
             **(extra or {}),
         }
-        self.store.add_sweep_point(
-            self.run_id,
-            SweepPointRow(
-                channel=ch,
-                sweep=sweep,
-                level_vrms=a.input_vrms,
-                gain_db=a.gain_db,
-                thd_percent=a.thd_percent,
-                thdn_percent=a.thdn_percent,
-                clipped=a.clipped,
-                clip_side=a.clip_side,
-                extra_json=json.dumps(data, default=_json_default),
-            ),
-        )
+        self.run_log.sweep_point(ch, sweep, a, data)
         return p
 
     # --- measuring ------------------------------------------------------------------
@@ -515,22 +290,36 @@ class Characterizer:
             for c in group
         }
 
+    def _plan(self, frequency_hz: float, *, tolerance_rel: float = 0.01) -> Any:
+        """A coherent record near ``frequency_hz`` lasting at most max_record_s: the longest
+        record up to ``max_points``, else the shortest longer one that fits (low
+        frequencies need long records); else the shortest-lasting plan there is."""
+        return plan_record(
+            self.inst.scope,
+            frequency_hz,
+            max_points=self.opt.max_points,
+            max_record_s=(self.opt.max_record_s,),
+            min_cycles=self.opt.min_cycles,
+            tolerance_rel=tolerance_rel,
+            longer_records=True,
+            fallback="shortest",
+        )
+
     def _measure(self, group, level: float, plan: Any, gains: dict) -> dict[str, RecordAnalysis]:
         changed = abs(level - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
-        self.bench.preset(group, level, gains)
+        self.scope_ops.preset([(c, gains[c.board_channel]) for c in group], level)
         self.safe.set_level(level)
         if self.safe.output_state != "on":
             self.safe.on()
         if changed:
             self._settle()
-        return self.bench.acquire(group, plan)
+        out, _ = self.scope_ops.acquire(group, plan, fill_match=FILL_MATCH)
+        return out
 
     def _settle(self) -> None:
         if self.settle_s > 0:
             self.opt.sleep(self.settle_s)
-        hb = getattr(self.store, "heartbeat", None)
-        if hb is not None:
-            hb(self.run_id)
+        self.run_log.heartbeat()
 
     def _met(self, a: RecordAnalysis, small_gain: float | None) -> bool:
         """The record meets the clipping criterion.  THD counts only clear of the bench's
@@ -547,7 +336,7 @@ class Characterizer:
         self.step = "level"
         cond = self.board.conditions
         nom, safe = cond.nominal_input_vrms, cond.safe_input_vrms
-        plan = self.bench.plan(cond.frequency_hz)
+        plan = self._plan(cond.frequency_hz)
         self.progress.step(
             "level",
             f"level sweep at {plan.frequency_hz:.6g} Hz, "
@@ -635,12 +424,12 @@ class Characterizer:
                 rel = ch.relative_db()
                 ch.measured_corner_hz = found[0]
                 ch.corner_bracket_hz = (rel[found[1] - 1][0], rel[found[1]][0])
-        self.safe.set_frequency(self.bench.plan(cond.frequency_hz).frequency_hz)
+        self.safe.set_frequency(self._plan(cond.frequency_hz).frequency_hz)
 
     def _freq_point(self, group, f: float, level: float, gains: dict) -> None:
         try:
             # the sweep's frequencies need not be exact: the planned one is recorded
-            plan = self.bench.plan(f, tolerance_rel=FREQ_TOLERANCE)
+            plan = self._plan(f, tolerance_rel=FREQ_TOLERANCE)
         except AnalysisError as exc:
             self.progress.note(f"{f:.4g} Hz skipped: {exc}")
             return
@@ -750,56 +539,41 @@ class Characterizer:
             )
 
     # --- the whole run ---------------------------------------------------------------
+    def _steps(self) -> None:
+        with self.safe:  # output off before the first step and on every exit
+            if self.supply is not None:
+                self.step = "supply"
+                self.supply.on()
+                self._settle()
+                cur = self.supply.current_a()
+                self._row(
+                    "",
+                    "supply_current",
+                    cur,
+                    "A",
+                    self.limits.supply_current_a,
+                    {"tripped": self.supply.tripped()},
+                )
+                if self.supply.tripped():
+                    raise RunAborted("supply tripped: no signal applied", step="supply")
+            switch = getattr(self.inst, "switch", None)
+            for grp in self.fixture.groups():
+                with routed(switch, grp, self.safe):
+                    self.level_sweep(grp)
+                    self.frequency_sweep(grp)
+                self.compare(grp)
+
+    def _shutdown(self) -> None:
+        self.safe.safe_off()
+        if self.supply is not None:
+            self.supply.safe_off()
+
     def run(self) -> CharacterizationResult:
         t0 = time.perf_counter()
-        self.run_id = self.store.begin_run(self.header())
-        status: Literal["complete", "aborted"] = "complete"
-        reason: str | None = None
-        error: BaseException | None = None
-        try:
-            with sigterm_raises():
-                try:
-                    with self.safe:  # output off before the first step and on every exit
-                        if self.supply is not None:
-                            self.step = "supply"
-                            self.supply.on()
-                            self._settle()
-                            cur = self.supply.current_a()
-                            self._row(
-                                "",
-                                "supply_current",
-                                cur,
-                                "A",
-                                self.limits.supply_current_a,
-                                {"tripped": self.supply.tripped()},
-                            )
-                            if self.supply.tripped():
-                                raise RunAborted("supply tripped: no signal applied", step="supply")
-                        for grp in self.fixture.groups():
-                            route = sorted({r for c in grp for r in c.route})
-                            switch = getattr(self.inst, "switch", None)
-                            if route and switch is not None:
-                                switch.close(route)
-                            try:
-                                self.level_sweep(grp)
-                                self.frequency_sweep(grp)
-                            finally:
-                                self.safe.off()
-                                if route and switch is not None:
-                                    switch.open(route)
-                            self.compare(grp)
-                finally:
-                    self.safe.safe_off()
-                    if self.supply is not None:
-                        self.supply.safe_off()
-        except BaseException as exc:
-            status, error = "aborted", exc
-            if isinstance(exc, KeyboardInterrupt):
-                reason = f"interrupted by the operator (Ctrl-C) at step {self.step}"
-            else:
-                reason = f"{type(exc).__name__} at step {self.step}: {exc}"
-        if self.safe.output_state == "unknown":
-            reason = (reason + "; " if reason else "") + "generator output state unknown"
+        self.run_id = self.run_log.begin(self.header())
+        status, reason, error = run_guarded(
+            self._steps, self._shutdown, lambda: self.step, self.safe
+        )
         verdict: Literal["PASS", "FAIL"] | None = None
         if status == "complete":
             decided = [r for r in self.rows if r.decision != "info"]
@@ -829,24 +603,12 @@ class Characterizer:
             generator_state=self.safe.output_state,
             settle_note=self.settle_note,
             limits_digest=str(self.limits.digest),
-            acquisitions=self.bench.acquisitions,
+            acquisitions=self.scope_ops.acquisitions,
             elapsed_s=time.perf_counter() - t0,
         )
         if error is not None:
-            if isinstance(error, KeyboardInterrupt | RunAborted):
-                raise error
-            if isinstance(error, InstrumentError | AnalysisError):
-                raise RunAborted(str(error), step=self.step) from error
-            raise error
+            raise_aborted(error, self.step)
         return result
-
-
-def _json_default(o: Any) -> Any:
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, tuple):
-        return list(o)
-    return str(o)
 
 
 def characterize(

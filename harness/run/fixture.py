@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import FixtureFileError, StationFileError
-from harness.files import read_toml
+from harness.files import FieldReader, read_toml
 from harness.model.board import Board, CommonEmitter, EmitterFollower
 
 #: Operating-point quantities per stage family (the keys of model.operating_point()).
@@ -152,90 +152,23 @@ def _route_compatible(group: list[ChannelConnection], c: ChannelConnection) -> b
 # --- loading ------------------------------------------------------------------------------
 
 
-class _Reader:
+class _Reader(FieldReader):
+    """The shared field reader plus the fixture's own field type, a switch route."""
+
     def __init__(self, path: str) -> None:
-        self.path = path
+        super().__init__(path, FixtureFileError)
 
-    def fail(self, where: str | None, reason: str, hint: str | None = None) -> FixtureFileError:
-        return FixtureFileError(self.path, where, reason, hint=hint)
-
-    def known(self, data: Mapping[str, Any], allowed: set[str], where: str) -> None:
-        unknown = sorted(set(data) - allowed)
-        if unknown:
-            loc = f"{where}.{unknown[0]}" if where else unknown[0]
+    def board_channel(self, data: Mapping[str, Any], where: str, board: Board) -> str:
+        """The ``board_channel`` field: it must name one of ``board``'s channels."""
+        names = [c.name for c in board.channels]
+        cname = self.text(data, "board_channel", where)
+        if cname not in names:
             raise self.fail(
-                loc, "unknown field", hint=f"allowed here: {', '.join(sorted(allowed))}"
+                f"{where}.board_channel",
+                f"board {board.part_number} has no channel {cname!r}",
+                hint=f"use one of: {', '.join(names)}",
             )
-
-    def table(self, data: Mapping[str, Any], key: str, *, required: bool) -> Mapping[str, Any]:
-        if key not in data:
-            if required:
-                raise self.fail(key, f"missing table [{key}]", hint=f"add a [{key}] table")
-            return {}
-        value = data[key]
-        if not isinstance(value, Mapping):
-            raise self.fail(key, "must be a table", hint=f"write it as [{key}]")
-        return value
-
-    def text(
-        self, data: Mapping[str, Any], key: str, where: str, default: str | None = None
-    ) -> str:
-        if key not in data:
-            if default is not None:
-                return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f'add {key} = "..."')
-        value = data[key]
-        if not isinstance(value, str) or not value.strip():
-            raise self.fail(f"{where}.{key}", "must be a non-empty text")
-        return value.strip()
-
-    def whole(
-        self,
-        data: Mapping[str, Any],
-        key: str,
-        where: str,
-        default: int | None = None,
-        *,
-        low: int = 1,
-        high: int = MAX_SWITCH_CHANNEL,
-    ) -> int:
-        if key not in data:
-            if default is not None:
-                return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = <number>")
-        value = data[key]
-        if not isinstance(value, int) or isinstance(value, bool):
-            raise self.fail(f"{where}.{key}", f"must be a whole number (got {value!r})")
-        if not low <= value <= high:
-            raise self.fail(f"{where}.{key}", f"must be from {low} to {high} (got {value})")
-        return value
-
-    def number(
-        self,
-        data: Mapping[str, Any],
-        key: str,
-        where: str,
-        default: float | None = None,
-        *,
-        low: float = 0.0,
-        high: float = float("inf"),
-        what: str = "value",
-    ) -> float:
-        if key not in data:
-            if default is not None:
-                return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = <number>")
-        value = data[key]
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise self.fail(
-                f"{where}.{key}",
-                f"must be a number (got {value!r})",
-                hint="write plain SI numbers, e.g. 0.03",
-            )
-        v = float(value)
-        if not (low < v <= high):
-            raise self.fail(f"{where}.{key}", f"{what} {v:g} is out of range ({low:g} .. {high:g})")
-        return v
+        return cname
 
     def route(self, data: Mapping[str, Any], where: str) -> tuple[int, ...]:
         raw = data.get("route", [])
@@ -300,16 +233,12 @@ def fixture_from_dict(
     gen_output = rd.whole(gen, "output", "generator", default=1, high=16)
 
     max_in = scope_inputs if scope_inputs is not None else 64
-    channel_names = [c.name for c in board.channels]
     chans = data.get("channel")
     if not isinstance(chans, list) or not chans:
         raise rd.fail("channel", "no channels", hint="add one [[channel]] table per board channel")
     connections: list[ChannelConnection] = []
     seen: set[str] = set()
-    for i, ch in enumerate(chans):
-        where = f"channel[{i}]"
-        if not isinstance(ch, Mapping):
-            raise rd.fail(where, "must be a table", hint="write it as [[channel]]")
+    for where, ch in rd.tables(chans, "channel"):
         rd.known(
             ch,
             {
@@ -323,13 +252,7 @@ def fixture_from_dict(
             },
             where,
         )
-        cname = rd.text(ch, "board_channel", where)
-        if cname not in channel_names:
-            raise rd.fail(
-                f"{where}.board_channel",
-                f"board {board.part_number} has no channel {cname!r}",
-                hint=f"use one of: {', '.join(channel_names)}",
-            )
+        cname = rd.board_channel(ch, where, board)
         if cname in seen:
             raise rd.fail(
                 f"{where}.board_channel",
@@ -372,22 +295,13 @@ def fixture_from_dict(
         raise rd.fail("test_point", "must be [[test_point]] tables")
     points: list[TestPoint] = []
     tp_names: set[str] = set()
-    for i, tp in enumerate(tps):
-        where = f"test_point[{i}]"
-        if not isinstance(tp, Mapping):
-            raise rd.fail(where, "must be a table", hint="write it as [[test_point]]")
+    for where, tp in rd.tables(tps, "test_point"):
         rd.known(tp, {"name", "board_channel", "stage", "quantity", "route", "note"}, where)
         tname = rd.text(tp, "name", where)
         if tname in tp_names:
             raise rd.fail(f"{where}.name", f"two test points are named {tname!r}")
         tp_names.add(tname)
-        cname = rd.text(tp, "board_channel", where)
-        if cname not in channel_names:
-            raise rd.fail(
-                f"{where}.board_channel",
-                f"board {board.part_number} has no channel {cname!r}",
-                hint=f"use one of: {', '.join(channel_names)}",
-            )
+        cname = rd.board_channel(tp, where, board)
         stages = _stage_quantities(board, cname)
         stage = rd.text(tp, "stage", where)
         if stage not in stages:

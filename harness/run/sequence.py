@@ -27,32 +27,34 @@ import json
 import logging
 import math
 import time
-from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field, replace
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
 
-from harness import __version__
-from harness.errors import (
-    AmpbenchError,
-    AnalysisError,
-    FixtureFileError,
-    InstrumentError,
-    RunAborted,
-)
+from harness.errors import AmpbenchError, FixtureFileError
 from harness.measure import (
-    ClipCriterion,
     RecordAnalysis,
     SearchStep,
-    analyze_uniform,
     clip_threshold,
     measurement_floor,
     next_search_level,
-    plan_coherent,
 )
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
+from harness.run.bench_ops import (
+    RANGE_FILL,
+    RANGE_UNDERUSE,
+    BoardRun,
+    added_thd_percent,
+    choose_range,
+    limit_get,
+    plan_record,
+    raise_aborted,
+    routed,
+    run_guarded,
+)
 from harness.run.decisions import (
     STRICT,
     BenchUncertainty,
@@ -65,8 +67,20 @@ from harness.run.decisions import (
 )
 from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
-from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
-from harness.store import MeasurementRow, RunHeader, SweepPointRow
+from harness.store import MeasurementRow
+
+#: Kept importable from here (public names of this module before the shared bench module).
+__all__ = [
+    "RANGE_FILL",
+    "RANGE_UNDERUSE",
+    "ChannelVerdict",
+    "RunOptions",
+    "RunResult",
+    "Sequencer",
+    "added_thd_percent",
+    "choose_range",
+    "run_board",
+]
 
 log = logging.getLogger("harness.run.sequence")
 
@@ -78,14 +92,10 @@ MAX_RECORD_S = 0.1
 FREQ_TOLERANCE = 0.01
 #: Fewest cycles in a record (sine fit and harmonics stay well conditioned).
 MIN_CYCLES = 5
-#: A record fills at most this fraction of the scope range (headroom for tolerances).
-RANGE_FILL = 0.8
 #: Output fill for the clipping search: the digitiser's own nonlinearity (integral
 #: nonlinearity makes harmonics that grow with the fraction of full scale used) would
 #: otherwise add to or cancel the board's harmonics near the criterion.
 SEARCH_FILL = 0.4
-#: A record using less than this fraction of its target fill is re-ranged down.
-RANGE_UNDERUSE = 0.35
 #: Phase tolerance of the polarity check: a wrong polarity reads 180 degrees off.
 PHASE_TOLERANCE_DEG = 45.0
 #: Expanded uncertainty of a phase reading (degrees); small against the tolerance.
@@ -213,32 +223,9 @@ class _Timed:
         return call
 
 
-def choose_range(vpp: float, ranges: Iterable[float], fill: float = RANGE_FILL) -> float:
-    """Smallest scope range holding ``vpp`` within ``fill`` of full scale (else the largest)."""
-    rs = sorted(float(r) for r in ranges)
-    for r in rs:
-        if vpp <= fill * r:
-            return r
-    return rs[-1]
-
-
 def _wrap_near(phase_deg: float, expected: float) -> float:
     d = (phase_deg - expected + 180.0) % 360.0 - 180.0
     return expected + d
-
-
-def _identity_text(identity: Any) -> str:
-    if isinstance(identity, str):
-        return identity
-    fields = [getattr(identity, k, "") for k in ("maker", "model", "serial", "firmware")]
-    if any(fields):
-        return ",".join(str(f) for f in fields)
-    return str(identity)
-
-
-def _limit_get(limit: Any, attr: str) -> float | None:
-    v = getattr(limit, attr, None)
-    return None if v is None else float(v)
 
 
 @dataclass
@@ -252,7 +239,7 @@ class _ChannelState:
     nominal: RecordAnalysis | None = None
 
 
-class Sequencer:
+class Sequencer(BoardRun):
     """One board's run; use :func:`run_board`."""
 
     def __init__(
@@ -270,40 +257,28 @@ class Sequencer:
         station_file: str,
     ) -> None:
         self.clock = _Clock()
-        self.inst = instruments
         self.gen_raw = _Timed(instruments.generator, self.clock)
         self.scope = _Timed(instruments.scope, self.clock)
         self.switch = _Timed(instruments.switch, self.clock) if instruments.switch else None
         self.dmm = _Timed(instruments.dmm, self.clock) if instruments.dmm else None
         self.supply_raw = _Timed(instruments.supply, self.clock) if instruments.supply else None
-        self.board = board
-        self.limits = limits
-        self.fixture = fixture
-        self.serial = serial
-        self.store = store
-        self.opt = options
-        self.progress = progress
-        self.board_file = board_file
+        super().__init__(
+            instruments,
+            board,
+            limits,
+            fixture,
+            serial,
+            store,
+            options,
+            progress,
+            board_file=board_file,
+            generator=self.gen_raw,
+            scope=self.scope,
+            supply=self.supply_raw,
+            note=progress.note,
+        )
         self.station_file = station_file
-        self.rows: list[MeasurementRow] = []
-        self.run_id = -1
-        self.acquisitions = 0
         self.search_acquisitions = 0
-        self.ranges: dict[int, float] = {}
-        self.scope_ranges = tuple(float(r) for r in self.scope.ranges_vpp)
-        cond = board.conditions
-        self.criterion = ClipCriterion(
-            kind=cond.clip_criterion,
-            threshold_percent=cond.clip_thd_percent,
-            db=cond.clip_compression_db,
-        )
-        self.settle_s = (
-            options.settle_wait_s
-            if options.settle_wait_s is not None
-            else max(
-                float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels
-            )
-        )
         if options.settle == "verify":
             self.settle_note = (
                 "settling verified by repeating the record after each level "
@@ -318,59 +293,24 @@ class Sequencer:
             self.settle_note = (
                 f"waited the model's settle time {self.settle_s:.3g} s after each level change"
             )
-        self.safe = SafeGenerator(
-            self.gen_raw,
-            cond.safe_input_vrms,
-            direct_vrms=cond.nominal_input_vrms,
-            max_step_up_db=options.max_step_up_db,
-            output=fixture.generator_output,
-        )
-        self.supply: SupplyGuard | None = None
-        if fixture.supply is not None and self.supply_raw is not None:
-            s = fixture.supply
-            neg = (
-                (s.negative_output, float(s.negative_voltage_v))
-                if s.negative_output is not None and s.negative_voltage_v is not None
-                else None
-            )
-            self.supply = SupplyGuard(
-                self.supply_raw, s.voltage_v, s.current_limit_a, s.output, negative=neg
-            )
-        self.plan = self._plan(cond.frequency_hz)
+        self.plan = self._plan(board.conditions.frequency_hz)
         self.step_name = "setup"
-        self._timebase: tuple[float, int] | None = None
-        self._fill: dict[int, float] = {}
-        self._raw_thd: dict[int, float] = {}
-        self._trigger: int | None = None
 
     # --- helpers --------------------------------------------------------------------
+    @property
+    def acquisitions(self) -> int:
+        return self.scope_ops.acquisitions
+
     def _plan(self, frequency_hz: float) -> Any:
         """A coherent record near ``frequency_hz``: the longest record (lowest noise floor)
         that lasts at most MAX_RECORD_S, relaxed step by step if none fits."""
-        lengths = sorted(
-            (n for n in self.scope.record_lengths if n <= self.opt.max_points), reverse=True
-        ) or [min(self.scope.record_lengths)]
-        rates = list(self.scope.sample_rates_hz)
-        last: Exception | None = None
-        for max_s in (MAX_RECORD_S, 2.5 * MAX_RECORD_S, 10 * MAX_RECORD_S):
-            for n in lengths:
-                try:
-                    plan = plan_coherent(
-                        frequency_hz,
-                        rates,
-                        [n],
-                        min_cycles=MIN_CYCLES,
-                        tolerance_rel=FREQ_TOLERANCE,
-                    )
-                except AnalysisError as exc:
-                    last = exc
-                    continue
-                if plan.n_samples / plan.sample_rate_hz <= max_s:
-                    return plan
-        return (
-            plan_coherent(frequency_hz, rates, lengths, min_cycles=MIN_CYCLES)
-            if last
-            else plan_coherent(frequency_hz, rates, lengths)
+        return plan_record(
+            self.scope,
+            frequency_hz,
+            max_points=self.opt.max_points,
+            max_record_s=(MAX_RECORD_S, 2.5 * MAX_RECORD_S, 10 * MAX_RECORD_S),
+            min_cycles=MIN_CYCLES,
+            tolerance_rel=FREQ_TOLERANCE,
         )
 
     def _row(
@@ -385,22 +325,9 @@ class Sequencer:
         decision: str,
         detail: dict | None = None,
     ) -> MeasurementRow:
-        row = MeasurementRow(
-            channel=channel,
-            name=name,
-            value=value,
-            unit=unit,
-            low=low,
-            high=high,
-            uncertainty=u,
-            decision=decision,
-            step=self.step_name,
-            detail_json=json.dumps(detail, default=_json_default) if detail else None,
+        return self.run_log.row(
+            channel, name, value, unit, low, high, u, decision, self.step_name, detail
         )
-        self.store.add_measurement(self.run_id, row)
-        self.rows.append(row)
-        self.progress.measurement(row)
-        return row
 
     def _decide_row(
         self,
@@ -412,7 +339,7 @@ class Sequencer:
         u: float,
         detail: dict | None = None,
     ) -> MeasurementRow:
-        low, high = _limit_get(limit, "low"), _limit_get(limit, "high")
+        low, high = limit_get(limit, "low"), limit_get(limit, "high")
         if value is None or not math.isfinite(value):
             decision = "fail" if (low is not None or high is not None) else "info"
             value = None
@@ -437,131 +364,36 @@ class Sequencer:
             t0 = time.perf_counter()
             self.opt.sleep(self.settle_s)
             self.clock.waiting_s += time.perf_counter() - t0
-        hb = getattr(self.store, "heartbeat", None)
-        if hb is not None:
-            hb(self.run_id)
+        self.run_log.heartbeat()
 
     # --- acquisition ----------------------------------------------------------------
     def _tip_ranges(self, probe: float) -> tuple[float, ...]:
-        return tuple(r * probe for r in self.scope_ranges)
+        return self.scope_ops.tip_ranges(probe)
 
-    def _set_range(self, scope_input: int, range_vpp: float, probe: float) -> None:
-        """Configure an input for a full-scale range in probe-tip volts (only on change)."""
-        if self.ranges.get(scope_input) == range_vpp:
-            return
-        setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
-        self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
-
-    def _preset_ranges(
-        self, group: list[_ChannelState], level_vrms: float, fill: float = RANGE_FILL
-    ) -> None:
-        """Ranges from the expected levels: the input from the level, each output from the
-        level times the gain (the nominal record's once known, else the model's)."""
+    def _gains(self, group: list[_ChannelState]) -> list[tuple[ChannelConnection, float]]:
+        """Each channel's expected gain: the nominal record's once known, else the model's."""
+        out = []
         for st in group:
-            c = st.conn
-            # The input probe at the same fill as the output: its record then carries the
-            # digitiser's own harmonics at the same fraction of full scale (added_thd_percent).
-            self._set_range(
-                c.input_scope,
-                choose_range(2 * math.sqrt(2) * level_vrms, self._tip_ranges(c.input_probe), fill),
-                c.input_probe,
-            )
-            self._fill[c.input_scope] = fill
             if st.nominal is not None and st.nominal.gain is not None:
                 gain = abs(st.nominal.gain)
             else:
                 gain = (
                     float(st.limits.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
                 )
-            out_vpp = 2 * math.sqrt(2) * level_vrms * gain
-            # Past clipping the output stops growing: never range above the supply span.
-            span = self.board.supply.v_pos - self.board.supply.v_neg
-            out_vpp = min(out_vpp, 1.1 * span)
-            self._set_range(
-                c.output_scope,
-                choose_range(out_vpp, self._tip_ranges(c.output_probe), fill),
-                c.output_probe,
-            )
-            self._fill[c.output_scope] = fill
-
-    def _inputs(self, group: list[_ChannelState]) -> list[int]:
-        used: list[int] = []
-        for st in group:
-            for n in (st.conn.input_scope, st.conn.output_scope):
-                if n not in used:
-                    used.append(n)
-        return used
+            out.append((st.conn, gain))
+        return out
 
     def _acquire(
         self, group: list[_ChannelState], plan: Any, label: str
     ) -> dict[str, RecordAnalysis]:
-        """One acquisition of every input of the group (re-ranged and repeated when a record
-        is over-range or uses too little of its range, at most ``max_rerange`` times)."""
-        inputs = self._inputs(group)
-        tb = (float(plan.sample_rate_hz), int(plan.n_samples))
-        if self._timebase != tb:
-            self.scope.configure_timebase(*tb)
-            self._timebase = tb
-        if self._trigger != inputs[0]:
-            self.scope.configure_trigger(inputs[0], 0.0)
-            self._trigger = inputs[0]
-        for attempt in range(self.opt.max_rerange + 1):
-            acq = self.scope.acquire(inputs)
-            self.acquisitions += 1
-            changed = False
-            for n in inputs:
-                v = np.asarray(acq.volts[n], dtype=float)
-                lo, hi = acq.adc_limits[n]
-                lsb = (hi - lo) / 2 ** int(acq.bits)
-                over = bool(np.any(v >= hi - 0.5 * lsb) or np.any(v <= lo + 0.5 * lsb))
-                rng = self.ranges.get(n, hi - lo)
-                pkpk = float(np.max(v) - np.min(v))
-                new = rng
-                probe = next(
-                    (s.conn.input_probe if s.conn.input_scope == n else s.conn.output_probe)
-                    for s in group
-                    if n in (s.conn.input_scope, s.conn.output_scope)
-                )
-                tips = self._tip_ranges(probe)
-                if over:
-                    bigger = [r for r in tips if r > rng * (1 + 1e-9)]
-                    new = bigger[0] if bigger else rng
-                elif pkpk < RANGE_UNDERUSE * self._fill.get(n, RANGE_FILL) * rng:
-                    new = min(choose_range(pkpk, tips, self._fill.get(n, RANGE_FILL)), rng)
-                if new != rng and attempt < self.opt.max_rerange:
-                    self.progress.note(
-                        f"scope input {n}: range {rng:g} -> {new:g} Vpp "
-                        f"({'over-range' if over else 'under-used'})"
-                    )
-                    self.ranges.pop(n, None)
-                    self._set_range(n, new, probe)
-                    changed = True
-            if changed:
-                continue
-            break
-        out: dict[str, RecordAnalysis] = {}
-        for st in group:
-            c = st.conn
-            x = np.asarray(acq.volts[c.input_scope], dtype=float)
-            y = np.asarray(acq.volts[c.output_scope], dtype=float)
-            a = analyze_uniform(
-                x,
-                y,
-                acq.sample_rate_hz,
-                in_adc=tuple(acq.adc_limits[c.input_scope]),
-                out_adc=tuple(acq.adc_limits[c.output_scope]),
-                adc_bits=int(acq.bits),
-                frequency_hz=plan.frequency_hz,
-            )
-            if a.thd_percent is not None and self.opt.correct_adc_nonlinearity:
-                corr = added_thd_percent(
-                    x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
-                )
-                if corr is not None:
-                    self._raw_thd[id(a)] = a.thd_percent
-                    a = replace(a, thd_percent=corr)
-            out[c.board_channel] = a
-            if self.opt.keep_records:
+        """One acquisition of every input of the group (see GroupScope.acquire); the raw
+        records stored too with ``keep_records``."""
+        conns = [st.conn for st in group]
+        out, acq = self.scope_ops.acquire(
+            conns, plan, correct_adc=self.opt.correct_adc_nonlinearity
+        )
+        if self.opt.keep_records:
+            for c in conns:
                 self.store.add_record(
                     self.run_id,
                     c.board_channel,
@@ -584,7 +416,7 @@ class Sequencer:
     ) -> dict[str, RecordAnalysis]:
         """Move the generator (ramped), let the board settle, record."""
         changed = abs(level_vrms - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
-        self._preset_ranges(group, level_vrms, fill)
+        self.scope_ops.preset(self._gains(group), level_vrms, fill)
         self.safe.set_level(level_vrms)
         if self.safe.output_state != "on":
             self.safe.on()
@@ -604,7 +436,7 @@ class Sequencer:
     def validate(self) -> None:
         """Checks of the inputs against the model, before anything is stored or driven."""
         sup = self.limits.supply_current_a
-        high = _limit_get(sup, "high")
+        high = limit_get(sup, "high")
         if (
             self.fixture.supply is not None
             and high is not None
@@ -639,7 +471,7 @@ class Sequencer:
             vout = float(lim.output_vrms_nominal)
             rng = choose_range(2 * math.sqrt(2) * vout, self._tip_ranges(c.output_probe))
             fl = measurement_floor(bits, rng, vout * math.sqrt(2), 0.0, self.plan.n_samples)
-            high = _limit_get(lim.thd_percent, "high")
+            high = limit_get(lim.thd_percent, "high")
             resolvable_at = FLOOR_MARGIN * fl.thd_percent
             if high is not None and high < resolvable_at:
                 self._row(
@@ -664,14 +496,14 @@ class Sequencer:
                     "clip_input",
                     None,
                     "V rms",
-                    _limit_get(clim, "low"),
-                    _limit_get(clim, "high"),
+                    limit_get(clim, "low"),
+                    limit_get(clim, "high"),
                     None,
                     "not resolvable",
                     {"why": "clip criterion THD below the bench's floor"},
                 )
             clim = lim.clip_input_vrms
-            low = _limit_get(clim, "low")
+            low = limit_get(clim, "low")
             if low is not None and low > self.board.conditions.safe_input_vrms:
                 self._row(
                     c.board_channel,
@@ -679,7 +511,7 @@ class Sequencer:
                     None,
                     "V rms",
                     low,
-                    _limit_get(clim, "high"),
+                    limit_get(clim, "high"),
                     None,
                     "not resolvable",
                     {"why": "the whole limit lies above the safe input level"},
@@ -802,27 +634,13 @@ class Sequencer:
     def _sweep_point(
         self, ch: str, a: RecordAnalysis, commanded: float, sweep: str = "clip"
     ) -> None:
-        self.store.add_sweep_point(
-            self.run_id,
-            SweepPointRow(
-                channel=ch,
-                sweep=sweep,
-                level_vrms=a.input_vrms,
-                gain_db=a.gain_db,
-                thd_percent=a.thd_percent,
-                thdn_percent=a.thdn_percent,
-                clipped=a.clipped,
-                clip_side=a.clip_side,
-                extra_json=json.dumps(
-                    {
-                        "commanded_vrms": commanded,
-                        "frequency_hz": a.frequency_hz,
-                        "over_range": a.over_range,
-                        "asymmetry": float(a.clip.asymmetry),
-                    }
-                ),
-            ),
-        )
+        extra = {
+            "commanded_vrms": commanded,
+            "frequency_hz": a.frequency_hz,
+            "over_range": a.over_range,
+            "asymmetry": float(a.clip.asymmetry),
+        }
+        self.run_log.sweep_point(ch, sweep, a, extra)
 
     def clip_search(self, group: list[_ChannelState]) -> None:
         self.step_name = "clip"
@@ -886,7 +704,7 @@ class Sequencer:
             s.nominal.input_vrms / self.board.conditions.nominal_input_vrms
         )
         # The model's limits bracket a good board: expand by about half their span.
-        lo, hi = _limit_get(lim, "low"), _limit_get(lim, "high")
+        lo, hi = limit_get(lim, "low"), limit_get(lim, "high")
         expand = 3.0
         if lo and hi and lo > 0:
             expand = min(max(10 * math.log10(hi / lo), 0.5), 3.0)
@@ -1036,7 +854,7 @@ class Sequencer:
                 },
             )
             return
-        low, high = _limit_get(lim, "low"), _limit_get(lim, "high")
+        low, high = limit_get(lim, "low"), limit_get(lim, "high")
         if (
             th is not None
             and th.below_vrms is not None
@@ -1121,28 +939,8 @@ class Sequencer:
         self.safe.set_frequency(self.plan.frequency_hz)
 
     # --- the whole run --------------------------------------------------------------
-    def header(self) -> RunHeader:
-        ids = getattr(self.inst, "identities", {}) or {}
-        limits_dict = self.limits.to_dict()
-        prov = limits_dict.get("provenance") if isinstance(limits_dict, dict) else None
-        return RunHeader(
-            serial=self.serial,
-            part_number=self.board.part_number,
-            board_name=self.board.name,
-            board_file=self.board_file,
-            board_digest=self.board.digest,
-            limits_json=json.dumps(limits_dict, sort_keys=True, default=_json_default),
-            limits_digest=str(self.limits.digest),
-            station=self.opt.station_name or self.station_file,
-            fixture=f"{self.fixture.name} ({self.fixture.path}, sha256 {self.fixture.digest})",
-            operator=self.opt.operator,
-            instruments={role: _identity_text(i) for role, i in ids.items()},
-            software_version=__version__,
-            settle_note=self.settle_note,
-            limits_provenance=json.dumps(prov, sort_keys=True, default=_json_default)
-            if prov is not None
-            else None,
-        )
+    def station_text(self) -> str:
+        return self.opt.station_name or self.station_file
 
     def verdicts(self) -> dict[str, ChannelVerdict]:
         out: dict[str, ChannelVerdict] = {}
@@ -1160,49 +958,13 @@ class Sequencer:
     def run(self) -> RunResult:
         t0 = time.perf_counter()
         self.validate()
-        self.run_id = self.store.begin_run(self.header())
+        self.run_id = self.run_log.begin(self.header())
         retest = 0
         with contextlib.suppress(AttributeError, AmpbenchError):  # a store without get_run
             retest = int(self.store.get_run(self.run_id).retest)
-        status: Literal["complete", "aborted"] = "complete"
-        reason: str | None = None
-        error: BaseException | None = None
-        try:
-            with sigterm_raises():
-                try:
-                    self.precheck()
-                    with self.safe:  # generator off before the first step
-                        ok = self.quiescent()
-                        if ok:
-                            self.dc_points()
-                            for grp in self.fixture.groups():
-                                group = [
-                                    _ChannelState(c, self.limits.channels[c.board_channel])
-                                    for c in grp
-                                ]
-                                route = sorted({r for c in grp for r in c.route})
-                                if route and self.switch is not None:
-                                    self.switch.close(route)
-                                try:
-                                    self.nominal(group)
-                                    self.clip_search(group)
-                                    self.frequencies(group)
-                                finally:
-                                    self.safe.off()
-                                    if route and self.switch is not None:
-                                        self.switch.open(route)
-                        else:
-                            reason = (
-                                "quiescent current grossly out of limits: stopped before any signal"
-                            )
-                finally:
-                    self._shutdown()
-        except BaseException as exc:
-            status = "aborted"
-            error = exc
-            reason = _abort_reason(exc, self.step_name)
-        if self.safe.output_state == "unknown":
-            reason = (reason + "; " if reason else "") + "generator output state unknown"
+        status, reason, error = run_guarded(
+            self._steps, self._shutdown, lambda: self.step_name, self.safe
+        )
         verdicts = self.verdicts()
         verdict: Literal["PASS", "FAIL"] | None = None
         if status == "complete":
@@ -1226,12 +988,26 @@ class Sequencer:
             waiting_s=self.clock.waiting_s,
         )
         if error is not None:
-            if isinstance(error, KeyboardInterrupt | RunAborted):
-                raise error
-            if isinstance(error, InstrumentError | AnalysisError):
-                raise RunAborted(f"{error}", step=self.step_name) from error
-            raise error
+            raise_aborted(error, self.step_name)
         return result
+
+    def _steps(self) -> str | None:
+        """The steps in order; a reason when the run stops early without a signal."""
+        self.precheck()
+        with self.safe:  # generator off before the first step
+            if not self.quiescent():
+                return "quiescent current grossly out of limits: stopped before any signal"
+            self.dc_points()
+            for grp in self.fixture.groups():
+                group = [_ChannelState(c, self.limits.channels[c.board_channel]) for c in grp]
+                with routed(self.switch, grp, self.safe, self._enter_shutdown):
+                    self.nominal(group)
+                    self.clip_search(group)
+                    self.frequencies(group)
+        return None
+
+    def _enter_shutdown(self) -> None:
+        self.step_name = "shutdown"
 
     def _shutdown(self) -> None:
         """Every exit path: generator off (SafeGenerator), supply off, routes open."""
@@ -1245,65 +1021,13 @@ class Sequencer:
                 log.warning("switch open_all failed: %s", exc)
 
 
-def _abort_reason(exc: BaseException, step: str) -> str:
-    if isinstance(exc, KeyboardInterrupt):
-        return f"interrupted by the operator (Ctrl-C) at step {step}"
-    if isinstance(exc, RunAborted):
-        return exc.reason if exc.step else f"{exc.reason} at step {step}"
-    return f"{type(exc).__name__} at step {step}: {exc}"
-
-
-def added_thd_percent(
-    x: np.ndarray,
-    y: np.ndarray,
-    plan: Any,
-    in_adc: tuple[float, float],
-    out_adc: tuple[float, float],
-    k_max: int = 10,
-) -> float | None:
-    """THD the board adds, with the digitiser's own harmonics removed (percent).
-
-    A static ADC nonlinearity (integral nonlinearity: a polynomial in the code) puts the
-    same relative harmonics, at the same phase relative to the fundamental, on any sine
-    recorded at the same fraction r of full scale; harmonic k of a polynomial's leading term
-    grows as r^(k-1).  The input probe sees the generator's clean sine: its phase-normalised
-    complex harmonics, scaled from its own fraction of full scale to the output's, estimate
-    the digitiser's share of the output's harmonics, which is subtracted as complex
-    amplitudes.  Needs a coherent record (harmonic k exactly in FFT bin k·J); returns None
-    otherwise.  What remains is the distortion added between the two probes: the
-    generator's own distortion, already present at the input, is not charged to the board.
-    """
-    n = len(y)
-    j = int(plan.cycles)
-    if len(x) != n or n != int(plan.n_samples) or j < 1:
-        return None
-    kk = [k for k in range(2, k_max + 1) if k * j < n // 2]
-    if not kk:
-        return None
-    fx, fy = np.fft.rfft(x - np.mean(x)), np.fft.rfft(y - np.mean(y))
-
-    def rel(f: np.ndarray, adc: tuple[float, float]) -> tuple[np.ndarray, float]:
-        h1 = f[j]
-        phi = float(np.angle(h1))
-        r = 2 * abs(h1) / n / ((adc[1] - adc[0]) / 2)  # fraction of full scale
-        return np.array([f[k * j] / abs(h1) * np.exp(-1j * k * phi) for k in kk]), r
-
-    rx, r_in = rel(fx, in_adc)
-    ry, r_out = rel(fy, out_adc)
-    if not (r_in > 0 and r_out > 0):
-        return None
-    scale = np.array([(r_out / r_in) ** (k - 1) for k in kk])
-    added = ry - rx * scale
-    return float(100 * np.sqrt(np.sum(np.abs(added) ** 2)))
-
-
 def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
     """A board that must not see a signal: the supply is limiting (within 10 % of its
     current limit) or the current is off by more than a factor of two (a short, a missing
     part).  A smaller excess is a fail but the test goes on, for the repair diagnosis."""
     if current >= 0.9 * current_limit_a:
         return True
-    low, high = _limit_get(limit, "low"), _limit_get(limit, "high")
+    low, high = limit_get(limit, "low"), limit_get(limit, "high")
     return (high is not None and current > 2 * high) or (low is not None and current < low / 2)
 
 
@@ -1379,20 +1103,6 @@ def _scope_bits(scope: Any) -> int | None:
     settings = getattr(prof, "settings", None) or {}
     v = settings.get("adc_bits") if hasattr(settings, "get") else None
     return int(v) if v else None
-
-
-def _json_default(o: Any) -> Any:
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    if hasattr(o, "to_dict"):
-        return o.to_dict()
-    if hasattr(o, "__dataclass_fields__"):
-        from dataclasses import asdict
-
-        return asdict(o)
-    return str(o)
 
 
 def run_board(

@@ -1,0 +1,645 @@
+"""Bench operations shared by the production sequence and characterisation.
+
+Both drive the same instruments the same way: plan a coherent record, range the scope from
+the expected levels, acquire a group of channels at once (re-ranging on over-range or
+under-use), analyse each channel and take the digitiser's own harmonics out of the THD;
+both write the same run header, measurement rows and sweep points.  What differs between
+them is policy (how long a record may be, how far a sweep frequency may move, when the
+ADC-nonlinearity correction is trusted), so it is passed in, never copied.
+
+Only driver calls here, no SCPI text.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import math
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import asdict, replace
+from typing import Any, Literal, NoReturn
+
+import numpy as np
+
+from harness import __version__
+from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
+from harness.model.board import Board
+from harness.run.fixture import ChannelConnection, FixtureConfig
+from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
+from harness.store import MeasurementRow, RunHeader, SweepPointRow
+
+#: A record fills at most this fraction of the scope range (headroom for tolerances).
+RANGE_FILL = 0.8
+#: A record using less than this fraction of its target fill is re-ranged down.
+RANGE_UNDERUSE = 0.35
+
+log = logging.getLogger("harness.run")
+
+
+# --- small conversions -------------------------------------------------------------------
+def json_default(o: Any) -> Any:
+    """JSON for the numpy scalars, arrays and result objects that end up in detail texts."""
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if hasattr(o, "to_dict"):
+        return o.to_dict()
+    if hasattr(o, "__dataclass_fields__"):
+        return asdict(o)
+    return str(o)
+
+
+def identity_text(identity: Any) -> str:
+    """One instrument's identity as stored in the run header (maker,model,serial,firmware)."""
+    if isinstance(identity, str):
+        return identity
+    fields = [getattr(identity, k, "") for k in ("maker", "model", "serial", "firmware")]
+    if any(fields):
+        return ",".join(str(f) for f in fields)
+    return str(identity)
+
+
+def limit_get(limit: Any, attr: str) -> float | None:
+    """A limit's bound as a float, None where the limit (or the bound) is absent."""
+    v = getattr(limit, attr, None)
+    return None if v is None else float(v)
+
+
+def choose_range(vpp: float, ranges: Iterable[float], fill: float = RANGE_FILL) -> float:
+    """Smallest scope range holding ``vpp`` within ``fill`` of full scale (else the largest)."""
+    rs = sorted(float(r) for r in ranges)
+    for r in rs:
+        if vpp <= fill * r:
+            return r
+    return rs[-1]
+
+
+def added_thd_percent(
+    x: np.ndarray,
+    y: np.ndarray,
+    plan: Any,
+    in_adc: tuple[float, float],
+    out_adc: tuple[float, float],
+    k_max: int = 10,
+) -> float | None:
+    """THD the board adds, with the digitiser's own harmonics removed (percent).
+
+    A static ADC nonlinearity (integral nonlinearity: a polynomial in the code) puts the
+    same relative harmonics, at the same phase relative to the fundamental, on any sine
+    recorded at the same fraction r of full scale; harmonic k of a polynomial's leading term
+    grows as r^(k-1).  The input probe sees the generator's clean sine: its phase-normalised
+    complex harmonics, scaled from its own fraction of full scale to the output's, estimate
+    the digitiser's share of the output's harmonics, which is subtracted as complex
+    amplitudes.  Needs a coherent record (harmonic k exactly in FFT bin k·J); returns None
+    otherwise.  What remains is the distortion added between the two probes: the
+    generator's own distortion, already present at the input, is not charged to the board.
+    """
+    n = len(y)
+    j = int(plan.cycles)
+    if len(x) != n or n != int(plan.n_samples) or j < 1:
+        return None
+    kk = [k for k in range(2, k_max + 1) if k * j < n // 2]
+    if not kk:
+        return None
+    fx, fy = np.fft.rfft(x - np.mean(x)), np.fft.rfft(y - np.mean(y))
+
+    def rel(f: np.ndarray, adc: tuple[float, float]) -> tuple[np.ndarray, float]:
+        h1 = f[j]
+        phi = float(np.angle(h1))
+        r = 2 * abs(h1) / n / ((adc[1] - adc[0]) / 2)  # fraction of full scale
+        return np.array([f[k * j] / abs(h1) * np.exp(-1j * k * phi) for k in kk]), r
+
+    rx, r_in = rel(fx, in_adc)
+    ry, r_out = rel(fy, out_adc)
+    if not (r_in > 0 and r_out > 0):
+        return None
+    scale = np.array([(r_out / r_in) ** (k - 1) for k in kk])
+    added = ry - rx * scale
+    return float(100 * np.sqrt(np.sum(np.abs(added) ** 2)))
+
+
+# --- run set-up ---------------------------------------------------------------------------
+def clip_criterion(board: Board) -> ClipCriterion:
+    """The board's clipping criterion from its test conditions."""
+    cond = board.conditions
+    return ClipCriterion(
+        kind=cond.clip_criterion,
+        threshold_percent=cond.clip_thd_percent,
+        db=cond.clip_compression_db,
+    )
+
+
+def settle_time_s(limits: Any, fixture: FixtureConfig, override_s: float | None) -> float:
+    """The operator's settle time, else the longest the model gives a tested channel."""
+    if override_s is not None:
+        return override_s
+    return max(float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels)
+
+
+def safe_generator(
+    generator: Any, board: Board, fixture: FixtureConfig, max_step_up_db: float
+) -> SafeGenerator:
+    """The generator behind the board's safe input level (rises above nominal ramp)."""
+    cond = board.conditions
+    return SafeGenerator(
+        generator,
+        cond.safe_input_vrms,
+        direct_vrms=cond.nominal_input_vrms,
+        max_step_up_db=max_step_up_db,
+        output=fixture.generator_output,
+    )
+
+
+def supply_guard(fixture: FixtureConfig, supply: Any) -> SupplyGuard | None:
+    """The fixture's supply settings on the station's supply; None without either."""
+    if fixture.supply is None or supply is None:
+        return None
+    s = fixture.supply
+    neg = (
+        (s.negative_output, float(s.negative_voltage_v))
+        if s.negative_output is not None and s.negative_voltage_v is not None
+        else None
+    )
+    return SupplyGuard(supply, s.voltage_v, s.current_limit_a, s.output, negative=neg)
+
+
+def run_header(
+    *,
+    serial: str,
+    board: Board,
+    board_file: str,
+    limits: Any,
+    fixture: FixtureConfig,
+    station: str,
+    operator: str,
+    identities: dict[str, Any],
+    settle_note: str,
+    fixture_note: str = "",
+) -> RunHeader:
+    """What the store keeps about a run before its first measurement: the board, the frozen
+    limits with their provenance, the fixture (``fixture_note`` appended), the instruments."""
+    limits_dict = limits.to_dict()
+    prov = limits_dict.get("provenance") if isinstance(limits_dict, dict) else None
+    return RunHeader(
+        serial=serial,
+        part_number=board.part_number,
+        board_name=board.name,
+        board_file=board_file,
+        board_digest=board.digest,
+        limits_json=json.dumps(limits_dict, sort_keys=True, default=json_default),
+        limits_digest=str(limits.digest),
+        station=station,
+        fixture=f"{fixture.name} ({fixture.path}, sha256 {fixture.digest}){fixture_note}",
+        operator=operator,
+        instruments={role: identity_text(i) for role, i in identities.items()},
+        software_version=__version__,
+        settle_note=settle_note,
+        limits_provenance=json.dumps(prov, sort_keys=True, default=json_default)
+        if prov is not None
+        else None,
+    )
+
+
+# --- rows ---------------------------------------------------------------------------------
+class RunLog:
+    """Where a run's results go: every decided measurement is stored at once (a crash loses
+    nothing decided), kept for the verdict and shown; sweep points are stored."""
+
+    def __init__(self, store: Any, progress: Any) -> None:
+        self.store = store
+        self.progress = progress
+        self.run_id = -1
+        self.rows: list[MeasurementRow] = []
+
+    def begin(self, header: RunHeader) -> int:
+        self.run_id = self.store.begin_run(header)
+        return self.run_id
+
+    def row(
+        self,
+        channel: str,
+        name: str,
+        value: float | None,
+        unit: str,
+        low: float | None,
+        high: float | None,
+        uncertainty: float | None,
+        decision: str,
+        step: str,
+        detail: dict | None = None,
+    ) -> MeasurementRow:
+        row = MeasurementRow(
+            channel=channel,
+            name=name,
+            value=value,
+            unit=unit,
+            low=low,
+            high=high,
+            uncertainty=uncertainty,
+            decision=decision,
+            step=step,
+            detail_json=json.dumps(detail, default=json_default) if detail else None,
+        )
+        self.store.add_measurement(self.run_id, row)
+        self.rows.append(row)
+        self.progress.measurement(row)
+        return row
+
+    def sweep_point(self, channel: str, sweep: str, a: RecordAnalysis, extra: dict) -> None:
+        """One analysed record as a sweep point; ``extra`` goes to ``extra_json`` as given."""
+        self.store.add_sweep_point(
+            self.run_id,
+            SweepPointRow(
+                channel=channel,
+                sweep=sweep,
+                level_vrms=a.input_vrms,
+                gain_db=a.gain_db,
+                thd_percent=a.thd_percent,
+                thdn_percent=a.thdn_percent,
+                clipped=a.clipped,
+                clip_side=a.clip_side,
+                extra_json=json.dumps(extra, default=json_default),
+            ),
+        )
+
+    def heartbeat(self) -> None:
+        """Tell the store the run is alive (a store without heartbeats is fine)."""
+        hb = getattr(self.store, "heartbeat", None)
+        if hb is not None:
+            hb(self.run_id)
+
+
+# --- the run's frame ------------------------------------------------------------------------
+@contextlib.contextmanager
+def routed(
+    switch: Any,
+    channels: Iterable[ChannelConnection],
+    safe: SafeGenerator,
+    on_release: Callable[[], None] | None = None,
+) -> Iterator[None]:
+    """The group's switch route closed for the block; on every exit the generator output
+    goes off first, then the route opens (no signal on a contact that moves).
+
+    On a normal exit ``on_release`` runs first (the sequencer names the step "shutdown", so
+    a failure to switch off is reported as such); when the block raised, the output is
+    switched off without raising, so the error that stopped the block is the one reported.
+    """
+    route = sorted({r for c in channels for r in c.route})
+    if route and switch is not None:
+        switch.close(route)
+    try:
+        yield
+    except BaseException:
+        safe.safe_off()
+        if route and switch is not None:
+            try:
+                switch.open(route)
+            except BaseException as exc:  # the first error is the one to report
+                log.warning("switch route %s did not open: %s", route, exc)
+        raise
+    if on_release is not None:
+        on_release()
+    safe.off()
+    if route and switch is not None:
+        switch.open(route)
+
+
+def abort_reason(exc: BaseException, step: str) -> str:
+    """The stored reason of an aborted run."""
+    if isinstance(exc, KeyboardInterrupt):
+        return f"interrupted by the operator (Ctrl-C) at step {step}"
+    if isinstance(exc, RunAborted):
+        return exc.reason if exc.step else f"{exc.reason} at step {step}"
+    return f"{type(exc).__name__} at step {step}: {exc}"
+
+
+def run_guarded(
+    steps: Callable[[], str | None],
+    shutdown: Callable[[], None],
+    step: Callable[[], str],
+    safe: SafeGenerator,
+) -> tuple[Literal["complete", "aborted"], str | None, BaseException | None]:
+    """Run ``steps`` (which may return a reason for stopping early) with SIGTERM raising and
+    ``shutdown`` on every exit; any exception, Ctrl-C included, makes the run aborted with
+    its reason at the current ``step()``.  Returns (status, reason, exception or None); an
+    unknown generator state is added to the reason."""
+    status: Literal["complete", "aborted"] = "complete"
+    reason: str | None = None
+    error: BaseException | None = None
+    try:
+        with sigterm_raises():
+            try:
+                reason = steps()
+            finally:
+                shutdown()
+    except BaseException as exc:
+        status, error = "aborted", exc
+        reason = abort_reason(exc, step())
+    if safe.output_state == "unknown":
+        reason = (reason + "; " if reason else "") + "generator output state unknown"
+    return status, reason, error
+
+
+def raise_aborted(error: BaseException, step: str) -> NoReturn:
+    """Re-raise what stopped a run once it is stored as aborted: Ctrl-C and RunAborted as
+    they are, instrument and analysis errors as RunAborted naming the step."""
+    if isinstance(error, KeyboardInterrupt | RunAborted):
+        raise error
+    if isinstance(error, InstrumentError | AnalysisError):
+        raise RunAborted(f"{error}", step=step) from error
+    raise error
+
+
+# --- planning -------------------------------------------------------------------------------
+def plan_record(
+    scope: Any,
+    frequency_hz: float,
+    *,
+    max_points: int,
+    max_record_s: Sequence[float],
+    min_cycles: int,
+    tolerance_rel: float,
+    longer_records: bool = False,
+    fallback: Literal["any", "shortest"] = "any",
+) -> Any:
+    """A coherent record near ``frequency_hz``: the longest record up to ``max_points``
+    (lowest noise floor) lasting at most ``max_record_s[0]``, relaxed to each next duration
+    in turn if none fits.  ``longer_records`` also tries lengths above ``max_points``,
+    shortest first (low frequencies need long records).  When nothing fits: ``"any"``
+    leaves the choice to :func:`plan_coherent` over the allowed lengths; ``"shortest"``
+    takes the shortest-lasting plan, or raises AnalysisError naming the scope's limits."""
+    all_lengths = sorted(int(n) for n in scope.record_lengths)
+    lengths = [n for n in all_lengths if n <= max_points][::-1]
+    if longer_records:
+        lengths += [n for n in all_lengths if n > max_points]
+    elif not lengths:
+        lengths = all_lengths[:1]
+    rates = list(scope.sample_rates_hz)
+    plans: dict[int, Any] = {}  # length -> plan, None where the length has no coherent plan
+    for max_s in max_record_s:
+        for n in lengths:
+            if n not in plans:
+                try:
+                    plans[n] = plan_coherent(
+                        frequency_hz, rates, [n], min_cycles=min_cycles, tolerance_rel=tolerance_rel
+                    )
+                except AnalysisError:
+                    plans[n] = None
+            p = plans[n]
+            if p is not None and p.n_samples / p.sample_rate_hz <= max_s:
+                return p
+    found = [p for p in plans.values() if p is not None]
+    if fallback == "shortest":
+        if not found:
+            raise AnalysisError(
+                f"the scope cannot record {frequency_hz:.4g} Hz coherently within "
+                f"{100 * tolerance_rel:g} % (sample rates {rates}, record lengths "
+                f"{all_lengths})"
+            )
+        return min(found, key=lambda p: p.n_samples / p.sample_rate_hz)
+    if len(found) < len(plans):
+        return plan_coherent(frequency_hz, rates, lengths, min_cycles=min_cycles)
+    return plan_coherent(frequency_hz, rates, lengths)
+
+
+# --- ranging and acquisition ------------------------------------------------------------------
+def scope_inputs(channels: Iterable[ChannelConnection]) -> list[int]:
+    """The scope inputs a group uses, in order, each once."""
+    used: list[int] = []
+    for c in channels:
+        for n in (c.input_scope, c.output_scope):
+            if n not in used:
+                used.append(n)
+    return used
+
+
+class GroupScope:
+    """The scope as both runs use it: ranges, timebase and trigger set only on change, a
+    group of channels acquired at once and analysed.  ``note`` hears every re-range."""
+
+    def __init__(
+        self,
+        scope: Any,
+        board: Board,
+        *,
+        max_rerange: int,
+        note: Callable[[str], None] | None = None,
+    ) -> None:
+        self.scope = scope
+        self.span_v = board.supply.v_pos - board.supply.v_neg
+        self.max_rerange = max_rerange
+        self.note = note
+        self.ranges: dict[int, float] = {}
+        self.fill: dict[int, float] = {}
+        self.scope_ranges = tuple(float(r) for r in scope.ranges_vpp)
+        self.timebase: tuple[float, int] | None = None
+        self.trigger: int | None = None
+        self.acquisitions = 0
+
+    def tip_ranges(self, probe: float) -> tuple[float, ...]:
+        """The scope's ranges in probe-tip volts."""
+        return tuple(r * probe for r in self.scope_ranges)
+
+    def set_range(self, scope_input: int, range_vpp: float, probe: float) -> None:
+        """Configure an input for a full-scale range in probe-tip volts (only on change)."""
+        if self.ranges.get(scope_input) == range_vpp:
+            return
+        setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
+
+    def preset(
+        self,
+        channels: Iterable[tuple[ChannelConnection, float]],
+        level_vrms: float,
+        fill: float = RANGE_FILL,
+    ) -> None:
+        """Ranges from the expected levels: each input from the level, each output from the
+        level times the channel's expected gain (pairs of connection and linear gain)."""
+        for c, gain in channels:
+            # The input probe at the same fill as the output: its record then carries the
+            # digitiser's own harmonics at the same fraction of full scale (added_thd_percent).
+            vin = 2 * math.sqrt(2) * level_vrms
+            self.set_range(
+                c.input_scope,
+                choose_range(vin, self.tip_ranges(c.input_probe), fill),
+                c.input_probe,
+            )
+            self.fill[c.input_scope] = fill
+            # Past clipping the output stops growing: never range above the supply span.
+            out_vpp = min(vin * gain, 1.1 * self.span_v)
+            self.set_range(
+                c.output_scope,
+                choose_range(out_vpp, self.tip_ranges(c.output_probe), fill),
+                c.output_probe,
+            )
+            self.fill[c.output_scope] = fill
+
+    def acquire(
+        self,
+        channels: Sequence[ChannelConnection],
+        plan: Any,
+        *,
+        correct_adc: bool = True,
+        fill_match: float | None = None,
+    ) -> tuple[dict[str, RecordAnalysis], Any]:
+        """One acquisition of every input of the group (re-ranged and repeated when a record
+        is over-range or uses too little of its range, at most ``max_rerange`` times), each
+        channel analysed.  With ``correct_adc`` the THD is the board's added THD; with
+        ``fill_match`` only where input and output fill their ranges within that factor of
+        each other.  Returns the analyses by channel and the last acquisition."""
+        inputs = scope_inputs(channels)
+        probes: dict[int, float] = {}
+        for c in channels:
+            probes.setdefault(c.input_scope, c.input_probe)
+            probes.setdefault(c.output_scope, c.output_probe)
+        tb = (float(plan.sample_rate_hz), int(plan.n_samples))
+        if self.timebase != tb:
+            self.scope.configure_timebase(*tb)
+            self.timebase = tb
+        if self.trigger != inputs[0]:
+            self.scope.configure_trigger(inputs[0], 0.0)
+            self.trigger = inputs[0]
+        for attempt in range(self.max_rerange + 1):
+            acq = self.scope.acquire(inputs)
+            self.acquisitions += 1
+            changed = False
+            for n in inputs:
+                v = np.asarray(acq.volts[n], dtype=float)
+                lo, hi = acq.adc_limits[n]
+                lsb = (hi - lo) / 2 ** int(acq.bits)
+                over = bool(np.any(v >= hi - 0.5 * lsb) or np.any(v <= lo + 0.5 * lsb))
+                rng = self.ranges.get(n, hi - lo)
+                pkpk = float(np.max(v) - np.min(v))
+                tips = self.tip_ranges(probes[n])
+                fill = self.fill.get(n, RANGE_FILL)
+                new = rng
+                if over:
+                    bigger = [r for r in tips if r > rng * (1 + 1e-9)]
+                    new = bigger[0] if bigger else rng
+                elif pkpk < RANGE_UNDERUSE * fill * rng:
+                    new = min(choose_range(pkpk, tips, fill), rng)
+                if new != rng and attempt < self.max_rerange:
+                    if self.note is not None:
+                        self.note(
+                            f"scope input {n}: range {rng:g} -> {new:g} Vpp "
+                            f"({'over-range' if over else 'under-used'})"
+                        )
+                    self.ranges.pop(n, None)
+                    self.set_range(n, new, probes[n])
+                    changed = True
+            if not changed:
+                break
+        out: dict[str, RecordAnalysis] = {}
+        for c in channels:
+            x = np.asarray(acq.volts[c.input_scope], dtype=float)
+            y = np.asarray(acq.volts[c.output_scope], dtype=float)
+            in_adc = tuple(acq.adc_limits[c.input_scope])
+            out_adc = tuple(acq.adc_limits[c.output_scope])
+            a = analyze_uniform(
+                x,
+                y,
+                acq.sample_rate_hz,
+                in_adc=in_adc,
+                out_adc=out_adc,
+                adc_bits=int(acq.bits),
+                frequency_hz=plan.frequency_hz,
+            )
+            if (
+                a.thd_percent is not None
+                and correct_adc
+                and _fills_match(x, y, in_adc, out_adc, fill_match)
+            ):
+                corr = added_thd_percent(
+                    x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
+                )
+                if corr is not None:
+                    a = replace(a, thd_percent=corr)
+            out[c.board_channel] = a
+        return out, acq
+
+
+def _fills_match(
+    x: np.ndarray,
+    y: np.ndarray,
+    in_adc: tuple[float, ...],
+    out_adc: tuple[float, ...],
+    fill_match: float | None,
+) -> bool:
+    """Input and output fill their ranges within ``fill_match`` of each other (None: no
+    condition).  The digitiser-harmonic correction scales the input's harmonics by the
+    fill ratio^(k-1): with unequal fills it would amplify the input's quantisation error
+    into false harmonics."""
+    if fill_match is None:
+        return True
+    fill_ratio = (float(np.ptp(y)) / (out_adc[1] - out_adc[0])) / max(
+        float(np.ptp(x)) / (in_adc[1] - in_adc[0]), 1e-12
+    )
+    return 1 / fill_match <= fill_ratio <= fill_match
+
+
+# --- one run of a board -------------------------------------------------------------------------
+class BoardRun:
+    """What any run of one board on the bench holds: the board, its limits and fixture, the
+    safe generator, the supply guard, the scope, the settle time and the run's log.  The
+    subclass passes the instrument objects it drives (timed proxies or the drivers), sets
+    ``settle_note`` and may name the station and annotate the fixture differently.
+    ``options`` needs operator, station_name, settle_wait_s, max_rerange, max_step_up_db."""
+
+    #: Appended to the fixture text of the run header.
+    fixture_note = ""
+
+    def __init__(
+        self,
+        instruments: Any,
+        board: Board,
+        limits: Any,
+        fixture: FixtureConfig,
+        serial: str,
+        store: Any,
+        options: Any,
+        progress: Any,
+        *,
+        board_file: str,
+        generator: Any,
+        scope: Any,
+        supply: Any,
+        note: Callable[[str], None] | None = None,
+    ) -> None:
+        self.inst = instruments
+        self.board = board
+        self.limits = limits
+        self.fixture = fixture
+        self.serial = serial
+        self.store = store
+        self.opt = options
+        self.progress = progress
+        self.board_file = board_file
+        self.criterion = clip_criterion(board)
+        self.scope_ops = GroupScope(scope, board, max_rerange=options.max_rerange, note=note)
+        self.safe = safe_generator(generator, board, fixture, options.max_step_up_db)
+        self.supply: SupplyGuard | None = supply_guard(fixture, supply)
+        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s)
+        self.settle_note = ""
+        self.run_log = RunLog(store, progress)
+        self.rows: list[MeasurementRow] = self.run_log.rows
+        self.run_id = -1
+
+    def station_text(self) -> str:
+        return self.opt.station_name
+
+    def header(self) -> RunHeader:
+        return run_header(
+            serial=self.serial,
+            board=self.board,
+            board_file=self.board_file,
+            limits=self.limits,
+            fixture=self.fixture,
+            station=self.station_text(),
+            operator=self.opt.operator,
+            identities=getattr(self.inst, "identities", {}) or {},
+            settle_note=self.settle_note,
+            fixture_note=self.fixture_note,
+        )
