@@ -28,7 +28,7 @@ from harness.model.board import (
     EmitterFollower,
     OpAmpInverting,
     OpAmpNonInverting,
-    Part,
+    stage_parts,
 )
 
 FaultKind = Literal["none", "drift", "open", "short", "open_bypass", "low_beta", "shorted_junction"]
@@ -63,22 +63,6 @@ PRIOR_WEIGHT: dict[tuple[str, str], float] = {
 DRIFT_COST_PER_EFOLD = 1.0
 #: Score cost of one fitted parameter (Akaike).
 FIT_COST = 2.0
-
-_FIELDS = (
-    "r1",
-    "r2",
-    "rc",
-    "re",
-    "re_bypassed",
-    "c_e",
-    "c_in",
-    "c_out",
-    "r_in",
-    "r_f",
-    "r_g",
-    "r_bias",
-    "c_g",
-)
 
 
 @dataclass(frozen=True)
@@ -166,10 +150,7 @@ def channel_hypotheses(board: Board, ch: Channel) -> tuple[list[Hypothesis], lis
     out: list[Hypothesis] = []
     skipped: list[str] = []
     for j, st in enumerate(ch.stages):
-        for field in _FIELDS:
-            part = getattr(st, field, None)
-            if not isinstance(part, Part):
-                continue
+        for field, part in stage_parts(st):
             common = dict(
                 ref=part.ref,
                 channel=ch.name,

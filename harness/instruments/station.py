@@ -17,7 +17,7 @@ from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError, StationFileError
-from harness.files import read_toml
+from harness.files import FieldReader, read_toml
 from harness.instruments.profiles import ROLES, Profile, load_profile
 
 __all__ = [
@@ -133,27 +133,28 @@ def station_from_dict(
     search_dirs: Iterable[Path] | None = None,
 ) -> StationConfig:
     """Validate a parsed station document; loads every profile it names."""
-    for k in set(doc) - {"station", "instrument"}:
-        raise StationFileError(
-            path, k, f"unknown section [{k}]", hint="use [station] and [instrument.<role>]"
-        )
-    st = doc.get("station", {})
-    if not isinstance(st, dict):
-        raise StationFileError(path, "station", "must be a table")
-    for k in set(st) - {"name", "visa_library", "timeout_ms", "retries"}:
-        raise StationFileError(
-            path,
-            f"station.{k}",
-            f"unknown key {k!r}",
-            hint="allowed: name, visa_library, timeout_ms, retries",
-        )
+    rd = FieldReader(path, StationFileError)
+    rd.known(
+        doc,
+        {"station", "instrument"},
+        "",
+        reason="unknown section [{key}]",
+        hint="use [station] and [instrument.<role>]",
+    )
+    st = rd.table(doc, "station", required=False, wrong_hint="")
+    rd.known(
+        st,
+        {"name", "visa_library", "timeout_ms", "retries"},
+        "station",
+        reason="unknown key {key!r}",
+        hint="allowed: name, visa_library, timeout_ms, retries",
+    )
     name = st.get("name", Path(path).stem if path else "station")
     if not isinstance(name, str):
-        raise StationFileError(path, "station.name", "must be text")
+        raise rd.fail("station.name", "must be text")
     lib = st.get("visa_library", "@py")
     if not isinstance(lib, str) or not lib.strip():
-        raise StationFileError(
-            path,
+        raise rd.fail(
             "station.visa_library",
             "must be text",
             hint='"@py" for pyvisa-py, "@ivi" or a path to a VISA library',
@@ -164,8 +165,7 @@ def station_from_dict(
     retries = _int(st.get("retries", 1), 0, path, "station.retries", "reconnect attempts, e.g. 1")
     insts = doc.get("instrument", {})
     if not isinstance(insts, dict) or not insts:
-        raise StationFileError(
-            path,
+        raise rd.fail(
             "instrument",
             "no [instrument.<role>] tables",
             hint="add [instrument.generator] and [instrument.scope]",
@@ -175,22 +175,19 @@ def station_from_dict(
     for role, t in insts.items():
         loc = f"instrument.{role}"
         if role not in ROLES:
-            raise StationFileError(
-                path, loc, f"unknown role {role!r}", hint=f"use one of {', '.join(ROLES)}"
-            )
+            raise rd.fail(loc, f"unknown role {role!r}", hint=f"use one of {', '.join(ROLES)}")
         if not isinstance(t, dict):
-            raise StationFileError(path, loc, "must be a table")
-        for k in set(t) - {"resource", "profile", "expect_idn", "timeout_ms", "retries"}:
-            raise StationFileError(
-                path,
-                f"{loc}.{k}",
-                f"unknown key {k!r}",
-                hint="allowed: resource, profile, expect_idn, timeout_ms, retries",
-            )
+            raise rd.fail(loc, "must be a table")
+        rd.known(
+            t,
+            {"resource", "profile", "expect_idn", "timeout_ms", "retries"},
+            loc,
+            reason="unknown key {key!r}",
+            hint="allowed: resource, profile, expect_idn, timeout_ms, retries",
+        )
         res = validate_resource(t.get("resource"), path=path, location=f"{loc}.resource")
         if res.lower() in seen:
-            raise StationFileError(
-                path,
+            raise rd.fail(
                 f"{loc}.resource",
                 f"same resource as instrument.{seen[res.lower()]}",
                 hint="each role needs its own instrument or socket",
@@ -198,8 +195,7 @@ def station_from_dict(
         seen[res.lower()] = role
         pref = t.get("profile")
         if not isinstance(pref, str) or not pref:
-            raise StationFileError(
-                path,
+            raise rd.fail(
                 f"{loc}.profile",
                 "missing profile",
                 hint=f'profile = "scpi-{role}" or a path to a .toml',
@@ -207,13 +203,12 @@ def station_from_dict(
         try:
             prof = load_profile(pref, search_dirs, base_dir=base_dir, role=role)
         except ProfileError as exc:
-            raise StationFileError(path, f"{loc}.profile", str(exc)) from exc
+            raise rd.fail(f"{loc}.profile", str(exc)) from exc
         idn = t.get("expect_idn")
         if idn is not None and (
             not isinstance(idn, str) or not idn.strip() or len(idn.split(",")) > 4
         ):
-            raise StationFileError(
-                path,
+            raise rd.fail(
                 f"{loc}.expect_idn",
                 f"{idn!r} must be the first 1-4 *IDN? fields",
                 hint='e.g. expect_idn = "maker,model"',

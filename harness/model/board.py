@@ -14,11 +14,12 @@ from __future__ import annotations
 
 import hashlib
 import math
-from collections.abc import Mapping
-from dataclasses import dataclass, field
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field, fields
 from typing import Any, Literal
 
 from harness.errors import BoardFileError, ValueParseError
+from harness.files import FieldReader
 from harness.values import Toleranced, parse_quantity, parse_tolerance, split_value_tolerance
 
 # --- value objects ------------------------------------------------------------------------------
@@ -158,6 +159,31 @@ STAGE_KINDS: dict[str, type] = {
     "opamp_inverting": OpAmpInverting,
     "opamp_noninverting": OpAmpNonInverting,
 }
+#: Every component field a stage kind may carry, in one fixed order: fault hypotheses and
+#: the simulated bench's designator list are built in it.
+PART_FIELDS: tuple[str, ...] = (
+    "r1",
+    "r2",
+    "rc",
+    "re",
+    "re_bypassed",
+    "c_e",
+    "c_in",
+    "c_out",
+    "r_in",
+    "r_f",
+    "r_g",
+    "r_bias",
+    "c_g",
+)
+
+
+def stage_parts(stage: Stage) -> Iterator[tuple[str, Part]]:
+    """(field, part) of every component fitted on ``stage``, in :data:`PART_FIELDS` order."""
+    for name in PART_FIELDS:
+        part = getattr(stage, name, None)
+        if isinstance(part, Part):
+            yield name, part
 
 
 @dataclass(frozen=True)
@@ -234,48 +260,28 @@ class Board:
         raise KeyError(name)
 
 
+def iter_parts(board: Board) -> Iterator[tuple[Channel, Stage, str, Part]]:
+    """(channel, stage, field, part) of every component fitted on the board's channels, in
+    board order (the supply and the test load are not board parts)."""
+    for ch in board.channels:
+        for st in ch.stages:
+            for name, part in stage_parts(st):
+                yield ch, st, name, part
+
+
 # --- validation ---------------------------------------------------------------------------------
 
 
-class _Reader:
-    """Walks a TOML mapping and reports errors with the dotted location of the field."""
+class _Reader(FieldReader):
+    """The shared field reader plus the board's own field types: quantities written as
+    component values (``4k7``), data-sheet spreads and toleranced parts."""
+
+    allowed_hint = "allowed fields here"
 
     def __init__(self, path: str) -> None:
-        self.path = path
+        super().__init__(path, BoardFileError)
 
-    def fail(self, where: str, reason: str, hint: str | None = None) -> BoardFileError:
-        return BoardFileError(self.path, where, reason, hint=hint)
-
-    def table(self, data: Mapping[str, Any], key: str, where: str) -> Mapping[str, Any]:
-        if key not in data:
-            raise self.fail(where, f"missing table [{key}]", hint=f"add a [{key}] table")
-        value = data[key]
-        if not isinstance(value, Mapping):
-            raise self.fail(f"{where}.{key}" if where else key, "must be a table")
-        return value
-
-    def known(self, data: Mapping[str, Any], allowed: set[str], where: str) -> None:
-        unknown = sorted(set(data) - allowed)
-        if unknown:
-            raise self.fail(
-                f"{where}.{unknown[0]}" if where else unknown[0],
-                "unknown field",
-                hint=f"allowed fields here: {', '.join(sorted(allowed))}",
-            )
-
-    def string(
-        self, data: Mapping[str, Any], key: str, where: str, default: str | None = None
-    ) -> str:
-        if key not in data:
-            if default is not None:
-                return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f'add {key} = "..."')
-        value = data[key]
-        if not isinstance(value, str) or not value.strip():
-            raise self.fail(f"{where}.{key}", "must be a non-empty text")
-        return value.strip()
-
-    def number(
+    def quantity(
         self,
         data: Mapping[str, Any],
         key: str,
@@ -284,10 +290,9 @@ class _Reader:
         *,
         positive: bool = True,
     ) -> float:
+        """A number, an SI-prefixed number or an RKM code (``4k7``), see harness.values."""
         if key not in data:
-            if default is not None:
-                return default
-            raise self.fail(f"{where}.{key}", "missing field", hint=f"add {key} = <number>")
+            return self.absent(key, where, default, "<number>")
         try:
             value = parse_quantity(data[key])
         except ValueParseError as exc:
@@ -314,13 +319,13 @@ class _Reader:
             )
         value = data[key]
         if not isinstance(value, Mapping):
-            v = self.number(data, key, where, positive=positive)
+            v = self.quantity(data, key, where, positive=positive)
             return Spread(v, v, v)
         self.known(value, {"min", "typ", "max"}, loc)
         nums = {}
         for k in ("min", "typ", "max"):
             if k in value:
-                nums[k] = self.number(value, k, loc, positive=positive)
+                nums[k] = self.quantity(value, k, loc, positive=positive)
         if "typ" not in nums:
             if "min" in nums and "max" in nums:
                 nums["typ"] = (
@@ -394,36 +399,29 @@ class _Reader:
         return Part(nominal=value, tol_minus=minus, tol_plus=plus, ref=ref or loc, kind=kind)
 
 
-_CE_FIELDS = {
-    "kind",
-    "name",
-    "transistor",
-    "r1",
-    "r2",
-    "rc",
-    "re",
-    "re_bypassed",
-    "c_e",
-    "c_in",
-    "c_out",
-}
-_EF_FIELDS = {"kind", "name", "transistor", "re", "r1", "r2", "c_in", "c_out", "coupling"}
-_INV_FIELDS = {"kind", "name", "opamp", "r_in", "r_f", "c_in", "c_out"}
-_NONINV_FIELDS = {"kind", "name", "opamp", "r_g", "r_f", "r_bias", "c_in", "c_g", "c_out"}
+def _file_fields(cls: type) -> set[str]:
+    """A stage table's fields are its dataclass's (``kind`` too), so the two cannot drift."""
+    return {f.name for f in fields(cls)}
+
+
+_CE_FIELDS = _file_fields(CommonEmitter)
+_EF_FIELDS = (_file_fields(EmitterFollower) - {"dc_coupled"}) | {"coupling"}  # coupling = "dc"
+_INV_FIELDS = _file_fields(OpAmpInverting)
+_NONINV_FIELDS = _file_fields(OpAmpNonInverting)
 
 
 def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
     if not isinstance(data, Mapping):
         raise rd.fail(where, "must be a table")
     rd.known(data, {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "vbe_v", "note"}, where)
-    polarity = rd.string(data, "polarity", where, default="npn").lower()
+    polarity = rd.text(data, "polarity", where, default="npn").lower()
     if polarity != "npn":
         raise rd.fail(
             f"{where}.polarity",
             f"polarity {polarity!r} is not supported",
             hint='describe NPN stages (polarity = "npn")',
         )
-    vaf = rd.number(data, "vaf_v", where, default=0.0, positive=False) or None
+    vaf = rd.quantity(data, "vaf_v", where, default=0.0, positive=False) or None
     return Transistor(
         name=name,
         polarity="npn",
@@ -447,9 +445,9 @@ def _opamp(rd: _Reader, name: str, data: Any, where: str) -> OpAmp:
     return OpAmp(
         name=name,
         headroom_v=rd.spread(data, "headroom_v", where),  # type: ignore[arg-type]
-        gbw_hz=rd.number(data, "gbw_hz", where, default=1e6),
-        open_loop_gain=rd.number(data, "open_loop_gain", where, default=1e5),
-        output_current_a=rd.number(data, "output_current_a", where, default=0.02),
+        gbw_hz=rd.quantity(data, "gbw_hz", where, default=1e6),
+        open_loop_gain=rd.quantity(data, "open_loop_gain", where, default=1e5),
+        output_current_a=rd.quantity(data, "output_current_a", where, default=0.02),
         quiescent_a=q or Spread(0.5e-3, 1e-3, 2e-3),
     )
 
@@ -465,14 +463,14 @@ def _stage(
 ) -> Stage:
     if not isinstance(data, Mapping):
         raise rd.fail(where, "a stage must be a table")
-    kind = rd.string(data, "kind", where)
+    kind = rd.text(data, "kind", where)
     if kind not in STAGE_KINDS:
         raise rd.fail(
             f"{where}.kind",
             f"unknown stage kind {kind!r}",
             hint=f"use one of: {', '.join(STAGE_KINDS)}",
         )
-    name = rd.string(data, "name", where)
+    name = rd.text(data, "name", where)
     where = f"{where}({name})"
 
     def r(key: str, required: bool = True) -> Part | None:
@@ -482,7 +480,7 @@ def _stage(
         return rd.part(data, key, where, tol_c, "capacitor", required=False)
 
     def transistor() -> Transistor:
-        ref = rd.string(data, "transistor", where)
+        ref = rd.text(data, "transistor", where)
         if ref not in transistors:
             raise rd.fail(
                 f"{where}.transistor",
@@ -492,7 +490,7 @@ def _stage(
         return transistors[ref]
 
     def opamp() -> OpAmp:
-        ref = rd.string(data, "opamp", where)
+        ref = rd.text(data, "opamp", where)
         if ref not in opamps:
             raise rd.fail(
                 f"{where}.opamp",
@@ -529,7 +527,7 @@ def _stage(
             )
     elif kind == "emitter_follower":
         rd.known(data, _EF_FIELDS, where)
-        coupling = rd.string(data, "coupling", where, default="dc").lower()
+        coupling = rd.text(data, "coupling", where, default="dc").lower()
         if coupling not in {"dc", "ac"}:
             raise rd.fail(
                 f"{where}.coupling",
@@ -593,12 +591,10 @@ def board_from_dict(
     """
     rd = _Reader(path)
     rd.known(data, _TOP_FIELDS, "")
-    head = rd.table(data, "board", "")
+    head = rd.table(data, "board", missing_at="", wrong_hint="")
     rd.known(head, {"name", "part_number", "revision", "note"}, "board")
 
-    tolerances = data.get("tolerances", {})
-    if not isinstance(tolerances, Mapping):
-        raise rd.fail("tolerances", "must be a table")
+    tolerances = rd.table(data, "tolerances", required=False, wrong_hint="")
     rd.known(tolerances, {"resistor", "capacitor"}, "tolerances")
     tol_r = tolerances.get("resistor")
     tol_c = tolerances.get("capacitor")
@@ -609,7 +605,7 @@ def board_from_dict(
             except ValueParseError as exc:
                 raise rd.fail(f"tolerances.{key}", exc.reason, exc.hint) from None
 
-    sup = rd.table(data, "supply", "")
+    sup = rd.table(data, "supply", missing_at="", wrong_hint="")
     rd.known(sup, {"positive_v", "negative_v"}, "supply")
     positive = rd.part(sup, "positive_v", "supply", "0%", "voltage")
     negative = None
@@ -627,7 +623,7 @@ def board_from_dict(
         )
     supply = Supply(positive=positive, negative=negative)  # type: ignore[arg-type]
 
-    cond = rd.table(data, "conditions", "")
+    cond = rd.table(data, "conditions", missing_at="", wrong_hint="")
     rd.known(
         cond,
         {
@@ -647,10 +643,10 @@ def board_from_dict(
     if not isinstance(extra, list):
         raise rd.fail("conditions.extra_frequencies_hz", "must be a list of frequencies")
     extra_hz = tuple(
-        rd.number({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
+        rd.quantity({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
         for i, f in enumerate(extra)
     )
-    criterion = rd.string(cond, "clip_criterion", "conditions", default="thd").lower()
+    criterion = rd.text(cond, "clip_criterion", "conditions", default="thd").lower()
     if criterion not in {"thd", "compression"}:
         raise rd.fail(
             "conditions.clip_criterion",
@@ -658,14 +654,14 @@ def board_from_dict(
             hint='use "thd" or "compression"',
         )
     conditions = Conditions(
-        frequency_hz=rd.number(cond, "frequency_hz", "conditions"),
-        nominal_input_vrms=rd.number(cond, "nominal_input_vrms", "conditions"),
-        safe_input_vrms=rd.number(cond, "safe_input_vrms", "conditions"),
-        source_ohm=rd.number(cond, "source_ohm", "conditions", default=50.0, positive=False),
+        frequency_hz=rd.quantity(cond, "frequency_hz", "conditions"),
+        nominal_input_vrms=rd.quantity(cond, "nominal_input_vrms", "conditions"),
+        safe_input_vrms=rd.quantity(cond, "safe_input_vrms", "conditions"),
+        source_ohm=rd.quantity(cond, "source_ohm", "conditions", default=50.0, positive=False),
         extra_frequencies_hz=extra_hz,
         clip_criterion=criterion,  # type: ignore[arg-type]
-        clip_thd_percent=rd.number(cond, "clip_thd_percent", "conditions", default=1.0),
-        clip_compression_db=rd.number(cond, "clip_compression_db", "conditions", default=1.0),
+        clip_thd_percent=rd.quantity(cond, "clip_thd_percent", "conditions", default=1.0),
+        clip_compression_db=rd.quantity(cond, "clip_compression_db", "conditions", default=1.0),
     )
     if conditions.nominal_input_vrms > conditions.safe_input_vrms:
         raise rd.fail(
@@ -677,11 +673,9 @@ def board_from_dict(
         raise rd.fail("conditions.clip_thd_percent", "must be under 100 %")
     board_load = rd.part(cond, "load_ohm", "conditions", tol_r or "0%", "resistor")
 
-    lim = data.get("limits", {})
-    if not isinstance(lim, Mapping):
-        raise rd.fail("limits", "must be a table")
+    lim = rd.table(data, "limits", required=False, wrong_hint="")
     rd.known(lim, {"method", "samples", "coverage", "seed", "worst_case"}, "limits")
-    method = rd.string(lim, "method", "limits", default="monte_carlo")
+    method = rd.text(lim, "method", "limits", default="monte_carlo")
     if method != "monte_carlo":
         raise rd.fail("limits.method", f"unknown method {method!r}", hint='use "monte_carlo"')
     samples = lim.get("samples", 20000)
@@ -691,7 +685,7 @@ def board_from_dict(
         or not 100 <= samples <= 10_000_000
     ):
         raise rd.fail("limits.samples", "must be a whole number from 100 to 10000000")
-    coverage = rd.number(lim, "coverage", "limits", default=0.9973)
+    coverage = rd.quantity(lim, "coverage", "limits", default=0.9973)
     if not 0.5 <= coverage < 1.0:
         raise rd.fail("limits.coverage", "must be a fraction from 0.5 to below 1 (e.g. 0.9973)")
     seed = lim.get("seed", 1)
@@ -722,12 +716,9 @@ def board_from_dict(
         raise rd.fail("channel", "no channels", hint="add at least one [[channel]] table")
     channels: list[Channel] = []
     seen: set[str] = set()
-    for i, ch in enumerate(chans):
-        where = f"channel[{i}]"
-        if not isinstance(ch, Mapping):
-            raise rd.fail(where, "must be a table")
+    for where, ch in rd.tables(chans, "channel", wrong_hint=""):
         rd.known(ch, {"name", "input", "output", "stage", "load_ohm"}, where)
-        cname = rd.string(ch, "name", where)
+        cname = rd.text(ch, "name", where)
         where = f"channel.{cname}"
         if cname in seen:
             raise rd.fail(where, "two channels share this name")
@@ -776,8 +767,8 @@ def board_from_dict(
         channels.append(
             Channel(
                 name=cname,
-                input=rd.string(ch, "input", where, default="IN"),
-                output=rd.string(ch, "output", where, default="OUT"),
+                input=rd.text(ch, "input", where, default="IN"),
+                output=rd.text(ch, "output", where, default="OUT"),
                 stages=stages,
                 load_ohm=load or board_load,
             )
@@ -785,9 +776,9 @@ def board_from_dict(
 
     digest = hashlib.sha256(raw).hexdigest() if raw is not None else ""
     return Board(
-        name=rd.string(head, "name", "board"),
-        part_number=rd.string(head, "part_number", "board", default="-"),
-        revision=rd.string(head, "revision", "board", default="-"),
+        name=rd.text(head, "name", "board"),
+        part_number=rd.text(head, "part_number", "board", default="-"),
+        revision=rd.text(head, "revision", "board", default="-"),
         supply=supply,
         conditions=conditions,
         policy=policy,

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from typing import Literal
 
 from harness.errors import FaultSpecError
-from harness.model.board import Board, CommonEmitter, EmitterFollower, Part
+from harness.model.board import Board, CommonEmitter, EmitterFollower, Part, iter_parts
 
 FaultKind = Literal["drift", "open", "short", "open_bypass", "low_beta", "shorted_junction"]
 FAULT_KINDS: tuple[str, ...] = (
@@ -137,28 +137,7 @@ def parse_fault(text: str, board: Board | None = None) -> Fault:
 def component_parts(board: Board) -> dict[str, Part]:
     """Designator → Part of every resistor and capacitor fitted on the board's channels
     (the test load and the supply are not board parts)."""
-    parts: dict[str, Part] = {}
-    for ch in board.channels:
-        for st in ch.stages:
-            for name in (
-                "r1",
-                "r2",
-                "rc",
-                "re",
-                "re_bypassed",
-                "c_e",
-                "c_in",
-                "c_out",
-                "r_in",
-                "r_f",
-                "r_g",
-                "r_bias",
-                "c_g",
-            ):
-                p = getattr(st, name, None)
-                if isinstance(p, Part):
-                    parts[p.ref] = p
-    return parts
+    return {part.ref: part for _ch, _st, _field, part in iter_parts(board)}
 
 
 def component_refs(board: Board) -> list[str]:
