@@ -72,7 +72,7 @@ __all__ = [
 ]
 
 _TABLE_POINTS = 1 << 15  # band-limited upsampling table for evaluate()
-_CACHE_SIZE = 64
+_CACHE_SIZE = 16  # each response holds a 2^15-point table (~0.5 MB): keep few
 
 
 class SimulationError(AmpbenchError, ArithmeticError):

@@ -1,5 +1,8 @@
 """The production loop used by the soak test and benchmarks/soak.py.
 
+The simulated bench runs in a process of its own (``ampbench sim serve``), as instruments
+do on a real bench, so the memory measured is the harness's, not the simulator's caches.
+
 Until ``ampbench line`` exists: one process, instruments connected once, the run layer's
 per-board function (harness.run.sequence.run_board) called for board after board on one
 simulated bench and one results database, with RSS (psutil) and open file descriptors
@@ -10,7 +13,13 @@ one, so the search's code path is soaked too.
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import sys
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -34,6 +43,48 @@ class SoakResult:
         return float(np.polyfit(x, y, 1)[0])
 
 
+@contextmanager
+def served_bench(board_file: Path, folder: Path, *, timeout_ms: int = 2000) -> Iterator[Path]:
+    """``ampbench sim serve`` in a child process; yields its station file (short timeouts)."""
+    from tests.reliability.rig import short_station
+
+    station = folder / "station-served.toml"
+    fixture = folder / "fixture-served.toml"
+    cmd = [
+        sys.executable,
+        "-m",
+        "harness.cli.main",
+        "sim",
+        "serve",
+        str(board_file),
+        "--station-out",
+        str(station),
+        "--fixture-out",
+        str(fixture),
+    ]
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    log = folder / "sim-serve.log"
+    with log.open("wb") as err:
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err, env=env)
+    try:
+        deadline = time.monotonic() + 60
+        while not (station.exists() and fixture.exists()):
+            if proc.poll() is not None:
+                raise RuntimeError(f"sim serve exited: {log.read_text()[-2000:]}")
+            if time.monotonic() > deadline:
+                raise RuntimeError("sim serve did not write its station file within 60 s")
+            time.sleep(0.05)
+        time.sleep(0.2)  # the file is written once the servers listen; let it be complete
+        yield short_station(station, timeout_ms)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+
+
 def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) -> SoakResult:
     import psutil
 
@@ -44,7 +95,7 @@ def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) ->
     from harness.run.fixture import load_fixture
     from harness.run.sequence import RunOptions, run_board
     from harness.store import open_store
-    from tests.reliability.rig import started_bench, write_rig
+    from tests.reliability.rig import write_rig
 
     files = write_rig(folder)
     board = load_board(files.board)
@@ -56,7 +107,7 @@ def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) ->
     res = SoakResult(boards, 0.0)
     t0 = time.perf_counter()
     with (
-        started_bench(board, folder) as (_bench, station_file),
+        served_bench(files.board, folder) as station_file,
         open_store(folder / "soak.db") as store,
     ):
         store.recover_aborted()

@@ -8,7 +8,7 @@ FD_SLOPE_LIMIT per board.  Justification: a leak of one retained 1000-point reco
 (2 x 8 kB of float64) per board would show as >= 16 kB/board; the limit of 8 kB/board
 allows allocator noise but not a per-board record.  Any descriptor leaked per board, even
 one in 20, exceeds 0.05 FD/board.
-CI: SOAK_BOARDS = 100 (reduced; ``--soak`` runs 1000).
+CI: SOAK_BOARDS = 500 (``--soak`` runs 2000).
 """
 
 from __future__ import annotations
@@ -22,8 +22,8 @@ from tests.reliability.soakloop import soak
 
 pytestmark = [pytest.mark.reliability, pytest.mark.wire]
 
-#: README figure: boards per soak (CI reduced; --soak: 1000).
-SOAK_BOARDS = scaled(100, 1000)
+#: README figure: boards per soak (CI 500; --soak 2000).
+SOAK_BOARDS = scaled(500, 2000)
 RSS_SLOPE_LIMIT = 8 * 1024  # bytes per board
 FD_SLOPE_LIMIT = 0.05  # descriptors per board
 
