@@ -288,13 +288,13 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
     head = doc.get("profile")
     if not isinstance(head, dict):
         raise err("profile", "missing [profile] table", "add [profile] with name and role")
-    for k in set(head) - {"name", "role", "description"}:
+    for k in sorted(set(head) - {"name", "role", "description"}):
         raise err(f"profile.{k}", f"unknown key {k!r}", "allowed: name, role, description", k)
     name = head.get("name")
     if not isinstance(name, str) or not name:
         raise err("profile.name", "missing or not text", 'add name = "my-profile"', "name")
     role = head.get("role")
-    if role not in ROLE_OPS:
+    if not isinstance(role, str) or role not in ROLE_OPS:
         raise err(
             "profile.role", f"unknown role {role!r}", f"use one of {', '.join(ROLES)}", "role"
         )

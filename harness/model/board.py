@@ -228,6 +228,9 @@ class Conditions:
     clip_criterion: Literal["thd", "compression"] = "thd"
     clip_thd_percent: float = 1.0
     clip_compression_db: float = 1.0
+    #: The board's specified THD ceiling at the nominal level, where the model's own figure
+    #: is no usable limit (an op-amp stage is near-ideal below clipping); None: the model's.
+    thd_limit_percent: float | None = None
 
 
 @dataclass(frozen=True)
@@ -635,6 +638,7 @@ def board_from_dict(
             "clip_criterion",
             "clip_thd_percent",
             "clip_compression_db",
+            "thd_limit_percent",
             "load_ohm",
         },
         "conditions",
@@ -662,6 +666,11 @@ def board_from_dict(
         clip_criterion=criterion,  # type: ignore[arg-type]
         clip_thd_percent=rd.quantity(cond, "clip_thd_percent", "conditions", default=1.0),
         clip_compression_db=rd.quantity(cond, "clip_compression_db", "conditions", default=1.0),
+        thd_limit_percent=(
+            rd.quantity(cond, "thd_limit_percent", "conditions")
+            if "thd_limit_percent" in cond
+            else None
+        ),
     )
     if conditions.nominal_input_vrms > conditions.safe_input_vrms:
         raise rd.fail(
@@ -671,6 +680,8 @@ def board_from_dict(
         )
     if conditions.clip_thd_percent >= 100:
         raise rd.fail("conditions.clip_thd_percent", "must be under 100 %")
+    if conditions.thd_limit_percent is not None and conditions.thd_limit_percent >= 100:
+        raise rd.fail("conditions.thd_limit_percent", "must be under 100 %")
     board_load = rd.part(cond, "load_ohm", "conditions", tol_r or "0%", "resistor")
 
     lim = rd.table(data, "limits", required=False, wrong_hint="")

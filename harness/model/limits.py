@@ -359,6 +359,11 @@ def _channel_limits(
         "swing_clip_input_vrms", "swing-limited clipping threshold", "V rms", design.clip_input_vrms
     )
     thd = lim("thd_percent", "THD at nominal level", "%", design.thd_percent, one_sided=True)
+    spec = board.conditions.thd_limit_percent
+    if spec is not None:  # the board's specification governs; the model's figure stays nominal
+        thd = Limit(
+            "THD at nominal level (board specification)", "%", design.thd_percent, None, float(spec)
+        )
     supply = lim("supply_current_a", "supply current", "A", design.supply_current_a)
     corner = lim("low_corner_hz", "low -3 dB corner", "Hz", design.low_corner_hz)
     op_nominal = {}

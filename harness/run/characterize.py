@@ -63,8 +63,6 @@ CORNER_MARGIN = 0.4
 MIDBAND_FACTOR = 20.0
 #: A frequency-sweep point may sit this fraction off its log-spaced target (coherence).
 FREQ_TOLERANCE = 0.05
-#: Input and output records within this fill ratio get the digitiser-harmonic correction.
-FILL_MATCH = 1.25
 
 
 @dataclass(frozen=True)
@@ -313,7 +311,7 @@ class Characterizer(BoardRun):
             self.safe.on()
         if changed:
             self._settle()
-        out, _ = self.scope_ops.acquire(group, plan, fill_match=FILL_MATCH)
+        out, _ = self.scope_ops.acquire(group, plan)
         return out
 
     def _settle(self) -> None:

@@ -25,6 +25,7 @@ import os
 import random
 import re
 import signal
+import sqlite3
 import subprocess
 import sys
 import threading
@@ -188,8 +189,20 @@ def _lane(folder: Path, strata: list[float]) -> _LaneResult:
             while first.proc.poll() is None and _reported(first.printed())[1] is None:
                 time.sleep(0.005)
             t1 = time.monotonic()
+            # the sequence ends when the store holds the verdict, not when the process has
+            # exited: interpreter shutdown after the verdict is no moment to kill into
+            serial_w = f"SN-WARM{n}"
+            while first.proc.poll() is None:
+                try:
+                    mine_w = _serial_runs(db).get(serial_w, [])
+                except sqlite3.OperationalError:  # schema not created yet
+                    mine_w = []
+                if mine_w and mine_w[0][1] in ("complete", "aborted"):
+                    break
+                time.sleep(0.005)
+            t2 = time.monotonic()
             rc, err = first.finish(120)
-            startup_s, span_s = t1 - t0, time.monotonic() - t1
+            startup_s, span_s = t1 - t0, t2 - t1
             assert rc in (0, 1), f"warm-up run failed ({rc}):\n{err}"
             warm_rows, _ = _reported(first.printed())
             assert warm_rows, f"the run printed no measurements: {first.printed()}\n{err}"
