@@ -11,6 +11,7 @@ import zipfile
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -62,29 +63,44 @@ def _finish(path: str, cols: dict[str, np.ndarray], where: str) -> Capture:
     return Capture(path, cols["time_s"], cols["input_v"], cols["output_v"])
 
 
+def _npz_columns(p: Path, loaded: Any) -> dict[str, np.ndarray]:
+    """The three named arrays of an open archive, checked."""
+    with loaded as data:
+        missing = [c for c in COLUMNS if c not in data.files]
+        if missing:
+            raise CaptureFileError(
+                str(p),
+                None,
+                f"missing array(s) {', '.join(missing)} (found {', '.join(data.files) or 'none'})",
+                hint=f"save arrays named {', '.join(COLUMNS)}",
+            )
+        cols = {}
+        for c in COLUMNS:
+            a = np.asarray(data[c])
+            if a.ndim != 1 or a.dtype.kind not in "fiu":
+                raise CaptureFileError(
+                    str(p), f"array {c}", f"must be a 1-D numeric array, got {a.dtype}{a.shape}"
+                )
+            if not np.isfinite(a).all():
+                i = int(np.flatnonzero(~np.isfinite(a))[0])
+                raise CaptureFileError(str(p), f"array {c}[{i}]", f"value {a[i]} is not finite")
+            cols[c] = a.astype(np.float32 if a.dtype == np.float32 else np.float64)
+    return cols
+
+
 def _read_npz(p: Path) -> Capture:
     try:
-        with np.load(p, allow_pickle=False) as data:
-            missing = [c for c in COLUMNS if c not in data.files]
-            if missing:
+        # our own handle: numpy leaves the file open when the archive turns out broken
+        with p.open("rb") as fh:
+            loaded = np.load(fh, allow_pickle=False)
+            if not isinstance(loaded, np.lib.npyio.NpzFile):  # a bare .npy array
                 raise CaptureFileError(
                     str(p),
                     None,
-                    f"missing array(s) {', '.join(missing)} "
-                    f"(found {', '.join(data.files) or 'none'})",
-                    hint=f"save arrays named {', '.join(COLUMNS)}",
+                    "a single .npy array, not an .npz archive of named arrays",
+                    hint=f"save with numpy.savez(path, {', '.join(f'{c}=...' for c in COLUMNS)})",
                 )
-            cols = {}
-            for c in COLUMNS:
-                a = np.asarray(data[c])
-                if a.ndim != 1 or a.dtype.kind not in "fiu":
-                    raise CaptureFileError(
-                        str(p), f"array {c}", f"must be a 1-D numeric array, got {a.dtype}{a.shape}"
-                    )
-                if not np.isfinite(a).all():
-                    i = int(np.flatnonzero(~np.isfinite(a))[0])
-                    raise CaptureFileError(str(p), f"array {c}[{i}]", f"value {a[i]} is not finite")
-                cols[c] = a.astype(np.float32 if a.dtype == np.float32 else np.float64)
+            cols = _npz_columns(p, loaded)
     except CaptureFileError:
         raise
     except (
