@@ -13,7 +13,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from harness.report.board import BoardReport, board_plots, load_board_report, render_board_html
+from harness.report.board import (
+    BoardReport,
+    attach_diagnosis,
+    board_plots,
+    load_board_report,
+    render_board_html,
+)
 from harness.report.errors import ReportError
 from harness.report.export import FORMATS, TABLES, export_tables
 from harness.report.plot import Band, Bars, Plot, Rule, Series, render_svg
@@ -51,9 +57,12 @@ def write_board_report(
     run_id: int | None = None,
     png_dir: str | Path | None = None,
 ) -> tuple[Path, BoardReport]:
-    """Write the board report of a run (or of a serial's newest run) to ``out``."""
+    """Write the board report of a run (or of a serial's newest run) to ``out``; a failed
+    board's report carries the ranked likely faulty components (``harness.diagnose``)."""
     with open_store(db, readonly=True) as store:
         report = load_board_report(store, serial=serial, run_id=run_id)
+        if report.run.verdict == "FAIL" or report.run.status == "aborted":
+            report = attach_diagnosis(store, report)
     plots = board_plots(report)
     if png_dir is not None:
         from harness.report.png import write_pngs

@@ -9,10 +9,12 @@ the run header that says which board file, limits, bench and software judged the
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -57,6 +59,9 @@ class BoardReport:
     history: tuple[RunRow, ...]  # every run of this serial and part number, oldest first
     board_measurements: tuple[MeasurementRow, ...]  # channel "" (board-level, e.g. supply)
     channels: tuple[ChannelData, ...]
+    #: ranked likely faults of a failed board (harness.diagnose.Diagnosis), or why there are
+    #: none (text); None when no diagnosis was asked for
+    diagnosis: Any = None
 
     @property
     def records_kept(self) -> bool:
@@ -111,6 +116,72 @@ def load_board_report(
         for name in names
     )
     return BoardReport(run, tuple(history), tuple(m for m in ms if not m.channel), channels)
+
+
+def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> BoardReport:
+    """The report with the run's likely faulty components ranked (or the reason there is no
+    ranking: the board file moved, the run holds nothing to diagnose from)."""
+    from harness.diagnose import diagnose_run
+    from harness.errors import AmpbenchError
+    from harness.files import load_board
+
+    run = report.run
+    try:
+        board = load_board(run.board_file, validate=False)
+        result: Any = diagnose_run(store, run.run_id, board, top=top)
+    except AmpbenchError as exc:
+        result = f"no fault diagnosis: {exc}"
+    return dataclasses.replace(report, diagnosis=result)
+
+
+def _cell(value: Any) -> str:
+    """A number formatted, or a category (a clipping side) as text."""
+    if value is None or isinstance(value, int | float):
+        return h.num(value)
+    return h.e(str(value))
+
+
+def diagnosis_section(diagnosis: Any) -> str:
+    """Top candidates with the evidence for each, for a repair technician."""
+    if diagnosis is None:
+        return ""
+    parts = ["<h2>Likely faulty components</h2>"]
+    if isinstance(diagnosis, str):
+        parts.append(f'<p class="note">{h.e(diagnosis)}</p>')
+        return "".join(parts)
+    for w in diagnosis.warnings:
+        parts.append(f'<p class="note">{h.e(w)}</p>')
+    cands = [c for c in diagnosis.candidates if c.kind != "none"][:3]
+    if not cands:
+        parts.append(
+            '<p class="note">No single component fault explains the measurements '
+            "better than a good board.</p>"
+        )
+        return "".join(parts)
+    rows = [
+        (
+            str(i),
+            h.e(c.ref),
+            h.e(c.spec),
+            h.e(f"{100 * c.probability:.0f} %"),
+            h.e(", ".join(c.explained) or "-"),
+            h.e(", ".join(c.contradicts) or "-"),
+        )
+        for i, c in enumerate(cands, start=1)
+    ]
+    parts.append(h.table(("rank", "component", "fault", "share", "explains", "contradicts"), rows))
+    for i, c in enumerate(cands, start=1):
+        ev = [
+            (h.e(e.name), _cell(e.measured), _cell(e.predicted), _cell(e.sigma)) for e in c.evidence
+        ]
+        parts.append(f"<h3>{i}. {h.e(c.spec)}: evidence</h3>")
+        parts.append(h.table(("measurement", "measured", "predicted", "σ"), ev, numeric=(1, 2, 3)))
+    parts.append(
+        '<p class="muted">Single-fault hypotheses scored against the stage model '
+        "(χ² over the measurements with their uncertainties and the good-board spread, plus "
+        "a prior); the share is each one's weight among all hypotheses scored.</p>"
+    )
+    return "".join(parts)
 
 
 # --- finding things -------------------------------------------------------------------------
@@ -544,6 +615,7 @@ def render_board_html(report: BoardReport, plots: dict[str, list[Plot]] | None =
             f'<p class="note">The run is {h.e(run.status)}: '
             "it has no complete set of measurements.</p>"
         )
+    parts.append(diagnosis_section(report.diagnosis))
     parts.append("<h2>Run</h2>")
     parts.append(header_table(run))
     if len(report.history) > 1:

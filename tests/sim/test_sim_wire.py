@@ -78,6 +78,9 @@ def test_pyvisa_drives_the_whole_bench_with_raw_scpi(bench: SimBench, rm) -> Non
             inst.write("*RST;*CLS")
         psu.write("SOURce1:VOLTage:LEVel:IMMediate:AMPLitude 12")
         psu.write("SOURce1:CURRent:LEVel:IMMediate:AMPLitude 0.05;:OUTPut1:STATe ON")
+        # each instrument has its own connection: wait until the supply has acted before
+        # the scope records (a write returns once sent, not once done)
+        assert psu.query("*OPC?") == "1"
         gen.write("SOURce1:FUNCtion:SHAPe SINusoid;:SOURce1:FREQuency:CW 1000.9765625")
         gen.write("SOURce1:VOLTage:LEVel:IMMediate:AMPLitude 0.1;:OUTPut1:STATe ON")
         assert gen.query("OUTPut1:STATe?") == "1"
