@@ -42,5 +42,5 @@ def test_ceiling_of_100_percent_is_refused(tmp_path: Path) -> None:
     text = text.replace("thd_limit_percent = 0.1", "thd_limit_percent = 150")
     path = tmp_path / "b.toml"
     path.write_text(text)
-    with pytest.raises(BoardFileError, match="conditions.thd_limit_percent"):
+    with pytest.raises(BoardFileError, match=r"conditions\.thd_limit_percent"):
         load_board(path)
