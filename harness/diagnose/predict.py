@@ -24,15 +24,32 @@ Nothing here reads files or prints.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import ParamSpec, TypeVar
 
 import numpy as np
 
 from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower
 from harness.model.core import ChannelArrays, evaluate_channel, parallel, solve_junction
 from harness.model.params import channel_parameters, nominal_arrays
+
+_P = ParamSpec("_P")
+_R = TypeVar("_R")
+
+
+def _quiet_fp(func: Callable[_P, _R]) -> Callable[_P, _R]:
+    """Run ``func`` with NumPy floating-point warnings off: faulted rows overflow on purpose."""
+
+    @functools.wraps(func)
+    def run(*args: _P.args, **kwargs: _P.kwargs) -> _R:
+        with np.errstate(all="ignore"):
+            return func(*args, **kwargs)
+
+    return run
+
 
 #: Points per period / criterion iterations of the large-signal solution (the Monte Carlo's).
 POINTS = 64
@@ -255,7 +272,8 @@ class _Patch:
         return before * a
 
 
-def _predict_channel(
+@_quiet_fp
+def predict_channel(
     board: Board,
     ch: Channel,
     rows: Sequence[Mapping[str, float]],
@@ -265,11 +283,12 @@ def _predict_channel(
     extra_frequencies_hz: Sequence[float] = (),
     full: bool = True,
 ) -> Predictions:
-    """See :func:`predict_channel`.
+    """Predictions of one channel for each row of overrides.
 
     ``patches[i]`` names a shorted-junction patch (``"shorted_be"``/``"shorted_ce"``) on stage
     ``stage_of_patch[i]``; ``full`` False skips THD and the threshold search (DC and gain
-    only, about ten times cheaper).
+    only, about ten times cheaper).  Faulted rows overflow on purpose (dead stages), so
+    floating-point warnings are silenced here and dead rows are flagged instead.
     """
     n = len(rows)
     patches = list(patches) if patches is not None else [None] * n
@@ -345,32 +364,3 @@ def _predict_channel(
                 values["gain_db"],
             )
     return Predictions(values, dead, degraded, margin)
-
-
-def predict_channel(
-    board: Board,
-    ch: Channel,
-    rows: Sequence[Mapping[str, float]],
-    patches: Sequence[str | None] | None = None,
-    *,
-    stage_of_patch: Sequence[str | None] | None = None,
-    extra_frequencies_hz: Sequence[float] = (),
-    full: bool = True,
-) -> Predictions:
-    """Predictions of one channel for each row of overrides.
-
-    ``patches[i]`` names a shorted-junction patch (``"shorted_be"``/``"shorted_ce"``) on stage
-    ``stage_of_patch[i]``; ``full`` False skips THD and the threshold search (DC and gain
-    only, about ten times cheaper).  Faulted rows overflow on purpose (dead stages), so
-    floating-point warnings are silenced here and dead rows are flagged instead.
-    """
-    with np.errstate(all="ignore"):
-        return _predict_channel(
-            board,
-            ch,
-            rows,
-            patches,
-            stage_of_patch=stage_of_patch,
-            extra_frequencies_hz=extra_frequencies_hz,
-            full=full,
-        )

@@ -120,10 +120,37 @@ class _Driver:
         return int(output)
 
 
+class _SwitchedOutputs(_Driver):
+    """Outputs that switch on and off and read back their state (generator, supply)."""
+
+    def output(self, on: bool, output: int = 1) -> None:
+        o = self._output_no(output)
+        self._set(("output", o), "output_on" if on else "output_off", output=o)
+
+    def is_on(self, output: int = 1) -> bool:
+        return self._ask(parse_bool, "query_output", output=self._output_no(output))
+
+    def _outputs_off(self, count: int) -> bool:
+        """Outputs 1..count off, each read back; logs instead of raising, True when all are off."""
+        ok = True
+        for o in range(1, count + 1):
+            try:
+                self.session.write(self.profile.render("output_off", output=o))
+                self._state[("output", o)] = ("output_off", {"output": o})
+                if self.is_on(o):  # read back: an ignored command must not pass as off
+                    raise self._err(f"output {o} still reports ON after output_off")
+            except (AmpbenchError, OSError) as exc:
+                ok = False
+                log.error(
+                    "%s %s output %d may still be ON: %s", self.session.resource, self.role, o, exc
+                )
+        return ok
+
+
 # --- signal generator -------------------------------------------------------------------------
 
 
-class Generator(_Driver):
+class Generator(_SwitchedOutputs):
     """Sine source.  Levels are rms volts at the DUT input, whatever the profile's unit."""
 
     role = "generator"
@@ -183,32 +210,13 @@ class Generator(_Driver):
             ("offset", o), "set_offset", output=o, offset_v=emf / (1.0 + self.output_ohm / cal)
         )
 
-    def output(self, on: bool, output: int = 1) -> None:
-        o = self._output_no(output)
-        self._set(("output", o), "output_on" if on else "output_off", output=o)
-
-    def is_on(self, output: int = 1) -> bool:
-        return self._ask(parse_bool, "query_output", output=self._output_no(output))
-
     def amplitude_setting(self, output: int = 1) -> float:
         """The amplitude the instrument reports (profile unit), if the profile can ask."""
         return self._ask(parse_number, "query_amplitude", output=self._output_no(output))
 
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""
-        ok = True
-        for o in range(1, int(self.settings.get("outputs", 1)) + 1):
-            try:
-                self.session.write(self.profile.render("output_off", output=o))
-                self._state[("output", o)] = ("output_off", {"output": o})
-                if self.is_on(o):  # read back: an ignored command must not pass as off
-                    raise self._err(f"output {o} still reports ON after output_off")
-            except (AmpbenchError, OSError) as exc:
-                ok = False
-                log.error(
-                    "%s generator output %d may still be ON: %s", self.session.resource, o, exc
-                )
-        return ok
+        return self._outputs_off(int(self.settings.get("outputs", 1)))
 
 
 # --- oscilloscope / digitiser -----------------------------------------------------------------
@@ -506,7 +514,7 @@ class Dmm(_Driver):
         return value
 
 
-class Supply(_Driver):
+class Supply(_SwitchedOutputs):
     role = "supply"
 
     def configure(self, voltage_v: float, current_limit_a: float, output: int = 1) -> None:
@@ -525,13 +533,6 @@ class Supply(_Driver):
         self._set(("voltage", o), "set_voltage", output=o, voltage_v=voltage_v)
         self._set(("current", o), "set_current_limit", output=o, current_a=current_limit_a)
 
-    def output(self, on: bool, output: int = 1) -> None:
-        o = self._output_no(output)
-        self._set(("output", o), "output_on" if on else "output_off", output=o)
-
-    def is_on(self, output: int = 1) -> bool:
-        return self._ask(parse_bool, "query_output", output=self._output_no(output))
-
     def current_a(self, output: int = 1) -> float:
         return self._ask(parse_number, "measure_current", output=self._output_no(output))
 
@@ -543,14 +544,4 @@ class Supply(_Driver):
 
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""
-        ok = True
-        for o in range(1, int(self.settings["outputs"]) + 1):
-            try:
-                self.session.write(self.profile.render("output_off", output=o))
-                self._state[("output", o)] = ("output_off", {"output": o})
-                if self.is_on(o):  # read back: an ignored command must not pass as off
-                    raise self._err(f"output {o} still reports ON after output_off")
-            except (AmpbenchError, OSError) as exc:
-                ok = False
-                log.error("%s supply output %d may still be ON: %s", self.session.resource, o, exc)
-        return ok
+        return self._outputs_off(int(self.settings["outputs"]))

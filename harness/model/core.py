@@ -20,7 +20,7 @@ What is modelled (midband, coupling and bypass capacitors as shorts for the sign
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -159,6 +159,71 @@ def _b(x: np.ndarray, n: int) -> np.ndarray:
 # --- DC ----------------------------------------------------------------------------------------
 
 
+def _stage_getter(p: Arrays, n: int, nm: str) -> Callable[..., np.ndarray]:
+    """Reader of stage ``nm``'s parameters as ``(n,)`` arrays: ``g(key, default=None, _nm=nm)``.
+
+    A missing key without a default raises :class:`KeyError`; ``_nm`` reads another stage's.
+    """
+
+    def g(key: str, default: float | None = None, _nm: str = nm) -> np.ndarray:
+        k = f"{_nm}.{key}"
+        if k in p:
+            return _b(p[k], n)
+        if default is None:
+            raise KeyError(k)
+        return np.full(n, default)
+
+    return g
+
+
+def _bias_point(
+    v_src: np.ndarray,
+    r_src: np.ndarray,
+    re_dc: np.ndarray,
+    beta: np.ndarray,
+    i_s: np.ndarray,
+    v_t: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Quiescent ``(I_C, I_B, I_E, V_E, V_B)`` of a BJT whose base is fed from ``v_src, r_src``.
+
+    One solve for the divider-biased stage and the follower (divider or DC-coupled collector),
+    so both carry the base current the same way.
+    """
+    k = r_src / beta + re_dc * (beta + 1.0) / beta
+    vbe = solve_junction(v_src, k, i_s, v_t)
+    ic = i_s * np.expm1(vbe / v_t)
+    ib = ic / beta
+    ie = ic + ib
+    ve = ie * re_dc
+    vb = ve + vbe
+    return ic, ib, ie, ve, vb
+
+
+def _rest_region(s: StageArrays) -> tuple[np.ndarray, np.ndarray]:
+    """Masks of the samples cut off and saturated at rest (a cut-off one is not saturated too)."""
+    cut = s.ic_a < CUTOFF_A
+    sat = (s.vce_v <= s.vce_sat_v) & ~cut
+    return cut, sat
+
+
+def _flag(
+    problems: list[Problem],
+    mask: np.ndarray,
+    location: str,
+    reason: str,
+    hint: str,
+    **figures: np.ndarray,
+) -> None:
+    """Record a problem if any sample is in ``mask``; ``reason`` quotes the first such sample.
+
+    ``reason`` is a format string whose fields are the ``figures`` arrays, each read at that
+    sample, so one message serves the nominal design and every Monte Carlo sample alike.
+    """
+    if np.any(mask):
+        at = {name: float(arr[mask][0]) for name, arr in figures.items()}
+        problems.append(Problem(location, reason.format(**at), hint, mask))
+
+
 def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -> list[StageArrays]:
     vcc = _b(p["supply.positive_v"], n)
     v_t = _b(p["v_t"], n)
@@ -170,13 +235,7 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
         nm = st.name
         loc = f"channel.{ch.name}.stage[{j}]({nm})"
 
-        def g(key: str, default: float | None = None, _nm: str = nm) -> np.ndarray:
-            k = f"{_nm}.{key}"
-            if k in p:
-                return _b(p[k], n)
-            if default is None:
-                raise KeyError(k)
-            return np.full(n, default)
+        g = _stage_getter(p, n, nm)
 
         # a load without c_out on the last stage carries DC too
         dc_load = j == last and st.c_out is None
@@ -215,13 +274,7 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
             re_dc = re + g("re_bypassed", 0.0)
             v_th = vcc * r2 / (r1 + r2)
             r_th = r1 * r2 / (r1 + r2)
-            k = r_th / beta + re_dc * (beta + 1.0) / beta
-            vbe = solve_junction(v_th, k, i_s, v_t)
-            ic = i_s * np.expm1(vbe / v_t)
-            ib = ic / beta
-            ie = ic + ib
-            ve = ie * re_dc
-            vb = ve + vbe
+            ic, ib, ie, ve, vb = _bias_point(v_th, r_th, re_dc, beta, i_s, v_t)
             if dc_load:
                 vcc_eff, rc_eff = vcc * r_load / (rc + r_load), parallel(rc, r_load)
             else:
@@ -257,13 +310,7 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
                 r1, r2 = g("r1"), g("r2")
                 v_open = vcc * r2 / (r1 + r2)
                 r_src = r1 * r2 / (r1 + r2)
-            k = r_src / beta + re_dc * (beta + 1.0) / beta
-            vbe = solve_junction(v_open, k, i_s, v_t)
-            ic = i_s * np.expm1(vbe / v_t)
-            ib = ic / beta
-            ie = ic + ib
-            ve = ie * re_dc
-            vb = ve + vbe
+            ic, ib, ie, ve, vb = _bias_point(v_open, r_src, re_dc, beta, i_s, v_t)
             if st.dc_coupled:
                 prev = out[-1]
                 prev.vc_v = vb
@@ -339,53 +386,45 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
         loc = f"channel.{ch.name}.stage[{j}]({st.name})"
         if isinstance(st, CommonEmitter):
             s.vce_v = s.vc_v - s.ve_v
-            cut = s.ic_a < CUTOFF_A
-            if np.any(cut):
-                problems.append(
-                    Problem(
-                        f"{loc}.r2",
-                        "transistor cut off at rest: the divider "
-                        f"r1/r2 leaves I_C = {float(s.ic_a[cut][0]):.3g} A",
-                        "raise r2 or lower r1",
-                        cut,
-                    )
-                )
-            sat = (s.vce_v <= s.vce_sat_v) & ~cut
-            if np.any(sat):
-                problems.append(
-                    Problem(
-                        f"{loc}.rc",
-                        "transistor saturated at rest: V_CE = "
-                        f"{float(s.vce_v[sat][0]):.3g} V is at or below "
-                        f"V_CE(sat) = {float(s.vce_sat_v[sat][0]):.3g} V",
-                        "lower rc or the emitter resistance, or raise r1",
-                        sat,
-                    )
-                )
+            cut, sat = _rest_region(s)
+            _flag(
+                problems,
+                cut,
+                f"{loc}.r2",
+                "transistor cut off at rest: the divider r1/r2 leaves I_C = {ic:.3g} A",
+                "raise r2 or lower r1",
+                ic=s.ic_a,
+            )
+            _flag(
+                problems,
+                sat,
+                f"{loc}.rc",
+                "transistor saturated at rest: V_CE = {vce:.3g} V is at or below "
+                "V_CE(sat) = {vce_sat:.3g} V",
+                "lower rc or the emitter resistance, or raise r1",
+                vce=s.vce_v,
+                vce_sat=s.vce_sat_v,
+            )
         elif isinstance(st, EmitterFollower):
             s.vce_v = vcc - s.ve_v
-            cut = s.ic_a < CUTOFF_A
-            if np.any(cut):
-                problems.append(
-                    Problem(
-                        f"{loc}.re",
-                        f"follower cut off at rest: I_E = {float(s.ie_a[cut][0]):.3g} A",
-                        "check the bias of its base",
-                        cut,
-                    )
-                )
-            sat = (s.vce_v <= s.vce_sat_v) & ~cut
-            if np.any(sat):
-                problems.append(
-                    Problem(
-                        f"{loc}.re",
-                        "follower saturated at rest: its emitter "
-                        f"sits at {float(s.ve_v[sat][0]):.3g} V, within "
-                        "V_CE(sat) of the supply",
-                        "lower its base voltage",
-                        sat,
-                    )
-                )
+            cut, sat = _rest_region(s)
+            _flag(
+                problems,
+                cut,
+                f"{loc}.re",
+                "follower cut off at rest: I_E = {ie:.3g} A",
+                "check the bias of its base",
+                ie=s.ie_a,
+            )
+            _flag(
+                problems,
+                sat,
+                f"{loc}.re",
+                "follower saturated at rest: its emitter sits at {ve:.3g} V, within "
+                "V_CE(sat) of the supply",
+                "lower its base voltage",
+                ve=s.ve_v,
+            )
     return out
 
 
@@ -399,13 +438,7 @@ def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> 
     for st, s in zip(reversed(ch.stages), reversed(stages), strict=True):
         nm = st.name
 
-        def g(key: str, default: float | None = None, _nm: str = nm) -> np.ndarray:
-            k = f"{_nm}.{key}"
-            if k in p:
-                return _b(p[k], n)
-            if default is None:
-                raise KeyError(k)
-            return np.full(n, default)
+        g = _stage_getter(p, n, nm)
 
         s.r_next = r_next
         if isinstance(st, CommonEmitter):

@@ -415,9 +415,13 @@ _MNEMONIC_RE = re.compile(r"([A-Za-z_]*[A-Za-z_])(\d*)")
 _PRINTABLE = re.compile(r"[^\x20-\x7e]")
 
 
-def _split_units(text: str) -> list[str]:
-    """Split a program message on ';' outside strings and parentheses."""
-    units, cur, quote, depth = [], [], "", 0
+def _split_outside(text: str, sep: str, *, clamp_depth: bool) -> tuple[list[str], bool]:
+    """Split ``text`` on ``sep`` outside strings and parentheses; also whether a string is open.
+
+    One scanner for message units and parameters.  ``clamp_depth``: a stray ')' is forgotten
+    (units); without it the depth goes below zero and no later separator splits (parameters).
+    """
+    parts, cur, quote, depth = [], [], "", 0
     for ch in text:
         if quote:
             cur.append(ch)
@@ -430,42 +434,28 @@ def _split_units(text: str) -> list[str]:
             depth += 1
             cur.append(ch)
         elif ch == ")":
-            depth = max(0, depth - 1)
+            depth = max(0, depth - 1) if clamp_depth else depth - 1
             cur.append(ch)
-        elif ch == ";" and depth == 0:
-            units.append("".join(cur))
+        elif ch == sep and depth == 0:
+            parts.append("".join(cur))
             cur = []
         else:
             cur.append(ch)
-    units.append("".join(cur))
-    if quote:
+    parts.append("".join(cur))
+    return parts, bool(quote)
+
+
+def _split_units(text: str) -> list[str]:
+    """Split a program message on ';' outside strings and parentheses."""
+    units, unterminated = _split_outside(text, ";", clamp_depth=True)
+    if unterminated:
         raise ScpiFailure(-102, "unterminated string")
     return units
 
 
 def _split_params(text: str) -> list[str]:
-    params, cur, quote, depth = [], [], "", 0
-    for ch in text:
-        if quote:
-            cur.append(ch)
-            if ch == quote:
-                quote = ""
-        elif ch in "\"'":
-            quote = ch
-            cur.append(ch)
-        elif ch == "(":
-            depth += 1
-            cur.append(ch)
-        elif ch == ")":
-            depth -= 1
-            cur.append(ch)
-        elif ch == "," and depth == 0:
-            params.append("".join(cur).strip())
-            cur = []
-        else:
-            cur.append(ch)
-    params.append("".join(cur).strip())
-    return params
+    params, _ = _split_outside(text, ",", clamp_depth=False)
+    return [p.strip() for p in params]
 
 
 def _clean(text: str, limit: int = 40) -> str:

@@ -554,52 +554,70 @@ class SQLiteStore:
 
     # --- rows -----------------------------------------------------------------------------
 
+    def _add_row(
+        self,
+        run_id: int,
+        doing: str,
+        what: str,
+        table: str,
+        columns: str,
+        values: tuple[Any, ...],
+    ) -> None:
+        """Insert one row of a running run's child table, refreshing its heartbeat."""
+        marks = ", ".join("?" * (len(values) + 1))
+        with self._write(doing) as conn:
+            self._touch(conn, run_id, what)
+            conn.execute(
+                f"INSERT INTO {table} (run_id, {columns}) VALUES ({marks})",
+                (int(run_id), *values),
+            )
+
     def add_measurement(self, run_id: int, m: MeasurementRow) -> None:
         if not isinstance(m, MeasurementRow):
             raise StoreError(f"add_measurement needs a MeasurementRow, got {type(m).__name__}")
-        with self._write("storing a measurement") as conn:
-            self._touch(conn, run_id, f"measurement {m.name!r}")
-            conn.execute(
-                f"INSERT INTO measurements (run_id, {_MEAS_COLUMNS}) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (
-                    int(run_id),
-                    m.channel,
-                    m.name,
-                    m.value,
-                    m.unit,
-                    m.low,
-                    m.high,
-                    m.uncertainty,
-                    m.decision,
-                    m.step,
-                    m.measured_at,
-                    m.detail_json,
-                ),
-            )
+        self._add_row(
+            run_id,
+            "storing a measurement",
+            f"measurement {m.name!r}",
+            "measurements",
+            _MEAS_COLUMNS,
+            (
+                m.channel,
+                m.name,
+                m.value,
+                m.unit,
+                m.low,
+                m.high,
+                m.uncertainty,
+                m.decision,
+                m.step,
+                m.measured_at,
+                m.detail_json,
+            ),
+        )
 
     def add_sweep_point(self, run_id: int, p: SweepPointRow) -> None:
         if not isinstance(p, SweepPointRow):
             raise StoreError(f"add_sweep_point needs a SweepPointRow, got {type(p).__name__}")
-        with self._write("storing a sweep point") as conn:
-            self._touch(conn, run_id, "sweep point")
-            conn.execute(
-                f"INSERT INTO sweep_points (run_id, {_SWEEP_COLUMNS}) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (
-                    int(run_id),
-                    p.channel,
-                    p.sweep,
-                    p.level_vrms,
-                    p.gain_db,
-                    p.thd_percent,
-                    p.thdn_percent,
-                    int(p.clipped),
-                    p.clip_side,
-                    p.extra_json,
-                    p.measured_at,
-                ),
-            )
+        self._add_row(
+            run_id,
+            "storing a sweep point",
+            "sweep point",
+            "sweep_points",
+            _SWEEP_COLUMNS,
+            (
+                p.channel,
+                p.sweep,
+                p.level_vrms,
+                p.gain_db,
+                p.thd_percent,
+                p.thdn_percent,
+                int(p.clipped),
+                p.clip_side,
+                p.extra_json,
+                p.measured_at,
+            ),
+        )
 
     def add_record(
         self,
@@ -720,20 +738,21 @@ class SQLiteStore:
             rows = conn.execute(sql, params).fetchall()
         return [self._run_row(r) for r in rows]
 
-    def measurements(self, run_id: int) -> list[MeasurementRow]:
-        with self._read("reading measurements") as conn:
-            rows = conn.execute(
-                f"SELECT {_MEAS_COLUMNS} FROM measurements WHERE run_id = ? ORDER BY id",
-                (int(run_id),),
+    def _child_rows(
+        self, run_id: int, doing: str, table: str, columns: str
+    ) -> list[tuple[Any, ...]]:
+        """A run's rows of a child table, in the order they were stored."""
+        with self._read(doing) as conn:
+            return conn.execute(
+                f"SELECT {columns} FROM {table} WHERE run_id = ? ORDER BY id", (int(run_id),)
             ).fetchall()
+
+    def measurements(self, run_id: int) -> list[MeasurementRow]:
+        rows = self._child_rows(run_id, "reading measurements", "measurements", _MEAS_COLUMNS)
         return [MeasurementRow(*r) for r in rows]
 
     def sweep_points(self, run_id: int) -> list[SweepPointRow]:
-        with self._read("reading sweep points") as conn:
-            rows = conn.execute(
-                f"SELECT {_SWEEP_COLUMNS} FROM sweep_points WHERE run_id = ? ORDER BY id",
-                (int(run_id),),
-            ).fetchall()
+        rows = self._child_rows(run_id, "reading sweep points", "sweep_points", _SWEEP_COLUMNS)
         return [SweepPointRow(*r) for r in rows]
 
     def records(self, run_id: int) -> list[RecordRow]:
