@@ -163,7 +163,7 @@ def test_example_station_loads():
         "TCPIP0::10.0.0.2::inst0::INSTR",
         "TCPIP::bench-gen::INSTR",
         "TCPIP::10.0.0.3::hislip0::INSTR",
-        "USB0::0x1AB1::0x0588::SN123::INSTR",
+        "USB0::0x1234::0x5678::SN123::INSTR",
         "ASRL/dev/ttyUSB0::INSTR",
         "ASRL1::INSTR",
         "GPIB0::12::INSTR",
