@@ -205,3 +205,19 @@ class FaultSpecError(AmpbenchError, ValueError):
         self.spec = spec
         self.reason = reason
         super().__init__(f"fault {spec!r}: {reason}", hint=hint)
+
+
+# --- reports -------------------------------------------------------------------------------
+
+
+class ReportError(AmpbenchError, ValueError):
+    """A report cannot be made from what was asked: unknown serial or run, an empty date
+    range, an output path that cannot be written, a missing optional library.
+
+    ``field`` names the option or input at fault (``--serial``, ``--since``, ``-o``...).
+    """
+
+    def __init__(self, field: str, reason: str, *, hint: str | None = None) -> None:
+        self.field = field
+        self.reason = reason
+        super().__init__(f"{field}: {reason}", hint=hint)

@@ -265,9 +265,9 @@ class Session:
             self._broken = True
             raise self._typed(
                 ConnectionLost,
-                f"{type(exc).__name__}: {exc}",
+                f"{_connection_words(exc)} ({type(exc).__name__}: {exc})",
                 command,
-                "check the instrument is on and connected",
+                "check the instrument is on and connected, and the resource in the station file",
             ) from exc
 
     def _write_raw(self, command: str) -> None:
@@ -509,6 +509,16 @@ class Session:
         if reply.strip() not in ("1", "+1"):
             raise self._typed(MalformedReply, f"*OPC? answered {reply!r}, expected 1", cmd)
         log.debug("%s operation complete after %.3f s", self.resource, time.perf_counter() - t0)
+
+
+def _connection_words(exc: OSError) -> str:
+    """What a socket error means at the bench.  A raw-socket resource opens even when nobody
+    listens; the first write then fails (refused, or a broken pipe)."""
+    if isinstance(exc, ConnectionRefusedError | BrokenPipeError):
+        return "instrument not reachable: nothing answers at this address"
+    if isinstance(exc, ConnectionResetError | ConnectionAbortedError):
+        return "connection dropped by the instrument (power-cycled or unplugged?)"
+    return "connection lost"
 
 
 def _set_nodelay(res: Any) -> None:
