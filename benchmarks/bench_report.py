@@ -53,7 +53,10 @@ def _header(serial: str) -> RunHeader:
         station="bench-1",
         fixture="fixture-twin",
         operator="op",
-        instruments={"generator": "AMPBENCH-SIM,GEN,1,0.1", "scope": "AMPBENCH-SIM,SCOPE,2,0.1"},
+        instruments={
+            "generator": "STAGEPROOF-SIM,GEN,1,0.1",
+            "scope": "STAGEPROOF-SIM,SCOPE,2,0.1",
+        },
     )
 
 

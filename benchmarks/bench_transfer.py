@@ -37,7 +37,7 @@ def _server(n: int) -> socketserver.ThreadingTCPServer:
             for raw in self.rfile:
                 cmd = raw.strip().upper()
                 if cmd == b"*IDN?":
-                    self.wfile.write(b"ampbench-bench,LOOP,0,1\n")
+                    self.wfile.write(b"stageproof-bench,LOOP,0,1\n")
                 elif cmd == b"BIN?":
                     self.wfile.write(binary)
                 elif cmd == b"ASC?":

@@ -1,4 +1,4 @@
-"""ampbench: automated bench test of amplifier boards.
+"""stageproof: automated bench test of amplifier boards.
 
 Layers (imports point down only)::
 
@@ -12,7 +12,7 @@ Layers (imports point down only)::
 from importlib.metadata import PackageNotFoundError, version
 
 try:
-    __version__ = version("ampbench")
+    __version__ = version("stageproof")
 except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0.0.0+src"
 

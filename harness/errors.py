@@ -1,8 +1,8 @@
 """One root error for everything a user can cause or a bench can throw.
 
-Every error the project raises derives from :class:`AmpbenchError` and also from
+Every error the project raises derives from :class:`StageproofError` and also from
 the builtin that fits it (``ValueError`` for bad input, ``OSError`` for I/O), so
-callers may catch either.  The CLI turns any ``AmpbenchError`` into one clear
+callers may catch either.  The CLI turns any ``StageproofError`` into one clear
 line on stderr and exit status 2; nothing else should reach the user as a
 traceback.  Each subclass carries the fields that locate the problem, and
 ``hint`` says how to fix it.
@@ -11,8 +11,8 @@ traceback.  Each subclass carries the fields that locate the problem, and
 from __future__ import annotations
 
 
-class AmpbenchError(Exception):
-    """Root of all ampbench errors."""
+class StageproofError(Exception):
+    """Root of all stageproof errors."""
 
     exit_status = 2
 
@@ -30,7 +30,7 @@ class AmpbenchError(Exception):
 # --- bad input files --------------------------------------------------------------------------
 
 
-class InputFileError(AmpbenchError, ValueError):
+class InputFileError(StageproofError, ValueError):
     """A file written by a user (board, fixture, station, profile, capture) is wrong.
 
     ``location`` is a dotted path to the offending field, e.g.
@@ -80,7 +80,7 @@ class CaptureFileError(InputFileError):
     kind = "capture file"
 
 
-class ValueParseError(AmpbenchError, ValueError):
+class ValueParseError(StageproofError, ValueError):
     """A component value or quantity could not be parsed (``4k7``, ``10n``, ``-3``)."""
 
     def __init__(self, text: str, reason: str, *, hint: str | None = None) -> None:
@@ -89,7 +89,7 @@ class ValueParseError(AmpbenchError, ValueError):
         super().__init__(f"cannot read value {text!r}: {reason}", hint=hint)
 
 
-class DesignError(AmpbenchError, ValueError):
+class DesignError(StageproofError, ValueError):
     """The circuit described cannot work as an amplifier (saturated at rest, cut off,
     cannot drive its load).  Raised by the model; loaders wrap it in BoardFileError."""
 
@@ -102,7 +102,7 @@ class DesignError(AmpbenchError, ValueError):
 # --- signal analysis ------------------------------------------------------------------------
 
 
-class AnalysisError(AmpbenchError, ValueError):
+class AnalysisError(StageproofError, ValueError):
     """A record cannot be analysed honestly (NaN samples, too few cycles, silent...)."""
 
 
@@ -113,7 +113,7 @@ class OverRangeError(AnalysisError):
 # --- instruments ----------------------------------------------------------------------------
 
 
-class InstrumentError(AmpbenchError, OSError):
+class InstrumentError(StageproofError, OSError):
     """Anything that goes wrong talking to an instrument.
 
     Carries the VISA ``resource`` and the ``command`` in flight, and the station
@@ -139,7 +139,7 @@ class InstrumentError(AmpbenchError, OSError):
             parts.append(f"resource={resource}")
         if command:
             parts.append(f"command={command!r}")
-        AmpbenchError.__init__(self, "; ".join(parts), hint=hint)
+        StageproofError.__init__(self, "; ".join(parts), hint=hint)
 
 
 class InstrumentTimeout(InstrumentError):
@@ -180,11 +180,11 @@ class IdentityMismatch(InstrumentError):
 # --- run ------------------------------------------------------------------------------------
 
 
-class SafetyError(AmpbenchError, RuntimeError):
+class SafetyError(StageproofError, RuntimeError):
     """A step would break a safety rule (level above the safe input, supply fault)."""
 
 
-class RunAborted(AmpbenchError, RuntimeError):
+class RunAborted(StageproofError, RuntimeError):
     """The sequence stopped before a verdict (operator interrupt, lost instrument)."""
 
     def __init__(self, reason: str, *, step: str | None = None) -> None:
@@ -194,11 +194,11 @@ class RunAborted(AmpbenchError, RuntimeError):
         super().__init__(msg)
 
 
-class StoreError(AmpbenchError, OSError):
+class StoreError(StageproofError, OSError):
     """The results store cannot be opened or written."""
 
 
-class FaultSpecError(AmpbenchError, ValueError):
+class FaultSpecError(StageproofError, ValueError):
     """A component fault or a setting for the simulated board is wrong (``R104:drift=1.3``)."""
 
     def __init__(self, spec: str, reason: str, *, hint: str | None = None) -> None:
@@ -210,7 +210,7 @@ class FaultSpecError(AmpbenchError, ValueError):
 # --- reports -------------------------------------------------------------------------------
 
 
-class ReportError(AmpbenchError, ValueError):
+class ReportError(StageproofError, ValueError):
     """A report cannot be made from what was asked: unknown serial or run, an empty date
     range, an output path that cannot be written, a missing optional library.
 

@@ -1,4 +1,4 @@
-"""``ampbench analyze CAPTURE``: offline analysis of a two-channel capture file."""
+"""``stageproof analyze CAPTURE``: offline analysis of a two-channel capture file."""
 
 from __future__ import annotations
 

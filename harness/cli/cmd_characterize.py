@@ -1,4 +1,4 @@
-"""``ampbench characterize``: level and frequency sweeps of a prototype against the model.
+"""``stageproof characterize``: level and frequency sweeps of a prototype against the model.
 
 Writes the run to the results store like any other (sweeps "level" and "frequency") and
 an HTML report (``-o``, one self-contained file) that overlays each measured curve on the
@@ -309,8 +309,8 @@ def render_html(result: CharacterizationResult) -> str:
             )
         )
     footer = e(
-        f"ampbench characterisation, {result.acquisitions} acquisitions, {result.elapsed_s:.1f} s"
+        f"stageproof characterisation, {result.acquisitions} acquisitions, {result.elapsed_s:.1f} s"
     )
     if not math.isfinite(result.elapsed_s):  # pragma: no cover - defensive
-        footer = "ampbench characterisation"
+        footer = "stageproof characterisation"
     return page(f"Characterisation {result.serial}", "".join(body), footer=footer)

@@ -1,4 +1,4 @@
-"""``ampbench demo``: test three demo boards on a simulated bench, no hardware needed.
+"""``stageproof demo``: test three demo boards on a simulated bench, no hardware needed.
 
 Starts the simulated bench itself (SCPI servers on 127.0.0.1, ephemeral ports, no
 latency), tests three boards of the demo type limits/demo-twin-preamp.toml (packaged in
@@ -17,7 +17,7 @@ from pathlib import Path
 
 DEMO_BOARD = "demo-twin-preamp.toml"
 DEMO_FIXTURE = "fixture-twin-preamp.toml"
-DEMO_DB = "ampbench-demo.db"
+DEMO_DB = "stageproof-demo.db"
 
 
 @dataclass(frozen=True)
@@ -95,7 +95,7 @@ def run(args: argparse.Namespace) -> int:
 
     console = Console()
     t0 = time.perf_counter()
-    tmp = tempfile.mkdtemp(prefix="ampbench-demo-")
+    tmp = tempfile.mkdtemp(prefix="stageproof-demo-")
     workdir = Path(tmp)
     try:
         results = run_demo(args.db, workdir, progress_console=console)
@@ -104,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
             import shutil
 
             shutil.rmtree(workdir, ignore_errors=True)
-    table = Table(title="ampbench demo: three boards of " + DEMO_BOARD)
+    table = Table(title="stageproof demo: three boards of " + DEMO_BOARD)
     table.add_column("serial")
     table.add_column("board")
     table.add_column("verdict")

@@ -1,4 +1,4 @@
-"""``ampbench diagnose SERIAL``: the most likely faulty components of a failed board.
+"""``stageproof diagnose SERIAL``: the most likely faulty components of a failed board.
 
 Reads the board's latest run (or ``--run ID``) from the results store read-only, loads the
 board file the run names (or ``--board``), warns when its digest differs from the run's, and

@@ -1,4 +1,4 @@
-"""``ampbench limits BOARD.toml``: the design limits of a board, from its model and tolerances.
+"""``stageproof limits BOARD.toml``: the design limits of a board, from its model and tolerances.
 
 Prints one table per channel (nominal, low, high of gain, clipping threshold, THD at the
 nominal level, supply current, low corner; which stage clips first and on which half-cycle of
@@ -179,5 +179,5 @@ def _print_tables(board, limits: BoardLimits) -> None:
     )
     console.print(
         f"limits digest {limits.digest}  (board file sha256 {prov.board_digest[:16]}…, "
-        f"ampbench {prov.software_version})"
+        f"stageproof {prov.software_version})"
     )

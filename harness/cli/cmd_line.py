@@ -1,4 +1,4 @@
-"""``ampbench line``: the production loop — scan, test, big verdict, next board.
+"""``stageproof line``: the production loop — scan, test, big verdict, next board.
 
 The operator's name is asked once; then serial numbers are read one line at a time
 (typed, or from a barcode scanner acting as a keyboard).  The verdict is drawn as a big
@@ -142,7 +142,7 @@ class TerminalUI:
             t.add_row("limits", info.limits_method)
         for role, idn in info.instruments.items():
             t.add_row(role, idn)
-        self.console.print(Panel(t, title="ampbench production line", expand=False))
+        self.console.print(Panel(t, title="stageproof production line", expand=False))
         self.console.print(
             "Scan or type a serial number and press Enter; quit, exit or Ctrl-C ends.",
             highlight=False,

@@ -1,10 +1,10 @@
-"""``ampbench report``: board report, production summary and table export.
+"""``stageproof report``: board report, production summary and table export.
 
-    ampbench report board   --db PATH (--serial SN | --run ID) [-o FILE.html] [--png DIR]
-    ampbench report summary --db PATH [--since DATE] [--until DATE] [--board PN] [-o FILE.html]
-    ampbench report export  --db PATH --format csv|parquet -o DIR [--since/--until/--board]
+    stageproof report board   --db PATH (--serial SN | --run ID) [-o FILE.html] [--png DIR]
+    stageproof report summary --db PATH [--since DATE] [--until DATE] [--board PN] [-o FILE.html]
+    stageproof report export  --db PATH --format csv|parquet -o DIR [--since/--until/--board]
 
-``ampbench report --db PATH --serial SN`` (no sub-command) is the board report.
+``stageproof report --db PATH --serial SN`` (no sub-command) is the board report.
 """
 
 from __future__ import annotations
@@ -111,7 +111,7 @@ def _cmd_board(args: argparse.Namespace) -> int:
         if parser is not None:
             parser.print_usage(sys.stderr)
         print(
-            "ampbench report: error: give --serial SN or --run ID, or a kind: board, summary, "
+            "stageproof report: error: give --serial SN or --run ID, or a kind: board, summary, "
             "export",
             file=sys.stderr,
         )

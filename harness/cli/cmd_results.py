@@ -1,4 +1,4 @@
-"""``ampbench results``: list and filter stored runs, or show one run's measurements.
+"""``stageproof results``: list and filter stored runs, or show one run's measurements.
 
 Reads the database read-only, so listing never creates a file or disturbs a station that
 is writing.  A table for people by default; ``--json`` and ``--csv`` for other programs.

@@ -1,4 +1,4 @@
-"""``ampbench run``: test one board on a station and store the verdict.
+"""``stageproof run``: test one board on a station and store the verdict.
 
 Exit status: 0 PASS, 1 FAIL, 2 a usage or setup error (bad file, unreachable instrument,
 unwritable database, aborted run).

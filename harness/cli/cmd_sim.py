@@ -1,4 +1,4 @@
-"""``ampbench sim serve BOARD.toml``: run the simulated bench until Ctrl-C / SIGTERM."""
+"""``stageproof sim serve BOARD.toml``: run the simulated bench until Ctrl-C / SIGTERM."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import threading
 from pathlib import Path
 from typing import Any
 
-from harness.errors import AmpbenchError
+from harness.errors import StageproofError
 from harness.files import load_board
 
 LOOPBACK = "127.0.0.1"
@@ -82,7 +82,7 @@ def _serve(
     board = load_board(args.board)
     if args.host != LOOPBACK:
         print(
-            f"ampbench: warning: listening on {args.host}, not loopback: anyone who can "
+            f"stageproof: warning: listening on {args.host}, not loopback: anyone who can "
             "reach this address can drive the simulated bench",
             file=sys.stderr,
         )
@@ -132,5 +132,5 @@ def _serve(
     return 0
 
 
-class _UsageError(AmpbenchError, ValueError):
+class _UsageError(StageproofError, ValueError):
     """A command-line value that cannot work (port, address)."""

@@ -1,8 +1,8 @@
-"""The ``ampbench`` command: one sub-command per module ``harness.cli.cmd_<name>``.
+"""The ``stageproof`` command: one sub-command per module ``harness.cli.cmd_<name>``.
 
 Each command module exposes ``register(subparsers)``, which adds its parser and sets
 ``func(args) -> int`` as the parser default.  ``main`` turns every
-:class:`~harness.errors.AmpbenchError` into one line on stderr and exit status 2, so a
+:class:`~harness.errors.StageproofError` into one line on stderr and exit status 2, so a
 user mistake never ends in a traceback.
 """
 
@@ -14,7 +14,7 @@ import sys
 from collections.abc import Sequence
 
 from harness import __version__
-from harness.errors import AmpbenchError
+from harness.errors import StageproofError
 
 #: Sub-command modules, in the order ``--help`` lists them.
 COMMANDS: tuple[str, ...] = (
@@ -37,11 +37,11 @@ class _Parser(argparse.ArgumentParser):
 
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(
-        prog="ampbench",
+        prog="stageproof",
         description="Automated bench test of amplifier boards against limits computed "
         "from a model of the board.",
     )
-    parser.add_argument("--version", action="version", version=f"ampbench {__version__}")
+    parser.add_argument("--version", action="version", version=f"stageproof {__version__}")
     parser.add_argument("-v", "--verbose", action="store_true", help="log instrument traffic")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
@@ -67,11 +67,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
     try:
         return int(args.func(args) or 0)
-    except AmpbenchError as exc:
-        print(f"ampbench: error: {exc}", file=sys.stderr)
+    except StageproofError as exc:
+        print(f"stageproof: error: {exc}", file=sys.stderr)
         return exc.exit_status
     except KeyboardInterrupt:
-        print("ampbench: interrupted", file=sys.stderr)
+        print("stageproof: interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0

@@ -62,7 +62,7 @@ def add_bench_files(p: argparse.ArgumentParser, *, serial_help: str | None = Non
 
 
 def add_db(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--db", default=None, help="results database (default: ampbench-results.db)")
+    p.add_argument("--db", default=None, help="results database (default: stageproof-results.db)")
 
 
 def add_settle_wait(

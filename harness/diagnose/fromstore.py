@@ -1,6 +1,6 @@
 """Diagnosis of a stored run: read its measurements, check the board file, rank the faults.
 
-This is the part the report package and ``ampbench diagnose`` call; the ranking itself
+This is the part the report package and ``stageproof diagnose`` call; the ranking itself
 (:mod:`harness.diagnose.rank`) takes plain measurements and does no I/O.
 """
 

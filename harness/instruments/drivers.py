@@ -1,7 +1,7 @@
 """Role drivers: what the sequencer asks for, in SI units, turned into profile operations.
 
 Each driver speaks only through its :class:`~harness.instruments.session.Session` and the
-session's profile, so adapting ampbench to another instrument means editing a TOML file,
+session's profile, so adapting stageproof to another instrument means editing a TOML file,
 not this code.  Drivers remember the settings they sent and replay them after a
 reconnect (an instrument that was power-cycled comes back in its reset state).
 """
@@ -18,7 +18,7 @@ from typing import Any, TypeVar
 
 import numpy as np
 
-from harness.errors import AmpbenchError, ConnectionLost, InstrumentError, MalformedReply
+from harness.errors import ConnectionLost, InstrumentError, MalformedReply, StageproofError
 from harness.instruments.scpi import DATATYPES, SCPI_FORMAT, channel_list, parse_bool, parse_number
 from harness.instruments.session import Session
 
@@ -139,7 +139,7 @@ class _SwitchedOutputs(_Driver):
                 self._state[("output", o)] = ("output_off", {"output": o})
                 if self.is_on(o):  # read back: an ignored command must not pass as off
                     raise self._err(f"output {o} still reports ON after output_off")
-            except (AmpbenchError, OSError) as exc:
+            except (StageproofError, OSError) as exc:
                 ok = False
                 log.error(
                     "%s %s output %d may still be ON: %s", self.session.resource, self.role, o, exc

@@ -47,7 +47,7 @@ def channel_netlist(
     p = {k: float(v[0]) for k, v in nominal_arrays(channel_parameters(board, ch), params).items()}
     f = frequency_hz or board.conditions.frequency_hz
     lines = [
-        f"* ampbench: {board.name}, channel {ch.name} (from {board.source})",
+        f"* stageproof: {board.name}, channel {ch.name} (from {board.source})",
         f".options temp={TEMPERATURE_K - 273.15:.2f} tnom={TEMPERATURE_K - 273.15:.2f}",
         f"VCC vcc 0 DC {_v(p['supply.positive_v'])}",
     ]

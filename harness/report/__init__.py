@@ -4,9 +4,9 @@ A layer above the store: it reads through :mod:`harness.store` and uses harness.
 pure analysis for spectra; it never talks to instruments, the simulator or the sequencer.
 Pages are single self-contained HTML files (inline CSS and SVG, no fetches).
 
-* :func:`write_board_report` (``ampbench report board``)
-* :func:`write_summary_report` (``ampbench report summary``)
-* :func:`export_tables` (``ampbench report export``)
+* :func:`write_board_report` (``stageproof report board``)
+* :func:`write_summary_report` (``stageproof report summary``)
+* :func:`export_tables` (``stageproof report export``)
 """
 
 from __future__ import annotations

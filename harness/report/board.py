@@ -83,7 +83,7 @@ def load_board_report(
             raise ReportError(
                 "--run",
                 f"there is no run {run_id} in this results database",
-                hint="list the runs with `ampbench results --db PATH` to find the id",
+                hint="list the runs with `stageproof results --db PATH` to find the id",
             ) from None
     else:
         assert serial is not None
@@ -122,14 +122,14 @@ def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> B
     """The report with the run's likely faulty components ranked (or the reason there is no
     ranking: the board file moved, the run holds nothing to diagnose from)."""
     from harness.diagnose import diagnose_run
-    from harness.errors import AmpbenchError
+    from harness.errors import StageproofError
     from harness.files import load_board
 
     run = report.run
     try:
         board = load_board(run.board_file, validate=False)
         result: Any = diagnose_run(store, run.run_id, board, top=top)
-    except AmpbenchError as exc:
+    except StageproofError as exc:
         result = f"no fault diagnosis: {exc}"
     return dataclasses.replace(report, diagnosis=result)
 
@@ -650,5 +650,5 @@ def render_board_html(report: BoardReport, plots: dict[str, list[Plot]] | None =
         "§4.2: U is the expanded uncertainty (k = 2); “conditional” means the value lies "
         "within U of a limit.  Shaded areas on the plots are the acceptable ranges.</p>"
     )
-    footer = f"ampbench {h.e(__version__)} · board report · run {run.run_id}"
+    footer = f"stageproof {h.e(__version__)} · board report · run {run.run_id}"
     return h.page(f"Board report {run.serial} (run {run.run_id})", "".join(parts), footer=footer)

@@ -27,7 +27,7 @@ def _require_pyarrow() -> None:
         raise ReportError(
             "--format parquet",
             "Parquet export needs pyarrow, which is not installed",
-            hint="pip install 'ampbench[parquet]' (or use --format csv)",
+            hint="pip install 'stageproof[parquet]' (or use --format csv)",
         ) from None
 
 

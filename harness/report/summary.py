@@ -376,5 +376,5 @@ def render_summary_html(s: SummaryReport, plots: list[Plot] | None = None) -> st
     parts.append('<h2>Distributions</h2><div class="plots">')
     parts.extend(f"<figure>{render_svg(p)}</figure>" for p in plots)
     parts.append("</div>")
-    footer = f"ampbench {h.e(__version__)} · summary of {h.e(s.db)}"
+    footer = f"stageproof {h.e(__version__)} · summary of {h.e(s.db)}"
     return h.page("Production summary", "".join(parts), footer=footer)

@@ -36,7 +36,7 @@ OUTCOMES: tuple[str, ...] = (
     "info",
     "not resolvable",
 )
-#: Expansion factor of every U in ampbench (about 95 % coverage for a normal distribution).
+#: Expansion factor of every U in stageproof (about 95 % coverage for a normal distribution).
 COVERAGE_K = 2.0
 
 

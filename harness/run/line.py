@@ -26,7 +26,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
-from harness.errors import AmpbenchError, InstrumentError, RunAborted, StoreError, ValueParseError
+from harness.errors import InstrumentError, RunAborted, StageproofError, StoreError, ValueParseError
 from harness.run.progress import Progress
 from harness.run.runner import Prepared, validate_serial
 from harness.run.safety import Terminated
@@ -345,7 +345,7 @@ class ProductionLine:
             self._close_instruments()
             try:
                 self.instruments = self._connect(self.prep.station)
-            except AmpbenchError as exc:
+            except StageproofError as exc:
                 return self._recover(exc)
             self.summary.reconnects += 1
             return True
@@ -359,7 +359,7 @@ class ProductionLine:
             self.summary.ended_by = "store error"
             self.ui.message(f"results store failed: {exc}", "error")
             return False
-        except AmpbenchError as exc:
+        except StageproofError as exc:
             self._aborted(serial, before, str(exc))
             if _instrument_failure(exc):
                 return self._recover(exc)
@@ -391,7 +391,7 @@ class ProductionLine:
             runs = self.store.list_runs(serial=serial, limit=1)
             if runs and runs[0].status == "aborted" and runs[0].retest == retest:
                 run_id = runs[0].run_id
-        except AmpbenchError:  # the summary still counts the board
+        except StageproofError:  # the summary still counts the board
             pass
         outcome = BoardOutcome(serial, "ABORTED", retest, run_id, reason)
         self.summary.outcomes.append(outcome)
@@ -408,7 +408,7 @@ class ProductionLine:
             self._close_instruments()
             try:
                 self.instruments = self._connect(self.prep.station)
-            except AmpbenchError as again:
+            except StageproofError as again:
                 self.ui.message(f"reconnect failed: {again}", "error")
                 exc = again
                 continue

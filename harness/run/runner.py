@@ -1,4 +1,4 @@
-"""From file names to a stored verdict: what ``ampbench run`` and ``ampbench demo`` share.
+"""From file names to a stored verdict: what ``stageproof run`` and ``stageproof demo`` share.
 
 Order matters for "nothing written half-way": every input is read and validated (serial
 number, board, limits, station, fixture, roles), then the store is opened (an unwritable

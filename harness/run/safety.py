@@ -27,7 +27,7 @@ from contextlib import contextmanager
 from types import FrameType
 from typing import Any, Literal
 
-from harness.errors import AmpbenchError, RunAborted, SafetyError
+from harness.errors import RunAborted, SafetyError, StageproofError
 
 log = logging.getLogger("harness.run.safety")
 
@@ -296,5 +296,5 @@ def sigterm_raises() -> Iterator[None]:
 def is_abort(exc: BaseException) -> bool:
     """Exceptions that abort a run rather than fail a board."""
     return isinstance(exc, KeyboardInterrupt | RunAborted) or (
-        isinstance(exc, AmpbenchError) and not isinstance(exc, SafetyError)
+        isinstance(exc, StageproofError) and not isinstance(exc, SafetyError)
     )

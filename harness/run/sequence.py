@@ -33,7 +33,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from harness.errors import AmpbenchError, FixtureFileError
+from harness.errors import FixtureFileError, StageproofError
 from harness.measure import (
     RecordAnalysis,
     SearchStep,
@@ -960,7 +960,7 @@ class Sequencer(BoardRun):
         self.validate()
         self.run_id = self.run_log.begin(self.header())
         retest = 0
-        with contextlib.suppress(AttributeError, AmpbenchError):  # a store without get_run
+        with contextlib.suppress(AttributeError, StageproofError):  # a store without get_run
             retest = int(self.store.get_run(self.run_id).retest)
         status, reason, error = run_guarded(
             self._steps, self._shutdown, lambda: self.step_name, self.safe

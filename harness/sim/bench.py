@@ -3,7 +3,7 @@
     with SimBench(board, faults=["R104:drift=1.3"]) as bench:   # starts the servers
         bench.write_station("station.toml")
         bench.write_fixture("fixture.toml")
-        ...  # run ampbench against bench.resources
+        ...  # run stageproof against bench.resources
         bench.generator_log                                     # for the safety tests
 
 Without ``start()`` (or the ``with``) the instruments are still usable in-process:
@@ -254,7 +254,7 @@ class SimBench:
             )
         profiles = {**_PROFILES, **(profiles or {})}
         lines = [
-            "# Station file written by `ampbench sim serve`: the simulated bench's instruments.",
+            "# Station file written by `stageproof sim serve`: the simulated bench's instruments.",
             "",
             "[station]",
             f'name = "{name}"',
@@ -295,7 +295,7 @@ class SimBench:
         i_q = float(self.sim.supply_current_a())
         limit = max(0.02, math.ceil(4 * i_q * 100) / 100)
         lines = [
-            "# Fixture file written by `ampbench sim serve`: how the simulated bench is wired.",
+            "# Fixture file written by `stageproof sim serve`: how the simulated bench is wired.",
             "# Generator output 1 drives every channel input in parallel; scope input 1 probes",
             "# the common input, inputs 2.. the channel outputs in board order; relay <c><nn>",
             "# routes test point nn of channel c to the DMM.",

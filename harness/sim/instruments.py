@@ -104,7 +104,7 @@ class GeneratorEvent:
 class SimGenerator(_BenchDevice):
     """Sine generator, one output, 50 Ω, amplitude in Vpp at high impedance."""
 
-    IDN = ("ampbench-sim", "SIG-1")
+    IDN = ("stageproof-sim", "SIG-1")
     OUTPUTS = 1
     OUTPUT_OHM = 50.0
     MAX_VPP = 20.0
@@ -289,7 +289,7 @@ class _Record:
 class SimScope(_BenchDevice):
     """Multi-input digitiser with an 8-bit (configurable) ADC model."""
 
-    IDN = ("ampbench-sim", "DIG-4")
+    IDN = ("stageproof-sim", "DIG-4")
 
     def __init__(self, world: World, settings: ScopeSettings | None = None, **kw: Any) -> None:
         self.settings = settings or ScopeSettings()
@@ -302,7 +302,7 @@ class SimScope(_BenchDevice):
         self.record: _Record | None = None
         super().__init__(world, **kw)
         if s.inputs > 4:
-            self.IDN = ("ampbench-sim", f"DIG-{s.inputs}")
+            self.IDN = ("stageproof-sim", f"DIG-{s.inputs}")
 
     def reset(self) -> None:
         self.inputs = {n: _Input() for n in range(1, self.settings.inputs + 1)}
@@ -632,7 +632,7 @@ class _TriggerSource(Choice):
 class SimSwitch(_BenchDevice):
     """Relay switch: channels ``<card><relay>``, cards 1-9, relays 01-40."""
 
-    IDN = ("ampbench-sim", "SW-40")
+    IDN = ("stageproof-sim", "SW-40")
     SETTLE_S = 0.005
 
     def reset(self) -> None:
@@ -682,7 +682,7 @@ class SimSwitch(_BenchDevice):
 class SimDmm(_BenchDevice):
     """DC voltmeter on the switch's common line, 10 MΩ, ranges 0.1-1000 V."""
 
-    IDN = ("ampbench-sim", "DVM-6")
+    IDN = ("stageproof-sim", "DVM-6")
     RANGES_V = (0.1, 1.0, 10.0, 100.0, 1000.0)
     NOISE_V = 10e-6
     MEASURE_S = 0.02  # one power-line cycle of integration, when latency is on
@@ -751,7 +751,7 @@ class SimSupply(_BenchDevice):
     rail's magnitude on a split-supply board.  Both outputs report the board's current
     (the op-amps' quiescent current flows from one rail to the other)."""
 
-    IDN = ("ampbench-sim", "PSU-2")
+    IDN = ("stageproof-sim", "PSU-2")
     OUTPUTS = 2
     VOLT = Num("V", 0.0, 30.0, 0.0)
     CURR = Num("A", 0.0, 3.0, 0.1)

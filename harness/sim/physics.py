@@ -38,7 +38,7 @@ from typing import Any
 
 import numpy as np
 
-from harness.errors import AmpbenchError, FaultSpecError
+from harness.errors import FaultSpecError, StageproofError
 from harness.model.board import Board
 from harness.sim.physics_circuit import (
     Circuit,
@@ -75,7 +75,7 @@ _TABLE_POINTS = 1 << 15  # band-limited upsampling table for evaluate()
 _CACHE_SIZE = 16  # each response holds a 2^15-point table (~0.5 MB): keep few
 
 
-class SimulationError(AmpbenchError, ArithmeticError):
+class SimulationError(StageproofError, ArithmeticError):
     """The simulated board's circuit could not be solved (reported, never a traceback)."""
 
 

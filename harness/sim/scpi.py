@@ -472,7 +472,7 @@ class ScpiDevice:
     an :class:`Outcome` for transports; ``handle`` is the in-process shortcut.
     """
 
-    IDN: ClassVar[tuple[str, str]] = ("ampbench-sim", "GENERIC")
+    IDN: ClassVar[tuple[str, str]] = ("stageproof-sim", "GENERIC")
     COMMANDS: ClassVar[tuple[Command, ...]] = ()
     ERROR_QUEUE_SIZE: ClassVar[int] = 16
 

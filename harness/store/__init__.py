@@ -26,7 +26,7 @@ from harness.store.rows import (
 from harness.store.sqlite import BUSY_TIMEOUT_S, MIGRATIONS, SCHEMA_VERSION, SQLiteStore
 
 #: Database used when no --db is given: in the current folder.
-DEFAULT_DB = "ampbench-results.db"
+DEFAULT_DB = "stageproof-results.db"
 
 
 def open_store(
@@ -49,7 +49,7 @@ def open_store(
         if scheme.startswith(("postgresql", "postgres")):
             raise StoreError(
                 "a PostgreSQL results store is not available yet",
-                hint="use an SQLite file path (e.g. --db ampbench-results.db) for now",
+                hint="use an SQLite file path (e.g. --db stageproof-results.db) for now",
             )
         if scheme != "sqlite":
             raise StoreError(

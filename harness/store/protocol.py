@@ -1,4 +1,4 @@
-"""The one interface the rest of ampbench sees of the results store.
+"""The one interface the rest of stageproof sees of the results store.
 
 SQLite (one file, several station processes) is the only backend today; a server
 database for lines with many stations will implement this same Protocol, so the

@@ -187,7 +187,7 @@ def store_error(exc: sqlite3.Error, path: Path, doing: str, timeout_s: float) ->
     if "locked" in low or "busy" in low:
         return StoreError(
             f"results database {path} stayed locked for {timeout_s:g} s ({doing})",
-            hint="another process holds a long transaction; retry, or look for a hung ampbench",
+            hint="another process holds a long transaction; retry, or look for a hung stageproof",
         )
     if "not a database" in low or "malformed" in low:
         return StoreError(
@@ -245,7 +245,7 @@ class SQLiteStore:
         if p.is_dir():
             raise StoreError(
                 f"results database path {p} is a folder",
-                hint=f"give a file path, e.g. {p / 'ampbench-results.db'}",
+                hint=f"give a file path, e.g. {p / 'stageproof-results.db'}",
             )
         if self.readonly:
             if not p.exists():
@@ -306,8 +306,8 @@ class SQLiteStore:
             if version > SCHEMA_VERSION:
                 raise StoreError(
                     f"results database {self.path} has schema version {version}; this "
-                    f"ampbench knows up to {SCHEMA_VERSION}",
-                    hint="upgrade ampbench on this station",
+                    f"stageproof knows up to {SCHEMA_VERSION}",
+                    hint="upgrade stageproof on this station",
                 )
             if version == 0:
                 tables = conn.execute(
@@ -315,7 +315,7 @@ class SQLiteStore:
                 ).fetchone()[0]
                 if tables:
                     raise StoreError(
-                        f"{self.path} is an SQLite file but not an ampbench results database",
+                        f"{self.path} is an SQLite file but not an stageproof results database",
                         hint="choose another --db",
                     )
             for step in range(version + 1, SCHEMA_VERSION + 1):
@@ -338,13 +338,13 @@ class SQLiteStore:
         if version != SCHEMA_VERSION:
             if version == 0:
                 raise StoreError(
-                    f"{self.path} is not an ampbench results database",
+                    f"{self.path} is not an stageproof results database",
                     hint="pass --db PATH of a results database",
                 )
             raise StoreError(
-                f"results database {self.path} has schema version {version}, this ampbench "
+                f"results database {self.path} has schema version {version}, this stageproof "
                 f"reads version {SCHEMA_VERSION}",
-                hint="open it once for writing (any run) to migrate, or upgrade ampbench",
+                hint="open it once for writing (any run) to migrate, or upgrade stageproof",
             )
 
     # --- plumbing -------------------------------------------------------------------------
@@ -682,7 +682,7 @@ class SQLiteStore:
         if row is None:
             raise StoreError(
                 f"no run {run_id} in {self.path}",
-                hint="list runs with `ampbench results` to find its id",
+                hint="list runs with `stageproof results` to find its id",
             )
         return self._run_row(row)
 

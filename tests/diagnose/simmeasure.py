@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from harness.diagnose.names import freq_quantity, key
-from harness.errors import AmpbenchError, AnalysisError
+from harness.errors import AnalysisError, StageproofError
 from harness.measure import ClipCriterion, analyze_uniform, next_search_level, plan_coherent
 from harness.model.board import Board
 from harness.model.design import design_channel
@@ -118,7 +118,7 @@ def measure_board(
         # clipping threshold search, started at the model's prediction, like the sequencer
         try:
             start = design_channel(board, c).thd_clip_input_vrms
-        except AmpbenchError:  # a faulted board the model refuses: start from a guess
+        except StageproofError:  # a faulted board the model refuses: start from a guess
             start = cond.nominal_input_vrms * 4
         points = [nominal]
         step = None

@@ -244,7 +244,7 @@ def test_from_rows_reads_the_sequencer_names(twin: _Bench) -> None:
 
 
 def test_diagnose_run_and_cli(twin: _Bench, tmp_path, capsys) -> None:
-    """diagnose_run reads a stored run; ampbench diagnose --json names the injected part
+    """diagnose_run reads a stored run; stageproof diagnose --json names the injected part
     first and warns when the board file's digest differs from the run's."""
     db = tmp_path / "r.db"
     meas = twin.measure("R103:drift=0.6")

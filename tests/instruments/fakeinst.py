@@ -62,7 +62,7 @@ class _Server(socketserver.ThreadingTCPServer):
 
 
 class FakeInstrument:
-    def __init__(self, idn: str = "ampbench-test,FAKE-1,SN0001,1.0") -> None:
+    def __init__(self, idn: str = "stageproof-test,FAKE-1,SN0001,1.0") -> None:
         self.idn = idn
         self.lines: list[str] = []
         self.errors: deque[tuple[int, str]] = deque()

@@ -95,7 +95,7 @@ def test_simulator_refusal_is_a_scpi_error(sim, rm):
 
 def test_wrong_instrument_at_a_resource(sim, rm, tmp_path):
     station_text = (tmp_path / "station.toml").read_text()
-    text = station_text.replace("ampbench-sim,DIG-4", "ampbench-sim,SIG-1")
+    text = station_text.replace("stageproof-sim,DIG-4", "stageproof-sim,SIG-1")
     bad = tmp_path / "bad.toml"
     bad.write_text(text)
     with pytest.raises(IdentityMismatch) as ei:

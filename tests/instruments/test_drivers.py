@@ -335,7 +335,11 @@ def _station(fakes: dict[str, FakeInstrument], **extra) -> dict:
     doc = {
         "station": {"name": "t", "timeout_ms": 500, "retries": 0},
         "instrument": {
-            role: {"resource": f.resource, "profile": f"scpi-{role}", "expect_idn": "ampbench-test"}
+            role: {
+                "resource": f.resource,
+                "profile": f"scpi-{role}",
+                "expect_idn": "stageproof-test",
+            }
             for role, f in fakes.items()
         },
     }

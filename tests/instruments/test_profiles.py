@@ -153,7 +153,7 @@ def test_example_station_loads():
     assert set(st.instruments) == set(ROLES)
     assert st.visa_library == "@py" and st.timeout_ms == 5000
     assert st.instruments["scope"].profile.role == "scope"
-    assert st.instruments["generator"].expect_idn == "ampbench-sim,SIG-1"
+    assert st.instruments["generator"].expect_idn == "stageproof-sim,SIG-1"
 
 
 @pytest.mark.parametrize(

@@ -115,10 +115,10 @@ def test_error_reply_malformed(reply):
 def test_idn_four_fields():
     """IEEE 488.2 §10.14 (clause number unverified, NOTES.md): *IDN? gives maker, model,
     serial, firmware separated by commas."""
-    ident = parse_idn("ampbench-sim,DIG-4,SN042,1.2.3\n")
-    assert ident == Identity("ampbench-sim", "DIG-4", "SN042", "1.2.3")
-    assert str(ident) == "ampbench-sim,DIG-4,SN042,1.2.3"
-    for bad in ("ampbench-sim,DIG-4,SN042", "a,b,c,d,e", ""):
+    ident = parse_idn("stageproof-sim,DIG-4,SN042,1.2.3\n")
+    assert ident == Identity("stageproof-sim", "DIG-4", "SN042", "1.2.3")
+    assert str(ident) == "stageproof-sim,DIG-4,SN042,1.2.3"
+    for bad in ("stageproof-sim,DIG-4,SN042", "a,b,c,d,e", ""):
         with pytest.raises(MalformedReply, match="fields"):
             parse_idn(bad)
 
@@ -126,17 +126,17 @@ def test_idn_four_fields():
 @pytest.mark.parametrize(
     ("expected", "ok"),
     [
-        ("ampbench-sim,DIG-4", True),
-        ("AMPBENCH-SIM,dig-4", True),
-        ("ampbench-sim", True),
-        ("ampbench-sim,SIG-1", False),
+        ("stageproof-sim,DIG-4", True),
+        ("STAGEPROOF-SIM,dig-4", True),
+        ("stageproof-sim", True),
+        ("stageproof-sim,SIG-1", False),
         (",,SN042", True),
         (",,SN043", False),
-        ("ampbench-sim,DIG-4,SN042,1.2.3,x", False),
+        ("stageproof-sim,DIG-4,SN042,1.2.3,x", False),
     ],
 )
 def test_identity_matches_leading_fields(expected, ok):
-    assert Identity("ampbench-sim", "DIG-4", "SN042", "1.2.3").matches(expected) is ok
+    assert Identity("stageproof-sim", "DIG-4", "SN042", "1.2.3").matches(expected) is ok
 
 
 @pytest.mark.parametrize(

@@ -40,7 +40,7 @@ def _session(fake, rm, profile=GEN, **kw) -> Session:
 
 def test_open_identifies_and_clears_status(fake, rm):
     """IEEE 488.2: *CLS clears the error queue before work starts; *IDN? four fields."""
-    with _session(fake, rm, expect_idn="ampbench-test,FAKE-1") as s:
+    with _session(fake, rm, expect_idn="stageproof-test,FAKE-1") as s:
         assert s.identity is not None and s.identity.model == "FAKE-1"
         assert fake.sent(skip_common=False)[:2] == ["*CLS", "*IDN?"]
 
@@ -168,7 +168,7 @@ def test_power_cycle_with_no_retries_raises_then_recovers(fake, rm):
 
 
 def test_wrong_identity_is_refused(fake, rm):
-    s = _session(fake, rm, expect_idn="ampbench-test,SCOPE-9")
+    s = _session(fake, rm, expect_idn="stageproof-test,SCOPE-9")
     with pytest.raises(IdentityMismatch) as ei:
         s.open()
     assert "FAKE-1" in str(ei.value) and ei.value.resource == fake.resource
@@ -176,8 +176,8 @@ def test_wrong_identity_is_refused(fake, rm):
 
 
 def test_identity_changed_after_power_cycle_is_refused(fake, rm):
-    with _session(fake, rm, expect_idn="ampbench-test,FAKE-1") as s:
-        fake.idn = "ampbench-test,OTHER-2,SN9,1.0"
+    with _session(fake, rm, expect_idn="stageproof-test,FAKE-1") as s:
+        fake.idn = "stageproof-test,OTHER-2,SN9,1.0"
         fake.restart()
         with pytest.raises(IdentityMismatch):
             s.query("*IDN?")

@@ -1,4 +1,4 @@
-"""``ampbench characterize`` on the simulated bench.
+"""``stageproof characterize`` on the simulated bench.
 
 External checks: the low −3 dB corner is where the gain is 20·log10(1/√2) = −3.01 dB
 below mid-band (definition of the half-power point, common practice); the measured one

@@ -1,4 +1,4 @@
-"""``ampbench line`` driven through its stdin, as a barcode scanner or a keyboard would.
+"""``stageproof line`` driven through its stdin, as a barcode scanner or a keyboard would.
 
 The loop runs in a child process (``python -m harness.cli.main line ...``) against a
 SimBench started by the test.  External facts checked: a USB barcode scanner in keyboard

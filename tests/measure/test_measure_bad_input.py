@@ -85,7 +85,7 @@ def test_bad_records_through_cli_exit_2(case, tmp_path, capsys):
     np.savez(path, time_s=t, input_v=x, output_v=y)
     assert main(["analyze", str(path), "--json"]) == 2
     err = capsys.readouterr().err
-    assert err.startswith("ampbench: error:") and "Traceback" not in err
+    assert err.startswith("stageproof: error:") and "Traceback" not in err
     assert len(err.strip().splitlines()) == 1
 
 
@@ -174,4 +174,4 @@ def test_cli_bad_option_values_exit_2(tmp_path, capsys):
     assert main(["analyze", str(p), "--bandwidth", "100"]) == 2
     assert main(["analyze", str(p), "--k-max", "0"]) == 2
     err = capsys.readouterr().err
-    assert "Traceback" not in err and err.count("ampbench: error:") == 3
+    assert "Traceback" not in err and err.count("stageproof: error:") == 3

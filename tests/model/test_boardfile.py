@@ -1,5 +1,5 @@
 """Board files: the demo boards load and are sound; bad boards give one clear error naming the
-file, channel, stage and field, and ``ampbench limits`` exits with status 2 without a traceback.
+file, channel, stage and field, and ``stageproof limits`` exits with status 2 without a traceback.
 """
 
 from __future__ import annotations

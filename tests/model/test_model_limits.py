@@ -237,7 +237,7 @@ def test_second_inverting_stage_flips_clip_side(tmp_path) -> None:
 
 
 def test_cli_limits_json(capsys) -> None:
-    """``ampbench limits --json`` prints per channel gain_db, clip_input_vrms (nominal, low,
+    """``stageproof limits --json`` prints per channel gain_db, clip_input_vrms (nominal, low,
     high), thd_percent (nominal, high), clip_stage, clip_side and the provenance."""
     assert main(["limits", TWIN, "--samples", "300", "--seed", "5", "--json"]) == 0
     doc = json.loads(capsys.readouterr().out)

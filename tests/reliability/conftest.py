@@ -1,6 +1,6 @@
 """Reliability suite settings: CI counts by default, soak counts with ``--soak``.
 
-``pytest tests/reliability --soak`` or ``AMPBENCH_SOAK=1 pytest tests/reliability`` scales
+``pytest tests/reliability --soak`` or ``STAGEPROOF_SOAK=1 pytest tests/reliability`` scales
 every count up (kills, fuzz cases, concurrent runs, soak boards).  The option is read at
 configure time and published through the environment, so the test modules can size their
 parametrisations and hypothesis settings when they are imported.
@@ -18,13 +18,13 @@ def pytest_addoption(parser: pytest.Parser) -> None:
         "--soak",
         action="store_true",
         default=False,
-        help="reliability suite: run the long soak counts (also AMPBENCH_SOAK=1)",
+        help="reliability suite: run the long soak counts (also STAGEPROOF_SOAK=1)",
     )
 
 
 def pytest_configure(config: pytest.Config) -> None:
     if config.getoption("--soak", default=False):
-        os.environ["AMPBENCH_SOAK"] = "1"
+        os.environ["STAGEPROOF_SOAK"] = "1"
 
 
 def _preload_hypothesis_patching() -> None:

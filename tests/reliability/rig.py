@@ -26,8 +26,8 @@ PART_NUMBER = "AB-DP1-REL"
 
 
 def soak_mode() -> bool:
-    """True when the long counts were asked for (``--soak`` or ``AMPBENCH_SOAK=1``)."""
-    return os.environ.get("AMPBENCH_SOAK", "").strip() not in ("", "0")
+    """True when the long counts were asked for (``--soak`` or ``STAGEPROOF_SOAK=1``)."""
+    return os.environ.get("STAGEPROOF_SOAK", "").strip() not in ("", "0")
 
 
 def scaled(ci: int, soak: int) -> int:

@@ -1,9 +1,9 @@
 """The production loop used by the soak test and benchmarks/soak.py.
 
-The simulated bench runs in a process of its own (``ampbench sim serve``), as instruments
+The simulated bench runs in a process of its own (``stageproof sim serve``), as instruments
 do on a real bench, so the memory measured is the harness's, not the simulator's caches.
 
-Until ``ampbench line`` exists: one process, instruments connected once, the run layer's
+Until ``stageproof line`` exists: one process, instruments connected once, the run layer's
 per-board function (harness.run.sequence.run_board) called for board after board on one
 simulated bench and one results database, with RSS (psutil) and open file descriptors
 sampled every ``every`` boards.  Most boards get the short sequence (1000-point records,
@@ -45,7 +45,7 @@ class SoakResult:
 
 @contextmanager
 def served_bench(board_file: Path, folder: Path, *, timeout_ms: int = 2000) -> Iterator[Path]:
-    """``ampbench sim serve`` in a child process; yields its station file (short timeouts)."""
+    """``stageproof sim serve`` in a child process; yields its station file (short timeouts)."""
     from tests.reliability.rig import short_station
 
     station = folder / "station-served.toml"

@@ -1,4 +1,4 @@
-"""Crash durability: ``ampbench run`` killed with SIGKILL at random moments loses nothing.
+"""Crash durability: ``stageproof run`` killed with SIGKILL at random moments loses nothing.
 
 Each kill is a real subprocess ``python -m harness.cli.main run ...`` against one simulated
 bench started by the test, killed with SIGKILL (no handler, no ``finally``: what a power cut
@@ -62,7 +62,7 @@ _STEP = re.compile(r"^> (?P<step>\w+):")
 
 
 class _Run:
-    """One ``ampbench run`` subprocess whose stdout is read line by line as it comes."""
+    """One ``stageproof run`` subprocess whose stdout is read line by line as it comes."""
 
     def __init__(self, cmd: list[str], env: dict[str, str]) -> None:
         self.proc = subprocess.Popen(

@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harness.errors import AmpbenchError, BoardFileError
+from harness.errors import BoardFileError, StageproofError
 from harness.files import load_board
 from harness.model.board import Board, board_from_dict
 
@@ -102,7 +102,7 @@ def test_mutated_board_gives_only_typed_errors(board_path: Path, data: st.DataOb
         paths = _paths(doc) or [("board",)]
     try:
         board = board_from_dict(doc, str(board_path))
-    except AmpbenchError as exc:
+    except StageproofError as exc:
         assert str(exc)  # every error says something
         assert isinstance(exc, ValueError)
         return

@@ -4,7 +4,7 @@ Targets: the SCPI reply parsers and the definite-length block parser (bytes from
 instrument), the fixture, station and profile loaders and the capture-file reader (files
 edited by hand).  Method: property-based testing (hypothesis): raw bytes, and mutations of
 the shipped example files (delete a field, replace a value with junk).  Whatever comes in,
-the reader returns a value or raises an AmpbenchError subclass (harness.errors); never
+the reader returns a value or raises an StageproofError subclass (harness.errors); never
 another exception.  Block parsing is checked against IEEE 488.2 §8.7.9 (definite length
 ``#<n><count><bytes>``): whenever it returns, the payload is exactly ``count`` bytes and
 ``consumed`` is header plus payload.  Each target runs FUZZ_CASES generated cases (README).
@@ -24,7 +24,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harness.errors import AmpbenchError
+from harness.errors import StageproofError
 from harness.instruments import scpi
 from tests.reliability.rig import REPO, scaled, write_rig
 
@@ -101,10 +101,10 @@ def _mutated(doc: dict, data: st.DataObject) -> dict:
 
 
 def _typed_only(fn: Any, *args: Any, **kw: Any) -> Any:
-    """Call a reader: a value or an AmpbenchError is fine, anything else fails."""
+    """Call a reader: a value or an StageproofError is fine, anything else fails."""
     try:
         return fn(*args, **kw)
-    except AmpbenchError as exc:
+    except StageproofError as exc:
         assert str(exc)
         return exc
 
@@ -305,7 +305,7 @@ def test_capture_csv(tmp_path: Path, header: bool, lines: list[str]) -> None:
     body = ("time_s,input_v,output_v\n" if header else "") + "\n".join(lines)
     path.write_text(body, encoding="utf-8", errors="surrogatepass")
     out = _typed_only(read_capture, path)
-    if not isinstance(out, AmpbenchError):
+    if not isinstance(out, StageproofError):
         assert out.time_s.size == out.input_v.size == out.output_v.size >= 8
         assert np.isfinite(out.output_v).all()
 

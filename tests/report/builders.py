@@ -46,8 +46,8 @@ def header(serial: str, part_number: str = "AB-100") -> RunHeader:
         fixture="fixture-twin",
         operator="op-17",
         instruments={
-            "generator": "AMPBENCH-SIM,GEN,0001,0.1",
-            "scope": "AMPBENCH-SIM,SCOPE,0002,0.1",
+            "generator": "STAGEPROOF-SIM,GEN,0001,0.1",
+            "scope": "STAGEPROOF-SIM,SCOPE,0002,0.1",
         },
         settle_note="waited 5 coupling time constants after each level step",
     )

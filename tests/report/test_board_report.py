@@ -28,7 +28,7 @@ def test_header_and_measurements_on_the_page(db_path, tmp_path) -> None:
         run.operator,
         run.software_version,
         "worst-case corners",
-        "AMPBENCH-SIM,GEN,0001,0.1",
+        "STAGEPROOF-SIM,GEN,0001,0.1",
         run.started_at,
         run.ended_at,
         "0 (first test)",

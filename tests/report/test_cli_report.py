@@ -1,4 +1,4 @@
-"""``ampbench report``: the three kinds, exports read back, bad input -> message + exit 2."""
+"""``stageproof report``: the three kinds, exports read back, bad input -> message + exit 2."""
 
 from __future__ import annotations
 
@@ -72,7 +72,7 @@ def test_bad_input_exit_2(db_path, tmp_path, capsys, args, message) -> None:
     code, _, err = _run(argv, capsys)
     assert code == 2
     assert message in err
-    assert err.startswith("ampbench: error:") and "Traceback" not in err
+    assert err.startswith("stageproof: error:") and "Traceback" not in err
     assert "(fix:" in err  # every message says how to fix it
 
 
@@ -133,7 +133,7 @@ def test_parquet_without_pyarrow_is_a_clear_error(db_path, tmp_path, capsys, mon
         capsys,
     )
     assert code == 2
-    assert "Parquet export needs pyarrow" in err and "ampbench[parquet]" in err
+    assert "Parquet export needs pyarrow" in err and "stageproof[parquet]" in err
     assert not (tmp_path / "p").exists()
 
 

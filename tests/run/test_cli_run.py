@@ -1,4 +1,4 @@
-"""``ampbench run`` from the command line: exit codes, JSON, and bad input that must fail
+"""``stageproof run`` from the command line: exit codes, JSON, and bad input that must fail
 with one clear line (exit 2) before anything is written half-way."""
 
 from __future__ import annotations
@@ -71,7 +71,7 @@ def _bad(capsys, argv) -> str:
     code = main(argv)
     err = capsys.readouterr().err
     assert code == 2, err
-    assert err.startswith("ampbench: error:") and err.count("\n") == 1, err
+    assert err.startswith("stageproof: error:") and err.count("\n") == 1, err
     return err
 
 

@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harness.errors import AmpbenchError
+from harness.errors import StageproofError
 from harness.run.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
@@ -129,7 +129,7 @@ def test_safety_under_instrument_faults(board, limits, tmp_path_factory, fault):
             try:
                 with connect(load_station(station_file)) as inst:
                     run_board(inst, board, limits, fixture, "SN-F", store, options=opts)
-            except AmpbenchError:
+            except StageproofError:
                 outcome = "aborted"
             runs = store.list_runs()
         log = bench.generator_log

@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.errors import AmpbenchError, FaultSpecError
+from harness.errors import FaultSpecError, StageproofError
 from harness.files import load_board
 from harness.sim.physics import BoardSim, Fault, component_refs, parse_fault
 
@@ -312,7 +312,7 @@ def test_parse_fault_errors_name_the_fix(text, word):
     with pytest.raises(FaultSpecError) as exc:
         parse_fault(text)
     assert word in str(exc.value)
-    assert isinstance(exc.value, AmpbenchError) and isinstance(exc.value, ValueError)
+    assert isinstance(exc.value, StageproofError) and isinstance(exc.value, ValueError)
 
 
 def test_unknown_designator_lists_valid_ones(twin):

@@ -1,5 +1,5 @@
 """SimBench's station and fixture files, the default profiles' commands, fault syntax and
-the ``ampbench sim serve`` command.
+the ``stageproof sim serve`` command.
 
 Outside references: the profiles in fixtures/instruments (the commands the drivers send),
 the example files fixtures/station-sim.toml and fixtures/fixture-twin-preamp.toml (their
@@ -179,7 +179,7 @@ def test_cli_serve_prints_resources_writes_files_and_stops_on_sigterm(tmp_path: 
         assert "R104:drift=1.2" in out and "scope:no_reply@fetch,count=1" in out
         with socket.create_connection(("127.0.0.1", ports[0]), timeout=3) as s:
             s.sendall(b"*IDN?\n")
-            assert s.recv(100).startswith(b"ampbench-sim,SIG-1")
+            assert s.recv(100).startswith(b"stageproof-sim,SIG-1")
         assert load_station(station).get("scope").resource.endswith(f"::{ports[1]}::SOCKET")
         load_fixture(fixture, load_board(TWIN))
     finally:
@@ -212,4 +212,4 @@ def test_cli_bad_fault_is_one_line_exit_2(tmp_path: Path) -> None:
         check=False,
     )
     assert proc.returncode == 2
-    assert proc.stderr.startswith("ampbench: error:") and "Traceback" not in proc.stderr
+    assert proc.stderr.startswith("stageproof: error:") and "Traceback" not in proc.stderr

@@ -33,7 +33,7 @@ from harness.sim.scpi import (
 class Toy(ScpiDevice):
     """A tiny instrument declared as data, to test the tree without any physics."""
 
-    IDN = ("ampbench-sim", "TOY-1")
+    IDN = ("stageproof-sim", "TOY-1")
     FREQ = Num("HZ", 1.0, 1e6, 1000.0)
 
     def reset(self) -> None:
@@ -178,7 +178,7 @@ def test_header_path_rule(toy: Toy) -> None:
 def test_queries_in_one_message_answer_in_one_line(toy: Toy) -> None:
     """Several queries: one response message, units separated by ';', LF at the end
     (IEEE 488.2 §8.4.1, from memory)."""
-    assert toy.handle("*IDN?;FREQ?;:VOLT?") == b"ampbench-sim,TOY-1,0001,0.1;1000.0;0.1\n"
+    assert toy.handle("*IDN?;FREQ?;:VOLT?") == b"stageproof-sim,TOY-1,0001,0.1;1000.0;0.1\n"
 
 
 @pytest.mark.parametrize(
@@ -316,7 +316,7 @@ def test_garbage_and_non_utf8_never_raise(toy: Toy) -> None:
         assert toy.handle(junk) is None
     codes = errors(toy)
     assert codes and all(-199 <= c <= -100 for c in codes)
-    assert toy.handle("*IDN?").startswith(b"ampbench-sim")
+    assert toy.handle("*IDN?").startswith(b"stageproof-sim")
 
 
 def test_query_interrupted_and_unterminated(toy: Toy) -> None:
@@ -379,7 +379,7 @@ def test_shared_state_under_lock_with_many_threads(toy: Toy) -> None:
     def worker() -> None:
         for _ in range(200):
             r = toy.handle("*IDN?;FREQ?")
-            if r != b"ampbench-sim,TOY-1,0001,0.1;1000.0\n":
+            if r != b"stageproof-sim,TOY-1,0001,0.1;1000.0\n":
                 bad.append(r or b"")
 
     threads = [threading.Thread(target=worker) for _ in range(4)]

@@ -65,7 +65,7 @@ def raw(port: int, data: bytes, *, read: bool = True, timeout_s: float = 3.0) ->
 
 
 def idn_ok(port: int) -> bool:
-    return raw(port, b"*IDN?\n").startswith(b"ampbench-sim,")
+    return raw(port, b"*IDN?\n").startswith(b"stageproof-sim,")
 
 
 def test_pyvisa_drives_the_whole_bench_with_raw_scpi(bench: SimBench, rm) -> None:
@@ -75,7 +75,7 @@ def test_pyvisa_drives_the_whole_bench_with_raw_scpi(bench: SimBench, rm) -> Non
     gen, scope, psu = (open_res(rm, res[r]) for r in ("generator", "scope", "supply"))
     try:
         for inst, model in ((gen, "SIG-1"), (scope, "DIG-4"), (psu, "PSU-2")):
-            assert inst.query("*IDN?").split(",")[:2] == ["ampbench-sim", model]
+            assert inst.query("*IDN?").split(",")[:2] == ["stageproof-sim", model]
             inst.write("*RST;*CLS")
         psu.write("SOURce1:VOLTage:LEVel:IMMediate:AMPLitude 12")
         psu.write("SOURce1:CURRent:LEVel:IMMediate:AMPLitude 0.05;:OUTPut1:STATe ON")
@@ -164,7 +164,7 @@ def test_oversized_line_is_refused_and_connection_stays_usable(bench: SimBench) 
             reply += s.recv(4096)
         assert reply.startswith(b"-223,")
         s.sendall(b"*IDN?\n")
-        assert s.recv(4096).startswith(b"ampbench-sim,SIG-1")
+        assert s.recv(4096).startswith(b"stageproof-sim,SIG-1")
 
 
 def test_client_vanishing_mid_command_and_mid_reply(bench: SimBench) -> None:
@@ -191,7 +191,7 @@ def test_many_clients_at_once(bench: SimBench) -> None:
     try:
         for s in socks:
             s.sendall(b"*IDN?\n")
-        assert all(s.recv(100).startswith(b"ampbench-sim,SW-40") for s in socks)
+        assert all(s.recv(100).startswith(b"stageproof-sim,SW-40") for s in socks)
     finally:
         for s in socks:
             s.close()
@@ -206,7 +206,7 @@ def test_no_reply_fault_then_recovery_via_pyvisa(bench: SimBench, rm) -> None:
         bench.inject("dmm", "no_reply", on="identify", count=1)
         with pytest.raises(pyvisa.errors.VisaIOError):
             inst.query("*IDN?")
-        assert inst.query("*IDN?").startswith("ampbench-sim,DVM-6")
+        assert inst.query("*IDN?").startswith("stageproof-sim,DVM-6")
     finally:
         inst.close()
 

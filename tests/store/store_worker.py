@@ -41,8 +41,8 @@ def header(serial: str, part_number: str = "PN-100", **changes: object) -> RunHe
         "fixture": "fixture-twin",
         "operator": "tester",
         "instruments": {
-            "generator": "ampbench-sim,GEN-1,001,1.0",
-            "scope": "ampbench-sim,SCOPE-1,002,2.0",
+            "generator": "stageproof-sim,GEN-1,001,1.0",
+            "scope": "stageproof-sim,SCOPE-1,002,2.0",
         },
         "settle_note": "waited 5 coupling time constants after each level step",
     }

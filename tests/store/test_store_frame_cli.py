@@ -1,4 +1,4 @@
-"""load_frame and ``ampbench results``: output parsed back by independent readers
+"""load_frame and ``stageproof results``: output parsed back by independent readers
 (Python's ``json`` and ``csv`` modules; CSV as in RFC 4180) and pandas dtypes."""
 
 from __future__ import annotations
@@ -91,7 +91,7 @@ def test_load_frame_runs_and_sweeps(db: Path) -> None:
     assert runs["retest"].tolist() == [0, 0, 1]
     assert runs["ended_at"].isna().tolist() == [False, False, True]
     assert "limits_json" not in runs.columns and "limits_digest" in runs.columns
-    assert json.loads(runs["instruments_json"][0])["generator"].startswith("ampbench-sim")
+    assert json.loads(runs["instruments_json"][0])["generator"].startswith("stageproof-sim")
     sweeps = load_frame(db, what="sweeps")
     assert sweeps["clipped"].dtype == bool and sweeps["clipped"].tolist() == [True]
     assert sweeps["level_vrms"].dtype == "float64"

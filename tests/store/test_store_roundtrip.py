@@ -153,7 +153,7 @@ def test_newer_schema_is_refused(db: Path) -> None:
     conn = sqlite3.connect(db)
     conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
     conn.close()
-    with pytest.raises(StoreError, match="upgrade ampbench"):
+    with pytest.raises(StoreError, match="upgrade stageproof"):
         open_store(db)
 
 
@@ -161,7 +161,7 @@ def test_foreign_sqlite_file_is_refused(db: Path) -> None:
     conn = sqlite3.connect(db)
     conn.execute("CREATE TABLE parts (pn TEXT)")
     conn.close()
-    with pytest.raises(StoreError, match="not an ampbench results database"):
+    with pytest.raises(StoreError, match="not an stageproof results database"):
         open_store(db)
 
 
@@ -279,7 +279,7 @@ def test_unwritable_paths_fail_at_open(tmp_path: Path) -> None:
 
     # /proc is a pseudo file system where no file can be created, even by root (proc(5)).
     with pytest.raises(StoreError, match="cannot open results database /proc/") as err:
-        open_store("/proc/ampbench-results.db")
+        open_store("/proc/stageproof-results.db")
     assert "writable" in str(err.value)
 
 
@@ -328,9 +328,9 @@ def test_locked_database_times_out_with_a_clear_error(db: Path) -> None:
 
 
 def test_urls_and_default_path(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    assert DEFAULT_DB == "ampbench-results.db"
+    assert DEFAULT_DB == "stageproof-results.db"
     with pytest.raises(StoreError, match="PostgreSQL results store is not available yet"):
-        open_store("postgresql://line-db/ampbench")
+        open_store("postgresql://line-db/stageproof")
     with pytest.raises(StoreError, match="unknown results store URL scheme"):
         open_store("mysql://x/y")
     with open_store(f"sqlite:///{tmp_path / 'abs.db'}") as store:
