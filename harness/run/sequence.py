@@ -558,21 +558,31 @@ class Sequencer(BoardRun):
             lim = self.limits.channels[tp.board_channel].operating_point.get(tp.key)
             if tp.route and self.switch is not None:
                 self.switch.close(list(tp.route))
+            range_v = dmm_range_v(lim)
             try:
-                v = float(self.dmm.dc_volts())
+                v = float(self.dmm.dc_volts(range_v))
             finally:
                 if tp.route and self.switch is not None:
                     self.switch.open(list(tp.route))
+            detail: dict[str, Any] = {"test_point": tp.name, "quantity": tp.key, "range_v": range_v}
+            if not math.isfinite(v):
+                # SCPI's 9.9E37 (overload): no number to decide, and never an infinite U
+                detail["result"] = f"over-range at {tp.name}"
+                self.progress.note(f"DMM over-range at {tp.name} ({tp.key})")
+                self._row(
+                    tp.board_channel,
+                    f"dc.{tp.key}",
+                    None,
+                    "V",
+                    limit_get(lim, "low"),
+                    limit_get(lim, "high"),
+                    None,
+                    "fail",
+                    detail,
+                )
+                continue
             u = 2 * (0.0005 * abs(v) + 0.5e-3)  # DMM read-back: common practice figure
-            self._decide_row(
-                tp.board_channel,
-                f"dc.{tp.key}",
-                v,
-                "V",
-                lim,
-                u,
-                {"test_point": tp.name, "quantity": tp.key},
-            )
+            self._decide_row(tp.board_channel, f"dc.{tp.key}", v, "V", lim, u, detail)
 
     def nominal(self, group: list[_ChannelState]) -> None:
         self.step_name = "nominal"
@@ -1019,6 +1029,22 @@ class Sequencer(BoardRun):
                 self.switch.open_all()
             except BaseException as exc:
                 log.warning("switch open_all failed: %s", exc)
+
+
+#: Margin between a test point's highest expected voltage and the DMM range asked for, so
+#: a board at the edge of its limits still reads on range (common practice).
+DMM_RANGE_MARGIN = 1.25
+
+
+def dmm_range_v(limit: Any) -> float | None:
+    """The DMM range that fits a test point's expected voltage from the model (its largest
+    magnitude, nominal or limit, with margin); None (the meter's own choice) when the model
+    gives no figure."""
+    values = [limit_get(limit, k) for k in ("nominal", "low", "high")]
+    known = [abs(v) for v in values if v is not None and math.isfinite(v)]
+    if not known or max(known) <= 0:
+        return None
+    return DMM_RANGE_MARGIN * max(known)
 
 
 def _gross(current: float, limit: Any, current_limit_a: float) -> bool:

@@ -704,6 +704,11 @@ class SimDmm(_BenchDevice):
             rng = next((r for r in self.RANGES_V if r >= range_v * (1 - 1e-9)), self.RANGES_V[-1])
             if abs(v) > 1.2 * rng:
                 return "9.9E37"  # overload (SCPI infinity)
+        # No range, DEF or AUTO: the meter picks its range itself (SCPI-99 vol. 1 MEASure,
+        # from memory: DEFault leaves the range to the instrument), so it never overloads
+        # below its top range.
+        elif abs(v) > 1.2 * self.RANGES_V[-1]:
+            return "9.9E37"
         return format_number(round(v, 7))
 
     def _measure(self, ctx: Ctx, range_v: Any, resolution: Any) -> str:
@@ -718,7 +723,8 @@ class SimDmm(_BenchDevice):
             "MEASure[:SCALar]:VOLTage[:DC]?",
             _measure,
             (
-                Num("V", 0.0, 1000.0, 10.0, optional=True, keywords=("AUTO",)),
+                # DEF and AUTO both mean autorange here: no default number stands in
+                Num("V", 0.0, 1000.0, None, optional=True, keywords=("AUTO", "DEF", "DEFAULT")),
                 Num("V", 0.0, 1000.0, 1e-5, optional=True),
             ),
             name="measure_dc_volts",

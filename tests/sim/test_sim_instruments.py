@@ -169,6 +169,19 @@ def test_dmm_reads_the_routed_test_point(bench: SimBench, board) -> None:
     assert bench.dmm.handle(b"SYST:ERR?").startswith(b"-221")
 
 
+def test_dmm_autoranges_on_def_and_reads_a_rail_test_point(bench: SimBench, board) -> None:
+    """SCPI-99 vol. 1, MEASure (from memory): the range parameter DEFault leaves the range
+    to the instrument, so the rail (relay 104, channel A buffer collector; 12.2 V, inside the
+    board's 12 V 2 % supply) reads as such with DEF, while an explicit 1 V range overloads on it (9.9E37, SCPI infinity)."""
+    bench.supply.handle(b"VOLT 12.2;CURR 0.05;OUTP ON")
+    bench.switch.handle(b"ROUT:CLOS (@104)")
+    for form in (b"MEAS:VOLT:DC? DEF", b"MEAS:VOLT:DC? DEFault", b"MEAS:VOLT:DC?"):
+        assert float(bench.dmm.handle(form)) == pytest.approx(12.2, abs=0.01)
+    assert bench.dmm.handle(b"MEAS:VOLT:DC? 1") == b"9.9E37\n"
+    assert float(bench.dmm.handle(b"MEAS:VOLT:DC? 15")) == pytest.approx(12.2, abs=0.01)
+    assert bench.dmm.handle(b"SYST:ERR?").startswith(b"0,")
+
+
 def test_supply_current_limit_folds_back_and_kills_the_board(bench: SimBench, board) -> None:
     """Common practice (CV/CC supply): above the limit the output holds the limit current
     and its voltage falls; the board then has no signal at its output."""
