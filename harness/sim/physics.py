@@ -391,6 +391,16 @@ class BoardSim:
                 total += max(i_out, 0.0)
         return total
 
+    def stage_output_node(self, channel: str, stage: str) -> str:
+        """The netlist node a stage drives (collector, follower emitter, op-amp output)."""
+        v_pos, v_neg = self._rails(None)
+        for sn in self._solver(channel, v_pos, v_neg).stage_nodes:
+            if sn.name == stage:
+                node = sn.output or (sn.emitter if sn.kind == "emitter_follower" else sn.collector)
+                assert node is not None
+                return node
+        raise FaultSpecError(f"{channel}.{stage}", f"no stage {stage!r} on channel {channel}")
+
     def clear_cache(self) -> None:
         self._cache.clear()
 

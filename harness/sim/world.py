@@ -11,6 +11,12 @@ The channels share one input node.  Each channel's response is first computed al
 behind the 50 Ω source; if their input voltages differ (a faulty channel loads the node
 differently) the node is re-solved with every other channel's input impedance as a
 Thevenin load on the source, so the common-input probe and each output stay consistent.
+
+Signal faults (``A.buffer:oscillate=400000,0.2``, ``A:hum=50``) are added to the channel
+outputs while the board is powered: an oscillation at a stage's output reaches the channel
+output through the later stages' gain, hum coupled into the channel input through the whole
+channel's (each gain the physics' own small-signal response at the board's test frequency,
+an approximation stated here: a real channel's gain differs a little at 50 Hz or 400 kHz).
 """
 
 from __future__ import annotations
@@ -118,6 +124,7 @@ class World:
             abs(board.supply.v_neg),
         )
         self.closed_relays: Callable[[], Sequence[int]] = lambda: ()
+        self._extra: dict[float, dict[str, list[tuple[float, float]]]] = {}
 
     # -- board state ----------------------------------------------------------------------------
 
@@ -167,10 +174,48 @@ class World:
             self._cache.clear()
         responses = self._respond(v, emf, d.frequency_hz, offset, d.source_ohm)
         inputs: list[Callable[[np.ndarray], np.ndarray]] = [_pick(responses[0], 0)]
-        inputs += [_pick(r, 1) for r in responses]
+        extra = self.signal_faults(v)
+        inputs += [
+            _pick(r, 1, extra.get(ch.name, ()))
+            for r, ch in zip(responses, self.board.channels, strict=True)
+        ]
         result = SignalSet(d.frequency_hz, inputs)
         self._cache[key] = result
         return result
+
+    def signal_faults(self, supply_v: float) -> dict[str, list[tuple[float, float]]]:
+        """Tones the signal faults add to each channel output at this supply (none unpowered):
+        (frequency Hz, peak V at the output connector)."""
+        faults = [f for f in getattr(self.sim, "faults", ()) if f.kind in ("oscillate", "hum")]
+        if not faults or supply_v <= 0.0:
+            return {}
+        hit = self._extra.get(supply_v)
+        if hit is not None:
+            return hit
+        out: dict[str, list[tuple[float, float]]] = {}
+        f0 = self.board.conditions.frequency_hz
+        rs = self.board.conditions.source_ohm
+        for fault in faults:
+            channel, _, stage = fault.ref.partition(".")
+            # the physics' own small-signal response: 1 mV peak at the test frequency
+            resp = self.sim.respond(channel, 1e-3, f0, 0.0, rs, supply_v=supply_v)
+            out_pk = abs(resp.harmonics("out", 1)[1])
+            if fault.kind == "hum":
+                gain = out_pk / max(abs(resp.harmonics("in", 1)[1]), 1e-30)
+                base = float(fault.value)  # type: ignore[arg-type]
+                tones = [
+                    (k * base, float(gain * fault.signal_vpk * w))
+                    for k, w in ((1, 1.0), (2, 0.5), (3, 0.25))
+                ]
+            else:
+                node = self.sim.stage_output_node(channel, stage)
+                y = np.asarray(resp.nodes[node], dtype=float)
+                node_pk = 2.0 * abs(np.fft.rfft(y)[1]) / len(y)
+                gain = out_pk / max(node_pk, 1e-30)
+                tones = [(float(fault.value), float(gain * fault.signal_vpk))]  # type: ignore[arg-type]
+            out.setdefault(channel, []).extend(tones)
+        self._extra[supply_v] = out
+        return out
 
     def _respond(
         self, v: float, emf: float, f: float, offset: float, rs: float
@@ -198,8 +243,15 @@ class World:
         return out
 
 
-def _pick(resp: ResponseLike, which: int) -> Callable[[np.ndarray], np.ndarray]:
+def _pick(
+    resp: ResponseLike, which: int, tones: Sequence[tuple[float, float]] = ()
+) -> Callable[[np.ndarray], np.ndarray]:
+    """One waveform of a response, with added tones (frequency Hz, peak V) if any."""
+
     def sig(t: np.ndarray) -> np.ndarray:
-        return np.asarray(resp.evaluate(t)[which], dtype=float)
+        v = np.asarray(resp.evaluate(t)[which], dtype=float)
+        for f, a in tones:
+            v = v + a * np.sin(2 * np.pi * f * np.asarray(t, dtype=float))
+        return v
 
     return sig
