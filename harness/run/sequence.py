@@ -33,7 +33,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from harness.errors import FixtureFileError, StageproofError
+from harness.errors import AnalysisError, FixtureFileError, StageproofError
 from harness.measure import (
     RecordAnalysis,
     SearchStep,
@@ -41,6 +41,7 @@ from harness.measure import (
     measurement_floor,
     next_search_level,
 )
+from harness.measure.condition import ChannelCondition, classify_channel
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
 from harness.run.bench_ops import (
@@ -237,6 +238,12 @@ class _ChannelState:
     done: bool = False
     step: Any = None
     nominal: RecordAnalysis | None = None
+    condition: ChannelCondition | None = None
+
+    @property
+    def failed(self) -> bool:
+        """The channel is in a failure mode (dead, oscillating, ...): no clipping search."""
+        return self.condition is not None and not self.condition.working
 
 
 class Sequencer(BoardRun):
@@ -295,6 +302,7 @@ class Sequencer(BoardRun):
             )
         self.plan = self._plan(board.conditions.frequency_hz)
         self.step_name = "setup"
+        self.last_acquisition: Any = None
 
     # --- helpers --------------------------------------------------------------------
     @property
@@ -385,13 +393,15 @@ class Sequencer(BoardRun):
 
     def _acquire(
         self, group: list[_ChannelState], plan: Any, label: str
-    ) -> dict[str, RecordAnalysis]:
+    ) -> dict[str, RecordAnalysis | None]:
         """One acquisition of every input of the group (see GroupScope.acquire); the raw
-        records stored too with ``keep_records``."""
+        records stored too with ``keep_records``.  A channel whose record cannot be analysed
+        gets None (it is classified at the nominal step, never an abort of the run)."""
         conns = [st.conn for st in group]
         out, acq = self.scope_ops.acquire(
-            conns, plan, correct_adc=self.opt.correct_adc_nonlinearity
+            conns, plan, correct_adc=self.opt.correct_adc_nonlinearity, tolerant=True
         )
+        self.last_acquisition = acq
         if self.opt.keep_records:
             for c in conns:
                 self.store.add_record(
@@ -413,7 +423,7 @@ class Sequencer(BoardRun):
         plan: Any,
         label: str,
         fill: float = RANGE_FILL,
-    ) -> dict[str, RecordAnalysis]:
+    ) -> dict[str, RecordAnalysis | None]:
         """Move the generator (ramped), let the board settle, record."""
         changed = abs(level_vrms - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
         self.scope_ops.preset(self._gains(group), level_vrms, fill)
@@ -426,7 +436,7 @@ class Sequencer(BoardRun):
         if self.opt.settle == "verify" and changed:
             for _ in range(4):
                 again = self._acquire(group, plan, label + " (settling check)")
-                if all(_agree(res[k], again[k]) for k in res):
+                if all(_agree(res[k], again[k]) for k in res if not _failed(group, k)):
                     res = again
                     break
                 res = again
@@ -594,12 +604,33 @@ class Sequencer(BoardRun):
         # the generator at the planned (coherent) frequency exactly, output still off
         self.safe.configure(self.plan.frequency_hz, level)
         res = self._measure_at(group, level, self.plan, "nominal")
+        acq = self.last_acquisition
+        wide = self._wide_look(group)
         b = self.opt.bench
         for st in group:
             ch = st.conn.board_channel
             a = res[ch]
-            st.nominal = a
             lim = st.limits
+            st.condition = self._classify(st, acq, wide)
+            cond = st.condition
+            self._row(
+                ch,
+                "condition",
+                None,
+                "",
+                None,
+                None,
+                None,
+                "pass" if cond.working else "fail",
+                cond.to_dict(),
+            )
+            if not cond.working:
+                self.progress.note(f"channel {ch}: {cond.text}")
+                self._failed_rows(st, a, level)
+                continue
+            if a is None:  # pragma: no cover - a working channel's record analyses
+                raise AnalysisError(f"channel {ch}: the nominal record could not be analysed")
+            st.nominal = a
             detail = {"record": a.to_dict(), "level_vrms": level}
             if a.gain_db is None:
                 for name, unit, limit in (
@@ -641,6 +672,109 @@ class Sequencer(BoardRun):
             st.levels_commanded.append(level)
             self._sweep_point(ch, a, level)
 
+    def _wide_look(self, group: list[_ChannelState]) -> dict[str, tuple[np.ndarray, float]]:
+        """One short record of the outputs at the scope's highest sample rate, so an
+        oscillation far above the test frequency shows at its own frequency (the nominal
+        record, sampled for the test signal, would alias it, even onto DC)."""
+        rates = sorted(float(r) for r in self.scope.sample_rates_hz)
+        lengths = sorted(int(n) for n in self.scope.record_lengths)
+        fast = rates[-1]
+        if fast <= self.plan.sample_rate_hz * (1 + 1e-9):
+            return {}
+        # about ten test-signal periods, within the scope's lengths (100,000 at most)
+        want = min(max(10 * fast / self.plan.frequency_hz, 4096), 100_000)
+        n = next((k for k in lengths if k >= want), lengths[-1])
+        inputs = sorted({st.conn.output_scope for st in group})
+        self.scope.configure_timebase(fast, n)
+        self.scope_ops.timebase = (fast, n)
+        acq = self.scope.acquire(inputs)
+        self.scope_ops.acquisitions += 1
+        return {
+            st.conn.board_channel: (
+                np.asarray(acq.volts[st.conn.output_scope], dtype=float),
+                float(acq.sample_rate_hz),
+            )
+            for st in group
+        }
+
+    def _classify(
+        self, st: _ChannelState, acq: Any, wide: dict[str, tuple[np.ndarray, float]]
+    ) -> ChannelCondition:
+        """The channel's mode from the nominal record (and the wide look)."""
+        c = st.conn
+        lim = st.limits
+        expected = float(lim.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
+        # a stuck output shows as a DC level only where nothing blocks DC on its way
+        dc_coupled = False
+        with contextlib.suppress(AttributeError, KeyError, IndexError):
+            dc_coupled = self.board.channel(c.board_channel).stages[-1].c_out is None
+        rails = (self.board.supply.v_neg, self.board.supply.v_pos) if dc_coupled else None
+        return classify_channel(
+            np.asarray(acq.volts[c.input_scope], dtype=float),
+            np.asarray(acq.volts[c.output_scope], dtype=float),
+            float(acq.sample_rate_hz),
+            float(self.plan.frequency_hz),
+            expected_gain=expected,
+            expected_phase_deg=float(lim.phase_deg),
+            rails_v=rails,
+            wide=wide.get(c.board_channel),
+        )
+
+    def _failed_rows(self, st: _ChannelState, a: RecordAnalysis | None, level: float) -> None:
+        """A channel in a failure mode: its measurements stored as failed, with the mode and
+        its evidence; a gain still measurable (reversed polarity, gross gain error, hum) is
+        kept as the value, since the diagnosis can use it."""
+        ch = st.conn.board_channel
+        cond = st.condition
+        assert cond is not None
+        lim = st.limits
+        detail = {"mode": cond.mode, "why": cond.text, "evidence": cond.evidence}
+        keep = cond.mode in ("reversed_polarity", "gain_error", "hum") and a is not None
+        gain = a.gain_db if keep and a is not None else None
+        thd = a.thd_percent if keep and a is not None else None
+        for name, unit, limit, value in (
+            ("gain", "dB", lim.gain_db, gain),
+            ("thd", "%", lim.thd_percent, thd),
+        ):
+            self._row(
+                ch,
+                name,
+                value,
+                unit,
+                limit_get(limit, "low"),
+                limit_get(limit, "high"),
+                None,
+                "fail",
+                detail,
+            )
+        phase = cond.evidence.get("phase_deg")
+        expected = float(lim.phase_deg)
+        self._row(
+            ch,
+            "phase",
+            _wrap_near(phase, expected) if phase is not None else None,
+            "deg",
+            expected - PHASE_TOLERANCE_DEG,
+            expected + PHASE_TOLERANCE_DEG,
+            None,
+            "fail",
+            detail,
+        )
+        clim = lim.clip_input_vrms
+        self._row(
+            ch,
+            "clip_input",
+            None,
+            "V rms",
+            limit_get(clim, "low"),
+            limit_get(clim, "high"),
+            None,
+            "fail",
+            {**detail, "result": f"clipping search skipped: channel {cond.mode}"},
+        )
+        if a is not None:
+            self._sweep_point(ch, a, level)
+
     def _sweep_point(
         self, ch: str, a: RecordAnalysis, commanded: float, sweep: str = "clip"
     ) -> None:
@@ -663,7 +797,8 @@ class Sequencer(BoardRun):
         active = [
             s
             for s in group
-            if s.nominal is not None
+            if not s.failed
+            and s.nominal is not None
             and s.nominal.gain_db is not None
             and not self._unresolvable(s.conn.board_channel, "clip_input")
         ]
@@ -701,6 +836,8 @@ class Sequencer(BoardRun):
             self.search_acquisitions += 1
             for s in group:
                 a = res[s.conn.board_channel]
+                if a is None or s.failed:
+                    continue
                 self._sweep_point(s.conn.board_channel, a, level)
                 if a.gain_db is not None and a.thd_percent is not None:
                     s.points.append(a)
@@ -927,6 +1064,8 @@ class Sequencer(BoardRun):
             for s in group:
                 ch = s.conn.board_channel
                 a = res[ch]
+                if a is None or s.failed:
+                    continue
                 self._sweep_point(ch, a, level, sweep="frequency")
                 rel = None
                 if a.gain_db is not None and s.nominal is not None and s.nominal.gain_db:
@@ -1057,9 +1196,13 @@ def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
     return (high is not None and current > 2 * high) or (low is not None and current < low / 2)
 
 
-def _agree(a: RecordAnalysis, b: RecordAnalysis) -> bool:
+def _failed(group: list[_ChannelState], channel: str) -> bool:
+    return any(s.failed for s in group if s.conn.board_channel == channel)
+
+
+def _agree(a: RecordAnalysis | None, b: RecordAnalysis | None) -> bool:
     """Two records after a level change agree: settled."""
-    if a.gain_db is None or b.gain_db is None:
+    if a is None or b is None or a.gain_db is None or b.gain_db is None:
         return False
     if abs(a.gain_db - b.gain_db) > 0.02:
         return False
