@@ -68,11 +68,12 @@ class ChannelCondition:
 
 
 def _tone(y: np.ndarray, fs: float, f: float) -> complex:
-    """Complex peak amplitude of the component at ``f`` (least squares with a DC term)."""
+    """Complex peak amplitude of the component at ``f`` (least squares with a DC term and a
+    slope, so a DC level still drifting after a change is not read as a slow tone)."""
     n = y.size
     t = (np.arange(n) - (n - 1) / 2) / fs
     w = 2 * np.pi * f * t
-    a = np.column_stack([np.cos(w), np.sin(w), np.ones(n)])
+    a = np.column_stack([np.cos(w), np.sin(w), np.ones(n), t])
     coef, *_ = np.linalg.lstsq(a, y.astype(float), rcond=None)
     return complex(coef[0], -coef[1])
 
@@ -81,7 +82,9 @@ def _spectrum(y: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray, int]:
     """(frequencies, peak-amplitude spectrum, main-lobe half width in bins)."""
     n = y.size
     win = get_window("blackmanharris", n, fftbins=True)
-    spec = np.abs(np.fft.rfft((y - np.mean(y)) * win)) * 2.0 / np.sum(win)
+    i = np.arange(n) - (n - 1) / 2
+    trend = np.polyval(np.polyfit(i, y, 1), i)  # a drifting DC level is no tone
+    spec = np.abs(np.fft.rfft((y - trend) * win)) * 2.0 / np.sum(win)
     return np.fft.rfftfreq(n, 1.0 / fs), spec, 5
 
 

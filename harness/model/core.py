@@ -33,7 +33,12 @@ from harness.model.board import (
     OpAmpInverting,
     OpAmpNonInverting,
 )
-from harness.model.settling import TimeConstant, settle_times, time_constants
+from harness.model.settling import (
+    TimeConstant,
+    settle_times,
+    supply_settle_time,
+    time_constants,
+)
 
 Arrays = Mapping[str, np.ndarray]
 
@@ -136,6 +141,7 @@ class ChannelArrays:
     low_corner_hz: np.ndarray = field(default_factory=lambda: np.zeros(1))
     settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
     dc_settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    supply_settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
     time_constants: list[TimeConstant] = field(default_factory=list)
     thd_percent: np.ndarray | None = None
     thd_clip_input_vpk: np.ndarray | None = None
@@ -869,6 +875,8 @@ def evaluate_channel(
     res.low_corner_hz = corner
     res.time_constants = time_constants(channel, p, stages, n)
     res.settle_time_s, res.dc_settle_time_s = settle_times(res.time_constants, n)
+    span = _b(p["supply.positive_v"], n) - _b(p.get("supply.negative_v", np.zeros(n)), n)
+    res.supply_settle_time_s = supply_settle_time(res.time_constants, res.settle_time_s, span)
     res.supply_current_a = sum((s.supply_a for s in stages), np.zeros(n))
 
     nominal_vpk = board.conditions.nominal_input_vrms * np.sqrt(2.0)

@@ -12,7 +12,13 @@ measures.  Circuit theory (common practice):
 * the last stage's output coupling capacitor into the load only moves the DC level at the
   output connector, tau = C_out (R_out + R_L): an AC-coupled scope input or the offset term
   of the sine fit (IEEE Std 1057 / IEEE Std 1241 four-parameter fit) removes it, provided the
-  scope range leaves room for the DC still moving: ``kind = "dc_level"``.
+  scope range leaves room for the DC still moving: ``kind = "dc_level"``.  Not quite
+  nothing, though: while it charges, its current flows through the stage's output
+  resistance, so the stage's own DC (a collector) sits R_out/(R_out + R_L) of the output's DC
+  step away from its rest point.  After a level change that step is tiny (the rectified
+  drive moves the output's mean by millivolts); after supply on it is the whole output DC
+  level, so the wait after supply on lasts until that shift is below
+  :data:`SUPPLY_SHIFT_FRACTION` of the supply span.
 
 Pure: parameter arrays in, arrays out, like :mod:`harness.model.core`.
 """
@@ -27,11 +33,22 @@ import numpy as np
 
 from harness.model.board import Channel, CommonEmitter, EmitterFollower, OpAmpNonInverting
 
-__all__ = ["SETTLE_TAUS", "TimeConstant", "settle_times", "time_constants"]
+__all__ = [
+    "SETTLE_TAUS",
+    "SUPPLY_SHIFT_FRACTION",
+    "TimeConstant",
+    "settle_times",
+    "supply_settle_time",
+    "time_constants",
+]
 
 #: Time constants waited after a change: 5 tau leaves e^-5 = 0.7 % of the step (common
 #: practice for "settled").
 SETTLE_TAUS = 5.0
+#: After supply on, a DC-level capacitor still charging may shift a stage's operating point
+#: by at most this fraction of the supply span (0.2 %: 24 mV on 12 V, about 0.06 dB on a
+#: clipping threshold set by a 3 V swing; our choice).
+SUPPLY_SHIFT_FRACTION = 2e-3
 
 Kind = Literal["operating_point", "dc_level"]
 
@@ -43,6 +60,8 @@ class TimeConstant:
     name: str  # "<stage>.<part>" (c_in, c_in.bias, c_e, c_g, c_out)
     kind: Kind
     tau_s: np.ndarray
+    #: dc_level only: the stage's operating-point shift right after supply on (V)
+    supply_shift_v: np.ndarray | None = None
 
 
 def _b(x: object, n: int) -> np.ndarray:
@@ -98,8 +117,12 @@ def time_constants(
             r = s.output_ohm + s.r_next  # type: ignore[attr-defined]
             # the last stage's output capacitor drives only the load: a DC level at the
             # output connector; an inter-stage one feeds the next stage's bias network
-            kind: Kind = "dc_level" if j == last else "operating_point"
-            out.append(TimeConstant(f"{nm}.c_out", kind, c * r))
+            if j == last:
+                share = s.output_ohm / r  # type: ignore[attr-defined]
+                shift = np.abs(s.vout_dc_v) * share  # type: ignore[attr-defined]
+                out.append(TimeConstant(f"{nm}.c_out", "dc_level", c * r, shift))
+            else:
+                out.append(TimeConstant(f"{nm}.c_out", "operating_point", c * r))
         r_src = s.output_ohm  # type: ignore[attr-defined]
     return out
 
@@ -113,3 +136,20 @@ def settle_times(taus: Sequence[TimeConstant], n: int) -> tuple[np.ndarray, np.n
         return np.max(np.stack(arrs), axis=0) if arrs else np.zeros(n)
 
     return SETTLE_TAUS * longest("operating_point"), SETTLE_TAUS * longest("dc_level")
+
+
+def supply_settle_time(
+    taus: Sequence[TimeConstant], settle_s: np.ndarray, supply_span_v: np.ndarray
+) -> np.ndarray:
+    """The wait after supply on: the level-change wait, or longer where a DC-level capacitor
+    still charging keeps a stage's operating point more than SUPPLY_SHIFT_FRACTION of the
+    supply span away (shift(t) = shift(0)·e^(−t/tau), so t = tau·ln(shift(0)/tolerance))."""
+    wait = np.asarray(settle_s, dtype=float).copy()
+    tol = SUPPLY_SHIFT_FRACTION * np.abs(np.asarray(supply_span_v, dtype=float))
+    for t in taus:
+        if t.supply_shift_v is None:
+            continue
+        with np.errstate(divide="ignore", invalid="ignore"):
+            need = t.tau_s * np.log(np.maximum(t.supply_shift_v / tol, 1.0))
+        wait = np.maximum(wait, np.nan_to_num(need))
+    return wait

@@ -442,6 +442,8 @@ class GroupScope:
         self.ranges: dict[int, float] = {}
         self.fill: dict[int, float] = {}
         self.scope_ranges = tuple(float(r) for r in scope.ranges_vpp)
+        #: inputs to AC-couple (an output whose DC level is still moving after the wait)
+        self.coupling: dict[int, str] = {}
         self.timebase: tuple[float, int] | None = None
         self.trigger: int | None = None
         self.acquisitions = 0
@@ -454,7 +456,13 @@ class GroupScope:
         """Configure an input for a full-scale range in probe-tip volts (only on change)."""
         if self.ranges.get(scope_input) == range_vpp:
             return
-        setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        cpl = self.coupling.get(scope_input)
+        if cpl is None:
+            setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        else:
+            setup = self.scope.configure_input(
+                scope_input, range_vpp=range_vpp, probe=probe, coupling=cpl
+            )
         self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
 
     def preset(

@@ -44,6 +44,7 @@ from harness.measure import (
 from harness.measure.condition import ChannelCondition, classify_channel
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
+from harness.model.settling import SETTLE_TAUS
 from harness.run.bench_ops import (
     RANGE_FILL,
     RANGE_UNDERUSE,
@@ -101,6 +102,8 @@ SEARCH_FILL = 0.4
 PHASE_TOLERANCE_DEG = 45.0
 #: Expanded uncertainty of a phase reading (degrees); small against the tolerance.
 PHASE_U_DEG = 1.0
+#: Most repeated records when settling is verified instead of waited for.
+VERIFY_RECORDS = 8
 
 
 @dataclass(frozen=True)
@@ -116,6 +119,9 @@ class RunOptions:
     bench: BenchUncertainty = field(default_factory=BenchUncertainty)
     settle: Literal["wait", "verify"] = "wait"
     settle_wait_s: float | None = None
+    #: a model settle time longer than this is not waited out after every level change:
+    #: settling is verified by repeated records instead (stated in the run record)
+    max_settle_wait_s: float = 5.0
     max_step_up_db: float = 6.0
     resolution_db: float = 0.1
     max_search_acquisitions: int = 24
@@ -150,6 +156,8 @@ class RunResult:
     elapsed_s: float
     instrument_s: float
     waiting_s: float
+    #: settling waits asked for, in the board's time (equal to waiting_s with a real sleep)
+    settle_waited_s: float = 0.0
 
     @property
     def overhead_s(self) -> float:
@@ -174,6 +182,7 @@ class RunResult:
             "search_acquisitions": self.search_acquisitions,
             "generator_state": self.generator_state,
             "settle_note": self.settle_note,
+            "settle_waited_s": round(self.settle_waited_s, 3),
             "elapsed_s": round(self.elapsed_s, 3),
             "measurements": [
                 {
@@ -199,6 +208,7 @@ class _Clock:
     def __init__(self) -> None:
         self.instrument_s = 0.0
         self.waiting_s = 0.0
+        self.settle_s = 0.0  # settling waits asked for (what the board saw pass)
 
 
 class _Timed:
@@ -286,10 +296,34 @@ class Sequencer(BoardRun):
         )
         self.station_file = station_file
         self.search_acquisitions = 0
-        if options.settle == "verify":
+        self.supply_settle_s = (
+            self.settle_s
+            if options.settle_wait_s is not None
+            else max(
+                [self.settle_s]
+                + [
+                    float(getattr(limits.channels[c.board_channel], "supply_settle_time_s", 0.0))
+                    for c in fixture.channels
+                    if c.board_channel in limits.channels
+                ]
+            )
+        )
+        self.settle_mode: Literal["wait", "verify"] = options.settle
+        long_wait = options.settle_wait_s is None and self.settle_s > options.max_settle_wait_s
+        if long_wait:
+            self.settle_mode = "verify"
+        #: between repeated records: one time constant of the slowest operating-point mode
+        self.verify_interval_s = self.settle_s / SETTLE_TAUS
+        if self.settle_mode == "verify":
             self.settle_note = (
-                "settling verified by repeating the record after each level "
-                "change until gain and THD agree"
+                "settling verified by repeating the record after each level change, "
+                f"{self.verify_interval_s:.3g} s apart, until gain and THD agree"
+                + (
+                    f" (the model's settle time {self.settle_s:.3g} s is longer than "
+                    f"{options.max_settle_wait_s:g} s)"
+                    if long_wait
+                    else ""
+                )
             )
         elif options.settle_wait_s is not None:
             self.settle_note = (
@@ -299,6 +333,29 @@ class Sequencer(BoardRun):
         else:
             self.settle_note = (
                 f"waited the model's settle time {self.settle_s:.3g} s after each level change"
+            )
+        if self.supply_settle_s > self.settle_s and fixture.supply is not None:
+            self.settle_note += (
+                f"; {self.supply_settle_s:.3g} s after supply on (the output capacitors "
+                "charging into the load move the operating point until then)"
+            )
+        ac = sorted(
+            {
+                c.output_scope
+                for c in fixture.channels
+                if c.board_channel in limits.channels
+                and float(getattr(limits.channels[c.board_channel], "dc_settle_time_s", 0.0))
+                > (0.0 if self.settle_mode == "verify" else self.settle_s)
+            }
+        )
+        for n in ac:
+            self.scope_ops.coupling[n] = "AC"
+        if ac:
+            self.settle_note += (
+                "; outputs AC-coupled (scope inputs "
+                + ", ".join(str(n) for n in ac)
+                + "): their DC level, set by the output capacitor into the load, is still "
+                "moving when the wait ends"
             )
         self.plan = self._plan(board.conditions.frequency_hz)
         self.step_name = "setup"
@@ -366,12 +423,16 @@ class Sequencer(BoardRun):
             for r in self.rows
         )
 
-    def _wait_settle(self, *, always: bool = False) -> None:
-        """Wait the settle time after a change (in "verify" mode only when ``always``)."""
-        if (always or self.opt.settle == "wait") and self.settle_s > 0:
+    def _wait_settle(self, *, always: bool = False, seconds: float | None = None) -> None:
+        """Wait the settle time (or ``seconds``) after a change; in "verify" mode only when
+        ``always`` or ``seconds`` is given.  The wait is counted as simulated or real, as
+        the sleep given in the options makes it."""
+        wait = self.settle_s if seconds is None else seconds
+        if (always or seconds is not None or self.settle_mode == "wait") and wait > 0:
             t0 = time.perf_counter()
-            self.opt.sleep(self.settle_s)
+            self.opt.sleep(wait)
             self.clock.waiting_s += time.perf_counter() - t0
+            self.clock.settle_s += wait
         self.run_log.heartbeat()
 
     # --- acquisition ----------------------------------------------------------------
@@ -433,8 +494,11 @@ class Sequencer(BoardRun):
         if changed:
             self._wait_settle()
         res = self._acquire(group, plan, label)
-        if self.opt.settle == "verify" and changed:
-            for _ in range(4):
+        if self.settle_mode == "verify" and changed:
+            # records one time constant apart that agree leave less than about 0.6 of the
+            # agreement tolerance still to settle (e^-1 / (1 - e^-1)); 8 of them span 8 tau
+            for _ in range(VERIFY_RECORDS):
+                self._wait_settle(seconds=self.verify_interval_s)
                 again = self._acquire(group, plan, label + " (settling check)")
                 if all(_agree(res[k], again[k]) for k in res if not _failed(group, k)):
                     res = again
@@ -534,7 +598,9 @@ class Sequencer(BoardRun):
         self.step_name = "supply"
         self.progress.step("supply", "supply on, quiescent current")
         self.supply.on()
-        self._wait_settle(always=True)  # coupling capacitors charge: wait in every mode
+        # coupling capacitors charge: wait in every mode, until even the output capacitor's
+        # charging current no longer moves a stage's operating point (the model's figure)
+        self._wait_settle(seconds=self.supply_settle_s)
         tripped = self.supply.tripped()
         current = self.supply.current_a()
         lim = self.limits.supply_current_a
@@ -1135,6 +1201,7 @@ class Sequencer(BoardRun):
             elapsed_s=time.perf_counter() - t0,
             instrument_s=self.clock.instrument_s,
             waiting_s=self.clock.waiting_s,
+            settle_waited_s=self.clock.settle_s,
         )
         if error is not None:
             raise_aborted(error, self.step_name)

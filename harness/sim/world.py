@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import math
 import threading
+import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -30,6 +31,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from harness.model.board import Board, CommonEmitter, EmitterFollower
+from harness.sim.settling import Drifting, Tracker
 
 __all__ = ["Drive", "SignalSet", "TestPoint", "World", "test_points"]
 
@@ -110,14 +112,28 @@ class World:
     of the two (relative to nominal); an output switched off is 0 V, a dead board.
     """
 
-    def __init__(self, board: Board, sim: Any, *, rng_seed: int = 20240601) -> None:
+    def __init__(
+        self,
+        board: Board,
+        sim: Any,
+        *,
+        rng_seed: int = 20240601,
+        settling: bool = False,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
         self.board = board
         self.sim = sim
+        #: with ``settling`` the board moves from balance to balance in the time that
+        #: passes (:mod:`harness.sim.settling`); without, it is always settled
+        self.settling = settling
+        self._clock = clock
+        self._skipped_s = 0.0
+        self._tracker = Tracker(sim)
         self.lock = threading.RLock()
         self.rng = np.random.default_rng(rng_seed)
         self.points = test_points(board)
         self._by_relay = {p.relay: p for p in self.points}
-        self._cache: dict[tuple, SignalSet] = {}
+        self._cache: dict[tuple, list[ResponseLike]] = {}
         self.drive: Callable[[], Drive] = lambda: Drive(0.0, 1000.0, 0.0, 50.0, False)
         self.rails: Callable[[], tuple[float, float]] = lambda: (
             board.supply.v_pos,
@@ -153,35 +169,80 @@ class World:
         if point is None:
             return 0.0
         v = self.board_supply_v()
+        if self.settling:
+            k = [ch.name for ch in self.board.channels].index(point.channel)
+            resp = self._followed(0.0)[k]
+            if isinstance(resp, Drifting):  # still settling: the period's mean
+                node = self.sim.test_point_nodes(point.channel, v)[point.key]
+                return float(np.mean(resp.start.nodes[node]))
         return float(self.sim.operating_point(point.channel, supply_v=v).get(point.key, 0.0))
+
+    # -- time -------------------------------------------------------------------------------------
+
+    def now(self) -> float:
+        """The bench's clock: the wall clock plus any time :meth:`advance` skipped."""
+        return self._clock() + self._skipped_s
+
+    def advance(self, seconds: float) -> None:
+        """Let ``seconds`` pass for the board at once (a simulated wait: tests and scripts
+        pass this as the harness's sleep)."""
+        with self.lock:
+            self._skipped_s += max(float(seconds), 0.0)
+
+    def changed(self) -> None:
+        """The generator or the supply changed: the board starts moving toward the new
+        balance now (instruments call this on every change they make)."""
+        if self.settling:
+            with self.lock:
+                self._tracker.changed(self._key(), self.now())
+
+    def follow_now(self) -> None:
+        """Start following the board from its present state, taken as long settled."""
+        self._followed(0.0)
+
+    def _key(self) -> tuple:
+        d = self.drive()
+        emf = d.emf_vpk if d.on else 0.0
+        offset = d.offset_v if d.on else 0.0
+        return (emf, d.frequency_hz, offset, d.source_ohm, self.board_supply_v())
 
     def is_test_point(self, relay: int) -> bool:
         return relay in self._by_relay
 
     # -- signals --------------------------------------------------------------------------------
 
-    def signals(self) -> SignalSet:
-        """Every scope-visible signal for the present drive and supply (cached)."""
+    def signals(self, duration_s: float = 0.0) -> SignalSet:
+        """Every scope-visible signal for the present drive and supply, over a record
+        starting now and lasting ``duration_s`` (what a settling board shows in it)."""
         d = self.drive()
         v = self.board_supply_v()
-        emf = d.emf_vpk if d.on else 0.0
-        offset = d.offset_v if d.on else 0.0
-        key = (emf, d.frequency_hz, offset, d.source_ohm, v)
-        hit = self._cache.get(key)
-        if hit is not None:
-            return hit
-        if len(self._cache) > 64:
-            self._cache.clear()
-        responses = self._respond(v, emf, d.frequency_hz, offset, d.source_ohm)
+        responses = self._followed(duration_s)
         inputs: list[Callable[[np.ndarray], np.ndarray]] = [_pick(responses[0], 0)]
         extra = self.signal_faults(v)
         inputs += [
             _pick(r, 1, extra.get(ch.name, ()))
             for r, ch in zip(responses, self.board.channels, strict=True)
         ]
-        result = SignalSet(d.frequency_hz, inputs)
-        self._cache[key] = result
-        return result
+        return SignalSet(d.frequency_hz, inputs)
+
+    def _steady(self) -> tuple[tuple, list[ResponseLike]]:
+        """The periodic responses of every channel for the present drive (cached)."""
+        key = self._key()
+        hit = self._cache.get(key)
+        if hit is None:
+            if len(self._cache) > 64:
+                self._cache.clear()
+            emf, f, offset, rs, v = key
+            hit = self._respond(v, emf, f, offset, rs)
+            self._cache[key] = hit
+        return key, hit
+
+    def _followed(self, duration_s: float) -> list[ResponseLike]:
+        key, steady = self._steady()
+        if not self.settling:
+            return steady
+        with self.lock:
+            return self._tracker.follow(key, list(steady), self.now(), duration_s)
 
     def signal_faults(self, supply_v: float) -> dict[str, list[tuple[float, float]]]:
         """Tones the signal faults add to each channel output at this supply (none unpowered):
