@@ -21,6 +21,7 @@ is below :data:`SETTLED_V` the periodic solution is used as it is (no extra cost
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,6 +31,8 @@ __all__ = ["SETTLED_V", "Drifting", "Tracker"]
 
 #: A capacitor state this close to the periodic one counts as settled (volts).
 SETTLED_V = 2e-6
+#: A drive held at least this long is solved before the next change (shorter: a ramp step).
+MIN_HOLD_S = 0.02
 
 
 @dataclass
@@ -85,17 +88,36 @@ class Tracker:
         self.tracks: list[_Track] | None = None
         self.key: tuple | None = None
 
-    def changed(self, key: tuple, now: float) -> None:
+    def changed(self, key: tuple, now: float, steady_for: Callable[[tuple], list[Any]]) -> None:
         """The drive or supply is now ``key``: each channel's state is carried to ``now``
-        under the drive it had, and waits there for the new drive's solution."""
+        under the drive it had, and waits there for the new drive's solution.  A drive
+        never solved (nothing was recorded under it) is solved now with ``steady_for`` if
+        it was held longer than :data:`MIN_HOLD_S`; a shorter one (a step of a level ramp)
+        leaves the state where it was."""
         if self.tracks is None or key == self.key:
             return
+        held = [tr for tr in self.tracks if tr.resp is None and now - tr.t_ref > MIN_HOLD_S]
+        if held and self.key is not None:
+            solved = steady_for(self.key)
+            for tr, r in zip(self.tracks, solved, strict=True):
+                if tr.resp is None and now - tr.t_ref > MIN_HOLD_S:
+                    self._adopt(tr, r)
         for tr in self.tracks:
             if tr.resp is not None:
                 tr.state = propagate(tr.resp, tr.state, now - tr.t_ref)
                 tr.t_ref = now
             tr.resp = None
         self.key = key
+
+    @staticmethod
+    def _adopt(tr: _Track, r: Any) -> None:
+        """Put a pending track under the solved response ``r`` of its drive."""
+        tr.resp = r
+        if r.frequency_hz != tr.f_hz and len(tr.state) % 2 == 0:
+            # a new step h: the voltages one step back are, to first order, today's
+            k = len(tr.state) // 2
+            tr.state = np.concatenate([tr.state[:k], tr.state[:k]])
+        tr.f_hz = r.frequency_hz
 
     def follow(self, key: tuple, responses: list[Any], now: float, duration_s: float) -> list[Any]:
         """What each channel shows over a record starting at ``now`` and lasting
@@ -105,17 +127,12 @@ class Tracker:
             self.tracks = [_Track(r, np.asarray(r.state), now, r.frequency_hz) for r in responses]
             self.key = key
             return responses
-        if key != self.key:
-            self.changed(key, now)
+        if key != self.key:  # a change no instrument reported: it happened now
+            self.changed(key, now, lambda _k: list(responses))
         out = []
         for tr, r in zip(self.tracks, responses, strict=True):
             if tr.resp is None:
-                tr.resp = r
-                if r.frequency_hz != tr.f_hz and len(tr.state) % 2 == 0:
-                    # a new step h: the voltages one step back are, to first order, today's
-                    k = len(tr.state) // 2
-                    tr.state = np.concatenate([tr.state[:k], tr.state[:k]])
-                tr.f_hz = r.frequency_hz
+                self._adopt(tr, r)
             s0 = propagate(r, tr.state, now - tr.t_ref)
             s1 = propagate(r, tr.state, now + duration_s - tr.t_ref)
             if r.state is None or max(_dev(s0, r.state), _dev(s1, r.state)) <= SETTLED_V:

@@ -194,7 +194,7 @@ class World:
         balance now (instruments call this on every change they make)."""
         if self.settling:
             with self.lock:
-                self._tracker.changed(self._key(), self.now())
+                self._tracker.changed(self._key(), self.now(), self._steady_for)
 
     def follow_now(self) -> None:
         """Start following the board from its present state, taken as long settled."""
@@ -228,6 +228,9 @@ class World:
     def _steady(self) -> tuple[tuple, list[ResponseLike]]:
         """The periodic responses of every channel for the present drive (cached)."""
         key = self._key()
+        return key, self._steady_for(key)
+
+    def _steady_for(self, key: tuple) -> list[ResponseLike]:
         hit = self._cache.get(key)
         if hit is None:
             if len(self._cache) > 64:
@@ -235,7 +238,7 @@ class World:
             emf, f, offset, rs, v = key
             hit = self._respond(v, emf, f, offset, rs)
             self._cache[key] = hit
-        return key, hit
+        return hit
 
     def _followed(self, duration_s: float) -> list[ResponseLike]:
         key, steady = self._steady()
