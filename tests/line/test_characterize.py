@@ -101,9 +101,9 @@ def test_level_sweep_capped_at_safe_level(board, tmp_path):
     import dataclasses
 
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.fixture import load_fixture
+    from harness.io.station import load_station
     from harness.run.characterize import CharacterizeOptions, characterize
-    from harness.run.fixture import load_fixture
     from harness.sim.bench import SimBench
     from tests.line.conftest import FIXTURE_TEXT
 

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 
 REPO = Path(__file__).resolve().parents[2]
 BOARD_FILE = REPO / "limits" / "demo-twin-preamp.toml"

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model.board import board_from_dict
 from harness.sim.physics import BETA_R_DEFAULT, BoardSim
 
