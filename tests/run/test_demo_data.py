@@ -9,7 +9,7 @@ from harness.cli.cmd_demo import DEMO_BOARD, DEMO_BOARDS, DEMO_FIXTURE
 from harness.io.fixture import load_fixture
 from harness.io.toml import load_board
 from harness.run.runner import packaged
-from tests.run.conftest import REPO
+from tests.support.bench import REPO
 
 
 @pytest.mark.parametrize(

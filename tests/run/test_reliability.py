@@ -21,7 +21,7 @@ from harness.errors import StageproofError
 from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = [pytest.mark.wire, pytest.mark.reliability]
 

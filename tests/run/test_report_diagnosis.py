@@ -18,7 +18,7 @@ from harness.io.station import load_station
 from harness.report import write_board_report
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, sim_bench
 
 pytestmark = pytest.mark.wire
 

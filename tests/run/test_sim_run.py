@@ -18,7 +18,7 @@ import pytest
 from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import FIXTURE_FILE, sim_bench
+from tests.support.bench import FIXTURE_FILE, sim_bench
 
 pytestmark = pytest.mark.wire
 
