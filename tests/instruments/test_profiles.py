@@ -281,3 +281,31 @@ def test_multi_line_toml_string_is_refused(tmp_path):
     p = _write(tmp_path, GEN.replace(line_text, smuggled))
     with pytest.raises(ProfileError, match=r"commands\.set_amplitude \(line \d+\).*U\+000A"):
         load_profile(p)
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "field"),
+    [
+        ("retries = 1 ", "retries = 1000000 ", "station.retries"),
+        ("timeout_ms = 5000", "timeout_ms = 600000", "station.timeout_ms"),
+    ],
+)
+def test_station_waits_are_bounded(tmp_path, old, new, field):
+    """An unbounded retry count or timeout keeps a board driven while a lost instrument
+    says nothing: both are capped, the error names file, field and the allowed range."""
+    assert old in STATION
+    p = _write(tmp_path, STATION.replace(old, new, 1), "station.toml")
+    with pytest.raises(StationFileError) as ei:
+        load_station(p)
+    e = ei.value
+    assert e.path == str(p) and e.location == field
+    assert "above the maximum" in e.reason
+    assert e.hint and re.search(r"\d+-\d+", e.hint)
+
+
+def test_instrument_waits_are_bounded_too(tmp_path):
+    text = STATION.replace('profile = "scpi-scope"', 'profile = "scpi-scope"\nretries = 50', 1)
+    p = _write(tmp_path, text, "station.toml")
+    with pytest.raises(StationFileError) as ei:
+        load_station(p)
+    assert ei.value.location == "instrument.scope.retries"
