@@ -8,10 +8,10 @@ the output; polarity) or, with ``--json``, the full limits with their provenance
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 
+from harness import jsontext
 from harness.files import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
@@ -97,7 +97,7 @@ def run(args: argparse.Namespace) -> int:
         doc = limits.to_dict()
         doc["digest"] = limits.digest
         doc["board"]["file"] = board.source
-        json.dump(doc, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write(jsontext.dumps(doc, indent=2, sort_keys=True))
         sys.stdout.write("\n")
         return 0
     _print_tables(board, limits)

@@ -13,7 +13,6 @@ Only driver calls here, no SCPI text.
 from __future__ import annotations
 
 import contextlib
-import json
 import logging
 import math
 from collections.abc import Callable, Iterable, Iterator, Sequence
@@ -22,7 +21,7 @@ from typing import Any, Literal, NoReturn
 
 import numpy as np
 
-from harness import __version__
+from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
@@ -196,7 +195,7 @@ def run_header(
         board_name=board.name,
         board_file=board_file,
         board_digest=board.digest,
-        limits_json=json.dumps(limits_dict, sort_keys=True, default=json_default),
+        limits_json=jsontext.dumps(limits_dict, sort_keys=True, default=json_default),
         limits_digest=str(limits.digest),
         station=station,
         fixture=f"{fixture.name} ({fixture.path}, sha256 {fixture.digest}){fixture_note}",
@@ -204,7 +203,7 @@ def run_header(
         instruments={role: identity_text(i) for role, i in identities.items()},
         software_version=__version__,
         settle_note=settle_note,
-        limits_provenance=json.dumps(prov, sort_keys=True, default=json_default)
+        limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
     )
@@ -237,7 +236,20 @@ class RunLog:
         decision: str,
         step: str,
         detail: dict | None = None,
+        reason: str | None = None,
     ) -> MeasurementRow:
+        """Store, keep and show one decided measurement.  A value that could not be measured
+        (None or not finite) is stored as null with no uncertainty and always with a reason
+        in its detail (``reason``, the detail's own, or "not measured"), never silently."""
+        if value is not None and not math.isfinite(value):
+            reason = reason or f"reading not finite ({value})"
+            value = None
+        if value is None:
+            uncertainty = None
+            detail = dict(detail or {})
+            detail["reason"] = reason or detail.get("reason") or "not measured"
+        elif reason:
+            detail = {**(detail or {}), "reason": reason}
         row = MeasurementRow(
             channel=channel,
             name=name,
@@ -248,7 +260,7 @@ class RunLog:
             uncertainty=uncertainty,
             decision=decision,
             step=step,
-            detail_json=json.dumps(detail, default=json_default) if detail else None,
+            detail_json=jsontext.dumps(detail, default=json_default) if detail else None,
         )
         self.store.add_measurement(self.run_id, row)
         self.rows.append(row)
@@ -268,7 +280,7 @@ class RunLog:
                 thdn_percent=a.thdn_percent,
                 clipped=a.clipped,
                 clip_side=a.clip_side,
-                extra_json=json.dumps(extra, default=json_default),
+                extra_json=jsontext.dumps(extra, default=json_default),
             ),
         )
 
