@@ -25,6 +25,7 @@ from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
+from harness.model.design import check_settle_time
 from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
@@ -138,11 +139,22 @@ def clip_criterion(board: Board) -> ClipCriterion:
     )
 
 
-def settle_time_s(limits: Any, fixture: FixtureConfig, override_s: float | None) -> float:
-    """The operator's settle time, else the longest the model gives a tested channel."""
+def settle_time_s(
+    limits: Any, fixture: FixtureConfig, override_s: float | None, board: Board | None = None
+) -> float:
+    """The operator's settle time, else the longest the model gives a tested channel; a
+    model wait over MAX_SETTLE_S (a capacitor's value or unit wrong) is refused with a
+    BoardFileError naming the channel when ``board`` is given, before anything waits."""
     if override_s is not None:
         return override_s
-    return max(float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels)
+    waits = {
+        c.board_channel: float(limits.channels[c.board_channel].settle_time_s)
+        for c in fixture.channels
+    }
+    if board is not None:
+        for name, wait in waits.items():
+            check_settle_time(board, board.channel(name), wait)
+    return max(waits.values())
 
 
 def safe_generator(
@@ -640,7 +652,7 @@ class BoardRun:
         self.scope_ops = GroupScope(scope, board, max_rerange=options.max_rerange, note=note)
         self.safe = safe_generator(generator, board, fixture, options.max_step_up_db)
         self.supply: SupplyGuard | None = supply_guard(fixture, supply)
-        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s)
+        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s, board)
         self.settle_note = ""
         self.run_log = RunLog(store, progress)
         self.rows: list[MeasurementRow] = self.run_log.rows
