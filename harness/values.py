@@ -151,7 +151,7 @@ def parse_quantity(text: str | float | int, unit: str | None = None) -> float:
             raw,
             "has a space inside the value",
             hint="write the value without spaces (a tolerance goes after one space: "
-            "\"6k8 5%\"); one space may only separate a number from its unit: \"6.8 kΩ\"",
+            '"6k8 5%"); one space may only separate a number from its unit: "6.8 kΩ"',
         )
     value, letter = _number(s, raw)
     if unit is None:
