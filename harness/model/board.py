@@ -233,6 +233,13 @@ class Conditions:
     thd_limit_percent: float | None = None
 
 
+#: Most Monte Carlo boards a board file may ask for.  The model keeps every board's
+#: figures in memory (about 1 kB each, see harness.model.limits.limits_memory_bytes) and
+#: takes about 60 µs per board on a two-core machine (benchmarks/bench_memory.py), so a
+#: million is about a gigabyte and a minute; 1e7 was 8.7 GB and over 300 s.
+MAX_SAMPLES = 1_000_000
+
+
 @dataclass(frozen=True)
 class LimitPolicy:
     """How limits are made from tolerances, so a line can freeze and trace them."""
@@ -722,9 +729,13 @@ def board_from_dict(
     if (
         not isinstance(samples, int)
         or isinstance(samples, bool)
-        or not 100 <= samples <= 10_000_000
+        or not 100 <= samples <= MAX_SAMPLES
     ):
-        raise rd.fail("limits.samples", "must be a whole number from 100 to 10000000")
+        raise rd.fail(
+            rd.located("limits.samples", lim, "samples"),
+            f"must be a whole number from 100 to {MAX_SAMPLES}",
+            hint="20000 boards give limits to a few parts in a thousand; more only costs time",
+        )
     coverage = rd.quantity(lim, "coverage", "limits", default=0.9973, unit="")
     if not 0.5 <= coverage < 1.0:
         raise rd.fail("limits.coverage", "must be a fraction from 0.5 to below 1 (e.g. 0.9973)")
