@@ -23,10 +23,10 @@ import numpy as np
 
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
 from harness.model.design import check_settle_time
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
 

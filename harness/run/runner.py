@@ -15,9 +15,9 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import ValueParseError
-from harness.files import load_board
+from harness.io.fixture import FixtureConfig, check_station, load_fixture
+from harness.io.toml import load_board
 from harness.model.board import Board
-from harness.run.fixture import FixtureConfig, check_station, load_fixture
 from harness.run.progress import Progress
 from harness.run.sequence import RunOptions, RunResult, run_board
 
@@ -75,7 +75,7 @@ def prepare(
     limits: Any = None,
 ) -> Prepared:
     """Read and cross-check board, limits, station and fixture; touches no instrument."""
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
     from harness.model import compute_limits
 
     board = load_board(board_file)
@@ -144,25 +144,6 @@ def execute(
             instruments.close()
 
 
-def memory_budget_bytes(fraction: float = 0.5) -> int:
-    """How much memory one computation may take: ``fraction`` of what the system reports
-    available now (Linux /proc/meminfo MemAvailable), else of physical memory (POSIX
-    sysconf), else 2 GiB."""
-    try:
-        with open("/proc/meminfo", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(int(line.split()[1]) * 1024 * fraction)
-    except (OSError, ValueError, IndexError):
-        pass
-    try:
-        import os
-
-        return int(os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE") * fraction)
-    except (AttributeError, ValueError, OSError):
-        return 2 << 30
-
-
 def _size(n: float) -> str:
     for unit, scale in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6)):
         if n >= scale:
@@ -176,6 +157,7 @@ def check_limits_memory(
     """Refuse a Monte Carlo whose estimated peak memory (harness.model.limits_memory_bytes)
     is over the budget, with the largest sample count that fits."""
     from harness.errors import MemoryBudgetError
+    from harness.io.memory import memory_budget_bytes
     from harness.model.limits import limits_memory_bytes
 
     avail = memory_budget_bytes() if budget is None else budget

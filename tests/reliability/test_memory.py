@@ -23,12 +23,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.cli.capture import read_capture, write_capture_csv
 from harness.cli.main import main
 from harness.errors import BoardFileError, CaptureFileError, MalformedReply, MemoryBudgetError
-from harness.files import load_board
-from harness.instruments.profiles import load_profile
 from harness.instruments.session import Session, resource_manager
+from harness.io.capture import read_capture, write_capture_csv
+from harness.io.profiles import load_profile
+from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.model.board import MAX_SAMPLES
 from harness.model.limits import limits_memory_bytes

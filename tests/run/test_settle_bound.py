@@ -11,12 +11,12 @@ from __future__ import annotations
 import pytest
 
 from harness.errors import BoardFileError
-from harness.files import load_board
+from harness.io.fixture import load_fixture
+from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.model.design import MAX_SETTLE_S
 from harness.run.bench_ops import settle_time_s
-from harness.run.fixture import load_fixture
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE
 
 C_IN = 'c_in = { value = "2u2", ref = "C101" }'
 

@@ -89,7 +89,7 @@ def _npz_columns(p: Path, zf: zipfile.ZipFile) -> dict[str, np.ndarray]:
     """The three named arrays of an open archive, each header checked against the bytes the
     archive holds and the memory budget before its data is read."""
     from harness.errors import MemoryBudgetError
-    from harness.run.runner import memory_budget_bytes
+    from harness.io.memory import memory_budget_bytes
 
     members = {n[:-4]: n for n in zf.namelist() if n.endswith(".npy")}
     missing = [c for c in COLUMNS if c not in members]

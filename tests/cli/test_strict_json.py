@@ -21,11 +21,10 @@ import pytest
 from harness import jsontext
 from harness.cli.main import main
 from harness.store import MeasurementRow, RunHeader, open_store
-from tests.run.conftest import BOARD_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, sim_bench
+from tests.support.line import FIXTURE_TEXT
 
 pytestmark = pytest.mark.wire
-
-LINE_FIXTURE = REPO / "tests" / "line" / "conftest.py"
 
 
 def strict(text: str):
@@ -51,10 +50,8 @@ def test_measurement_row_keeps_nothing_infinite():
 
 
 def _fixture(tmp_path, probe: float):
-    text = LINE_FIXTURE.read_text()
-    body = text.split('FIXTURE_TEXT = """\\\n', 1)[1].split('"""', 1)[0]
     path = tmp_path / f"fixture-{probe:g}.toml"
-    path.write_text(body.replace("output_probe = 1.0", f"output_probe = {probe}"))
+    path.write_text(FIXTURE_TEXT.replace("output_probe = 1.0", f"output_probe = {probe}"))
     return path
 
 

@@ -19,8 +19,9 @@ import pytest
 
 from harness.cli.cmd_line import discard_typeahead
 from harness.store import open_store
-from tests.line.conftest import BOARD_FILE, REPO
-from tests.line.test_line_cli import _env, _Reader
+from tests.cli.test_line_cli import _env, _Reader
+from tests.support.bench import BOARD_FILE, REPO
+from tests.support.line import line_bench
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="POSIX pseudo-terminals")
 
@@ -46,6 +47,13 @@ def test_discard_typeahead_empties_a_terminal_and_leaves_a_pipe():
         assert discard_typeahead(pipe_in) is False
         assert pipe_in.readline() == "SN-1\n"
         assert pipe_in.readline() == "SN-2\n"
+
+
+@pytest.fixture(scope="module")
+def bench(board, tmp_path_factory):
+    """One simulated bench for the module: (bench, station file, fixture file)."""
+    with line_bench(board, tmp_path_factory.mktemp("typeahead")) as b:
+        yield b
 
 
 @pytest.mark.wire
