@@ -49,6 +49,7 @@ TOLERANCE_LETTERS: dict[str, float] = {
 #: Unit symbols of the SI (BIPM, The International System of Units, 9th ed. 2019, §2.3.4
 #: Table 4: Ω F V A Hz; Table 2: s) and the quantity each measures.  Symbols are
 #: case-sensitive (§5.2): ``Hz``, never ``hz``; ``ohm`` is the unit's name, in any case.
+#: (Clause and table numbers from memory.)
 UNITS: dict[str, str] = {
     "Ω": "resistance",
     "F": "capacitance",
@@ -105,7 +106,7 @@ def _number(s: str, raw: str) -> tuple[float, str | None]:
         return float(f"{sign}{whole or '0'}.{frac or '0'}e{_EXPONENTS[letter]}"), letter
     hint = "write e.g. 4700, 4.7k, 4k7, R47, 2M2, 100n or 4u7"
     if _WRONG_CASE.search(raw):
-        hint = "unit symbols are case-sensitive (SI Brochure §5.2): write Hz, V, A or F"
+        hint = "unit symbols are case-sensitive (SI Brochure): write Hz, V, A or F"
     raise ValueParseError(
         raw, "not a number, an SI-prefixed number or an IEC 60062 code", hint=hint
     )
