@@ -19,7 +19,7 @@ import pytest
 
 from harness.cli.cmd_line import discard_typeahead
 from harness.store import open_store
-from tests.cli.test_line_cli import _env, _Reader
+from tests.cli.test_line_cli import _env, _Reader, stop
 from tests.support.bench import BOARD_FILE, REPO
 from tests.support.line import line_bench
 
@@ -97,13 +97,7 @@ def test_serial_typed_during_a_test_is_discarded(bench, tmp_path):
         os.write(master, b"quit\n")
         rc = proc.wait(timeout=60)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(timeout=10)
-        reader.join(timeout=5)
-        err = proc.stderr.read()
-        proc.stdout.close()
-        proc.stderr.close()
+        err = stop(proc, reader)
         os.close(master)
     assert rc == 0, err
     assert "testing SN-T2" not in reader.text

@@ -20,8 +20,9 @@ import pytest
 
 from harness import jsontext
 from harness.cli.main import main
-from harness.store import MeasurementRow, RunHeader, open_store
+from harness.store import MeasurementRow, open_store
 from tests.support.bench import BOARD_FILE, sim_bench
+from tests.support.builders import header
 from tests.support.line import FIXTURE_TEXT
 
 pytestmark = pytest.mark.wire
@@ -92,20 +93,7 @@ def test_every_json_output_is_strict_and_over_range_is_stored_with_its_reason(
         call("run over-range", [*run, "--serial", "OVR-1"], codes=(1,))
     # a row with an infinite value, as an older version could store it
     with open_store(db) as store:
-        rid = store.begin_run(
-            RunHeader(
-                serial="INF-1",
-                part_number=board.part_number,
-                board_name=board.name,
-                board_file=str(BOARD_FILE),
-                board_digest=board.digest,
-                limits_json="{}",
-                limits_digest="x",
-                station="s",
-                fixture="f",
-                operator="o",
-            )
-        )
+        rid = store.begin_run(header("INF-1", board.part_number))
         store.add_measurement(
             rid, MeasurementRow("A", "gain", math.inf, "dB", 1.0, math.inf, math.inf, "fail", "n")
         )
