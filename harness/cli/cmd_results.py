@@ -13,6 +13,7 @@ import sys
 from dataclasses import asdict
 from typing import TYPE_CHECKING, Any
 
+from harness.cli.run_args import value_text
 from harness.errors import ValueParseError
 from harness.store import (
     DEFAULT_DB,
@@ -297,10 +298,11 @@ def _show_run(
     ):
         table.add_column(col, overflow="fold")
     for m in meas:
+        words = m.name == "clip_side" or m.value is None
         cells = (
             m.channel,
             m.name,
-            _fmt(m.value),
+            value_text(m, unit=False) if words else _fmt(m.value),
             m.unit,
             _fmt(m.low),
             _fmt(m.high),

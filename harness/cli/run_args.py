@@ -5,6 +5,7 @@ progress display, so one option means the same in every command."""
 from __future__ import annotations
 
 import argparse
+import json
 from typing import Any
 
 from harness.run.sequence import RunOptions
@@ -26,30 +27,70 @@ class RichProgress:
         self.console = console
 
     def step(self, name: str, text: str) -> None:
-        self.console.print(f"[bold]> {name}[/bold]: {text}")
+        from rich.text import Text
+
+        self.console.print(Text.assemble(("> " + name, "bold"), f": {text}"))
 
     def measurement(self, row: Any) -> None:
+        from rich.text import Text
+
         colour = _COLOURS.get(row.decision, "white")
-        value = "-" if row.value is None else f"{row.value:.5g}"
-        lim = limits_text(row)
         ch = f"{row.channel}: " if row.channel else ""
-        self.console.print(
-            f"    {ch}{row.name} = {value} {row.unit} {lim} [{colour}]{row.decision}[/{colour}]",
-            highlight=False,
-        )
+        lim = limits_text(row)
+        line = Text(f"    {ch}{row.name} = {value_text(row)}{' ' + lim if lim else ''} ")
+        line.append(row.decision, style=colour)
+        self.console.print(line, highlight=False)
 
     def note(self, text: str) -> None:
-        self.console.print(f"    [dim]{text}[/dim]")
+        from rich.text import Text
+
+        self.console.print(Text(f"    {text}", style="dim"))
+
+
+def _detail(row: Any) -> dict[str, Any]:
+    text = getattr(row, "detail_json", None)
+    if not text:
+        return {}
+    try:
+        doc = json.loads(text)
+    except ValueError:
+        return {}
+    return doc if isinstance(doc, dict) else {}
+
+
+def value_text(row: Any, *, unit: bool = True) -> str:
+    """A row's value with its unit, in words where a bare number would mislead: the
+    clipping side as the half-cycle it names (its stored value is only the asymmetry
+    figure behind it), a threshold above the safe level as ``> 0.6 V rms (safe level)``."""
+    detail = _detail(row)
+    suffix = f" {row.unit}" if row.unit and unit else ""
+    if row.name == "clip_side":
+        side = detail.get("side")
+        word = f"{side} half-cycle" if side in ("positive", "negative") else "not determined"
+        if row.value is not None:
+            word += f" (asymmetry {row.value:+.3g})"
+        return word
+    if row.value is None:
+        safe = detail.get("safe_input_vrms")
+        if detail.get("result") == "threshold above safe level" and isinstance(safe, int | float):
+            return f"> {safe:g}{suffix} (safe level)"
+        return f"-{suffix}"
+    return f"{row.value:.5g}{suffix}"
 
 
 def limits_text(row: Any) -> str:
-    """A row's limits and uncertainty as ``[low .. high] U=u`` (empty without limits)."""
+    """A row's limits and uncertainty: ``[low .. high]``, or ``≤ high`` / ``≥ low`` for a
+    one-sided limit, then ``U=u`` (empty without limits)."""
     if row.low is None and row.high is None:
         return ""
-    lo = "-inf" if row.low is None else f"{row.low:.5g}"
-    hi = "+inf" if row.high is None else f"{row.high:.5g}"
+    if row.low is None:
+        text = f"≤ {row.high:.5g}"
+    elif row.high is None:
+        text = f"≥ {row.low:.5g}"
+    else:
+        text = f"[{row.low:.5g} .. {row.high:.5g}]"
     u = "" if row.uncertainty is None else f" U={row.uncertainty:.2g}"
-    return f"[{lo} .. {hi}]{u}"
+    return text + u
 
 
 def add_bench_files(p: argparse.ArgumentParser, *, serial_help: str | None = None) -> None:

@@ -4,6 +4,7 @@ own database, and a command pointed at no database says where the demo wrote its
 from __future__ import annotations
 
 import os
+import re
 import shlex
 import subprocess
 import sys
@@ -76,3 +77,29 @@ def test_no_database_hint_names_demo_file(tmp_path, monkeypatch, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "no results database" in err
     assert f"--db {DEMO_DB}" in err, err
+
+
+def test_measurement_lines_read_in_words(demo_run):
+    """The progress lines: the clipping side as a half-cycle, one-sided limits as ``≤``,
+    a threshold the criterion never reached as above the board's safe level."""
+    from harness.cli.cmd_demo import DEMO_BOARD
+    from harness.files import load_board
+    from harness.run.runner import packaged
+
+    _cwd, out = demo_run
+    safe = load_board(packaged("limits", DEMO_BOARD)).conditions.safe_input_vrms
+    assert re.search(r"clip_side = (positive|negative) half-cycle", out), out
+    assert not re.search(r"clip_side = [-+]?\d", out), out
+    assert re.search(r"thd = \S+ % ≤ \d", out), out
+    assert "-inf" not in out and "+inf" not in out
+    # DEMO-0002's channel A (bypass capacitor open) never reaches 1 % THD below the safe level
+    assert f"clip_input = > {safe:g} V rms (safe level)" in out, out
+    assert "clip_input = - V rms" not in out
+
+
+def test_results_run_shows_side_as_word(demo_run, monkeypatch, capsys):
+    cwd, _out = demo_run
+    monkeypatch.chdir(cwd)
+    assert main(["results", "--db", "my demo.db", "--run", "1"]) == 0
+    out = capsys.readouterr().out
+    assert re.search(r"clip_side\s*│\s*(positive|negative) half-cycle", out), out
