@@ -76,7 +76,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         help="list and filter stored runs, or show one run's measurements",
         description="List runs stored in the results database (newest first), filtered by "
         "serial, status, verdict, date and board; --run ID shows that run's measurements "
-        "with their limits and decisions.",
+        "with their limits and decisions.  Times are UTC, shown and read alike.",
     )
     p.add_argument(
         "--db",
@@ -91,13 +91,14 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         "--since",
         type=_date,
         metavar="DATE",
-        help="started on or after (YYYY-MM-DD or ISO date-time, local time)",
+        help="started on or after (YYYY-MM-DD or ISO date-time; UTC, as listed, unless "
+        "an offset such as +02:00 is given)",
     )
     p.add_argument(
         "--until",
         type=_date,
         metavar="DATE",
-        help="started on or before (a bare date includes that whole day)",
+        help="started on or before (UTC; a bare date includes that whole day)",
     )
     p.add_argument("--board", metavar="PN", help="only this part number (or board name)")
     p.add_argument("--limit", type=_positive, metavar="N", help="at most N runs")

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 from typing import Any
 
 from harness.run.sequence import RunOptions
@@ -106,21 +107,40 @@ def add_db(p: argparse.ArgumentParser) -> None:
     p.add_argument("--db", default=None, help="results database (default: stageproof-results.db)")
 
 
+def seconds(text: str) -> float:
+    """argparse type: a wait in seconds, finite and not negative (0 means no wait)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not math.isfinite(value) or value < 0:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be 0 or more seconds (0: no wait after a level change)"
+        )
+    return value
+
+
 def add_settle_wait(
-    p: argparse.ArgumentParser,
-    help: str = "seconds to wait after each level change (default: the model's settle time)",
+    p: argparse.ArgumentParser | argparse._MutuallyExclusiveGroup,
+    help: str = "seconds to wait after each level change, 0 or more "
+    "(default: the model's settle time)",
 ) -> None:
-    p.add_argument("--settle-wait", type=float, default=None, metavar="S", help=help)
+    p.add_argument("--settle-wait", type=seconds, default=None, metavar="S", help=help)
 
 
 def add_run_settings(p: argparse.ArgumentParser) -> None:
-    """The production run's settings: raw records, settling, the decision policy."""
+    """The production run's settings: raw records, settling, the decision policy.
+
+    ``--settle-wait`` and ``--verify-settling`` are two ways to settle and exclude each
+    other: given both, the wait would be silently ignored."""
     p.add_argument("--keep-records", action="store_true", help="store the raw records too")
-    add_settle_wait(p)
-    p.add_argument(
+    settle = p.add_mutually_exclusive_group()
+    add_settle_wait(settle)
+    settle.add_argument(
         "--verify-settling",
         action="store_true",
-        help="repeat records after level changes until they agree, instead of waiting",
+        help="repeat records after level changes until they agree, instead of waiting "
+        "(not with --settle-wait)",
     )
     p.add_argument(
         "--accept-conditional-pass",
