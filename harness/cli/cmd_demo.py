@@ -91,11 +91,12 @@ def run_demo(
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
     from rich.table import Table
     from rich.text import Text
 
-    console = Console()
+    from harness.cli.term import make_console
+
+    console = make_console()
     t0 = time.perf_counter()
     tmp = tempfile.mkdtemp(prefix="stageproof-demo-")
     workdir = Path(tmp)
@@ -121,7 +122,7 @@ def run(args: argparse.Namespace) -> int:
         table.add_row(
             demo.serial,
             demo.story,
-            f"[{colour}]{res.verdict}[/{colour}]",
+            Text(str(res.verdict), style=colour),
             ", ".join(failing) or "-",
         )
     console.print(table)

@@ -136,14 +136,18 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _print_tables(board, limits: BoardLimits) -> None:
-    from rich.console import Console
     from rich.table import Table
     from rich.text import Text
 
-    console = Console()
+    from harness.cli.term import make_console
+
+    console = make_console()
     prov = limits.provenance
     console.print(
-        f"[bold]{limits.board}[/bold]  {limits.part_number} rev {limits.revision}  ({board.source})"
+        Text.assemble(
+            (limits.board, "bold"),
+            f"  {limits.part_number} rev {limits.revision}  ({board.source})",
+        )
     )
     console.print(
         f"Monte Carlo: {prov.samples} boards, coverage {prov.coverage:g}, seed "
@@ -154,8 +158,10 @@ def _print_tables(board, limits: BoardLimits) -> None:
     for name, ch in limits.channels.items():
         design = design_channel(board, name)
         table = Table(
-            title=f"channel {name}  ({'inverting' if ch.inverting else 'non-inverting'}"
-            f", phase {ch.phase_deg:g}°)",
+            title=Text(
+                f"channel {name}  ({'inverting' if ch.inverting else 'non-inverting'}"
+                f", phase {ch.phase_deg:g}°)"
+            ),
             title_justify="left",
         )
         for col in ("quantity", "nominal", "low", "high", *CORNER_COLUMNS, "unit"):

@@ -178,11 +178,11 @@ def _when(text: str | None) -> str:
 def _console() -> Console:
     """A console for the terminal's width; 160 columns when piped, so a file keeps
     whole rows instead of 80-column folds."""
-    from rich.console import Console
+    from harness.cli.term import make_console
 
-    console = Console()
+    console = make_console()
     if not console.is_terminal:
-        console = Console(width=160)
+        console = make_console(width=160)
     return console
 
 
@@ -194,7 +194,7 @@ def _list_table(db: str, rows: list[dict[str, Any]]) -> None:
     if not rows:
         console.print(f"no runs in {db} match")
         return
-    table = Table(title=f"runs in {db} (UTC)")
+    table = Table(title=Text(f"runs in {db} (UTC)"))
     for col in (
         "run",
         "serial",

@@ -13,6 +13,7 @@ from typing import Any
 
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
+from harness.cli.term import make_console, styled
 from harness.run.runner import execute, prepare, validate_serial
 from harness.run.sequence import RunResult
 
@@ -23,16 +24,16 @@ def print_verdict(console: Any, result: RunResult, title: str | None = None) -> 
     """The final table: one line per channel, with the failing measurements named."""
     from rich.table import Table
 
-    table = Table(title=title or f"{result.serial}: {result.verdict or result.status}")
+    table = Table(title=styled(title or f"{result.serial}: {result.verdict or result.status}"))
     table.add_column("channel")
     table.add_column("verdict")
     table.add_column("not accepted")
     for ch, v in result.channels.items():
         colour = "green" if v.verdict == "PASS" else "red"
-        table.add_row(ch, f"[{colour}]{v.verdict}[/{colour}]", ", ".join(v.failing) or "-")
+        table.add_row(styled(ch), styled(v.verdict, colour), styled(", ".join(v.failing) or "-"))
     console.print(table)
     if result.reason:
-        console.print(f"reason: {result.reason}")
+        console.print(styled(f"reason: {result.reason}"))
     console.print(
         f"run {result.run_id}, retest {result.retest}, {result.acquisitions} "
         f"acquisitions ({result.search_acquisitions} in the clipping search), "
@@ -58,20 +59,21 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
+    from rich.text import Text
 
     from harness.store import DEFAULT_DB
 
     serial = validate_serial(args.serial)  # before anything touches an instrument
     prep = prepare(args.board, args.fixture, args.station)
-    console = Console(stderr=args.json)
+    console = make_console(stderr=args.json)
     progress = None if args.json else RichProgress(console)
     options = run_args.run_options(args, operator=args.operator)
     if not args.json:
         console.print(
-            f"[bold]{prep.board.name}[/bold] ({prep.board.part_number} rev "
-            f"{prep.board.revision}), serial {serial}",
-            highlight=False,
+            Text.assemble(
+                (prep.board.name, "bold"),
+                f" ({prep.board.part_number} rev {prep.board.revision}), serial {serial}",
+            )
         )
     result = execute(prep, serial, args.db or DEFAULT_DB, options=options, progress=progress)
     if args.json:
