@@ -14,8 +14,10 @@ from typing import Any
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.cli.term import make_console, styled
+from harness.errors import RunAborted
 from harness.run.runner import execute, prepare, validate_serial
 from harness.run.sequence import RunResult
+from harness.store import utc_now
 
 __all__ = ["RichProgress", "print_verdict", "register", "run"]
 
@@ -40,6 +42,31 @@ def print_verdict(console: Any, result: RunResult, title: str | None = None) -> 
         f"{result.elapsed_s:.1f} s; {result.settle_note}",
         highlight=False,
     )
+
+
+def interrupted_words(db: str, serial: str, since: str, *, supply: bool = True) -> str:
+    """What Ctrl-C left behind, in the words ``line`` uses: the sources' state and the run
+    stored as aborted (read back from the store, never assumed)."""
+    from harness.errors import StageproofError
+    from harness.store import open_store
+
+    what = "interrupted by the operator (Ctrl-C)"
+    try:
+        with open_store(db, readonly=True) as store:
+            runs = store.list_runs(serial=serial, since=since, limit=1)
+    except StageproofError:
+        runs = []
+    if not runs:
+        return f"{what} before the run began: nothing stored"
+    run = runs[0]
+    sources = "generator and supply" if supply else "generator"
+    if "output state unknown" in (run.reason or ""):
+        state = "generator output state UNKNOWN: check the generator" + (
+            "; supply switched off" if supply else ""
+        )
+    else:
+        state = f"{sources} switched off"
+    return f"{what}: {state}, run {run.run_id} stored as {run.status}"
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -75,7 +102,13 @@ def run(args: argparse.Namespace) -> int:
                 f" ({prep.board.part_number} rev {prep.board.revision}), serial {serial}",
             )
         )
-    result = execute(prep, serial, args.db or DEFAULT_DB, options=options, progress=progress)
+    db = args.db or DEFAULT_DB
+    started = utc_now()
+    try:
+        result = execute(prep, serial, db, options=options, progress=progress)
+    except KeyboardInterrupt:
+        has_supply = prep.station.get("supply") is not None
+        raise RunAborted(interrupted_words(db, serial, started, supply=has_supply)) from None
     if args.json:
         json.dump(result.to_dict(), sys.stdout, indent=2)
         sys.stdout.write("\n")
