@@ -15,11 +15,11 @@ import pytest
 
 from harness.diagnose.fromstore import diagnose_run
 from harness.instruments.bench import connect
-from harness.instruments.station import load_station
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
+from harness.io.station import load_station
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import sim_bench
+from tests.support.bench import sim_bench
 
 pytestmark = pytest.mark.wire
 

@@ -16,11 +16,11 @@ from pathlib import Path
 
 import pytest
 
-from harness.files import load_board
 from harness.instruments.bench import connect
-from harness.instruments.station import load_station
+from harness.io.fixture import load_fixture
+from harness.io.station import load_station
+from harness.io.toml import load_board
 from harness.model import compute_limits
-from harness.run.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.bench import SimBench
 from harness.store import open_store
