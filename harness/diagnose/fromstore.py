@@ -83,36 +83,47 @@ def signal_candidates(board: Board, modes: Mapping[str, Mapping[str, Any]]) -> l
             total = sum(weights)
             for st, w in zip(stages, weights, strict=True):
                 out.append(
-                    Candidate(
-                        ref=f"{ch_name}.{st.name}",
-                        kind="oscillate",
-                        fitted_value=f,
-                        score=0.0,
-                        explained=[f"{ch_name}.condition"],
-                        evidence=seen,
-                        detail=f"{f:.6g},{level:.3g}",
-                        channel=ch_name,
-                        stage=st.name,
-                        probability=0.9 * w / total,
+                    _signal(
+                        f"{ch_name}.{st.name}",
+                        "oscillate",
+                        f,
+                        f"{f:.6g},{level:.3g}",
+                        0.9 * w / total,
+                        seen,
+                        ch_name,
+                        st.name,
                     )
                 )
         elif mode.get("mode") == "hum" and ev.get("frequency_hz"):
             f = float(ev["frequency_hz"])
             at_input = float(ev.get("level_vrms") or 0.0) * 2**0.5 / max(gain, 1e-12)
-            out.append(
-                Candidate(
-                    ref=ch_name,
-                    kind="hum",
-                    fitted_value=f,
-                    score=0.0,
-                    explained=[f"{ch_name}.condition"],
-                    evidence=seen,
-                    detail=f"{f:g},{at_input:.3g}",
-                    channel=ch_name,
-                    probability=0.9,
-                )
-            )
+            out.append(_signal(ch_name, "hum", f, f"{f:g},{at_input:.3g}", 0.9, seen, ch_name))
     return out
+
+
+def _signal(
+    ref: str,
+    kind: str,
+    f: float,
+    detail: str,
+    probability: float,
+    seen: list[Evidence],
+    channel: str,
+    stage: str = "",
+) -> Candidate:
+    """A candidate the stage model did not score: the channel's mode is its evidence."""
+    return Candidate(
+        ref=ref,
+        kind=kind,
+        fitted_value=f,
+        score=0.0,
+        explained=[f"{channel}.condition"],
+        evidence=seen,
+        detail=detail,
+        channel=channel,
+        stage=stage,
+        probability=probability,
+    )
 
 
 def diagnose_run(

@@ -583,15 +583,9 @@ class Sequencer(BoardRun):
                     },
                 )
             if self.criterion.kind == "thd" and self.criterion.threshold_percent < resolvable_at:
-                clim = lim.clip_input_vrms
-                self._row(
+                self._clip_row(
                     c.board_channel,
-                    "clip_input",
-                    None,
-                    "V rms",
-                    limit_get(clim, "low"),
-                    limit_get(clim, "high"),
-                    None,
+                    lim,
                     "not resolvable",
                     {"why": "clip criterion THD below the bench's floor"},
                 )
@@ -805,6 +799,21 @@ class Sequencer(BoardRun):
             wide=wide.get(c.board_channel),
         )
 
+    def _clip_row(self, ch: str, lim: Any, decision: str, detail: dict) -> None:
+        """A clipping-threshold row with no value (not resolvable, or not searched)."""
+        clim = lim.clip_input_vrms
+        self._row(
+            ch,
+            "clip_input",
+            None,
+            "V rms",
+            limit_get(clim, "low"),
+            limit_get(clim, "high"),
+            None,
+            decision,
+            detail,
+        )
+
     def _failed_rows(self, st: _ChannelState, a: RecordAnalysis | None, level: float) -> None:
         """A channel in a failure mode: its measurements stored as failed, with the mode and
         its evidence; a gain still measurable (reversed polarity, gross gain error, hum) is
@@ -845,17 +854,8 @@ class Sequencer(BoardRun):
             "fail",
             detail,
         )
-        clim = lim.clip_input_vrms
-        self._row(
-            ch,
-            "clip_input",
-            None,
-            "V rms",
-            limit_get(clim, "low"),
-            limit_get(clim, "high"),
-            None,
-            "fail",
-            {**detail, "result": f"clipping search skipped: channel {cond.mode}"},
+        self._clip_row(
+            ch, lim, "fail", {**detail, "result": f"clipping search skipped: channel {cond.mode}"}
         )
         if a is not None:
             self._sweep_point(ch, a, level)
