@@ -162,7 +162,7 @@ class ChannelLimits:
     worst_case: dict[str, WorstCase] = field(default_factory=dict)
     #: time for the output's DC level to settle (a DC shift only; harness.model.settling)
     dc_settle_time_s: float = 0.0
-    #: wait after supply on (operating point within 0.2 % of the supply span)
+    #: wait after supply on (operating point within 0.5 % of the supply span)
     supply_settle_time_s: float = 0.0
     #: the nominal design's time constants: name -> {"kind": ..., "tau_s": ...}
     time_constants: dict[str, dict[str, Any]] = field(default_factory=dict)
