@@ -172,7 +172,10 @@ def diagnose_run(
         )
     screened: list[str] = []
     cands = rank_faults(board, meas, top=top, spreads=spreads, screened_out=screened)
-    signal = signal_candidates(board, channel_modes(rows))
+    modes = channel_modes(rows)
+    # a channel in a failure mode does not agree with a good board, whatever its rows say
+    screened[:] = [c for c in screened if c not in modes]
+    signal = signal_candidates(board, modes)
     if signal:
         # what the stage model cannot predict comes first; the component ranking keeps its
         # order behind, its probabilities shared with them

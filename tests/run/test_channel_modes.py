@@ -87,3 +87,4 @@ def test_parasitic_oscillation_is_named_with_frequency_and_level(board, limits, 
     assert cond["evidence"]["level_vpk"] == pytest.approx(0.2, rel=0.1)
     assert res.channels["B"].verdict == "PASS"
     assert diagnosis.candidates[0].spec.startswith("A.buffer:oscillate=400000")
+    assert "A" not in diagnosis.screened_out  # an oscillating channel is no good channel
