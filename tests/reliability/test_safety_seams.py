@@ -26,6 +26,7 @@ import signal
 import sqlite3
 import sys
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -51,7 +52,25 @@ def _env(tmp: Path) -> dict[str, str]:
     }
 
 
-def _cmd(verb: str, station: Path, rig: Any, db: Path, *extra: str, settle: str = "0") -> list[str]:
+@dataclass(frozen=True)
+class Rig:
+    """The reliability rig's board and fixture files, a database and the commands' env."""
+
+    files: Any
+    board: Any
+    db: Path
+    env: dict[str, str]
+
+
+@pytest.fixture()
+def rig(tmp_path: Path) -> Rig:
+    files = write_rig(tmp_path)
+    return Rig(files, load_board(files.board), tmp_path / "r.db", _env(tmp_path))
+
+
+def _cmd(
+    verb: str, station: Path, files: Any, db: Path, *extra: str, settle: str = "0"
+) -> list[str]:
     return [
         sys.executable,
         "-m",
@@ -60,9 +79,9 @@ def _cmd(verb: str, station: Path, rig: Any, db: Path, *extra: str, settle: str 
         "--station",
         str(station),
         "--fixture",
-        str(rig.fixture),
+        str(files.fixture),
         "--board",
-        str(rig.board),
+        str(files.board),
         "--db",
         str(db),
         "--settle-wait",
@@ -115,8 +134,8 @@ def _runs(db: Path) -> dict[str, tuple[str, str | None]]:
         conn.close()
 
 
-def _kill_in_clip_search(bench: Any, station: Path, rig: Any, db: Path, env: dict) -> None:
-    run = LiveRun(_cmd("run", station, rig, db, "--serial", f"SN-KILL-{time.time_ns()}"), env)
+def _kill_in_clip_search(bench: Any, station: Path, files: Any, db: Path, env: dict) -> None:
+    run = LiveRun(_cmd("run", station, files, db, "--serial", f"SN-KILL-{time.time_ns()}"), env)
     _wait_step(run, "clip")
     time.sleep(0.05)
     run.proc.send_signal(signal.SIGKILL)
@@ -129,18 +148,15 @@ def _kill_in_clip_search(bench: Any, station: Path, rig: Any, db: Path, env: dic
     assert bench.generator.amplitude_vpp > 0
 
 
-def test_kill_then_restart_switches_sources_off_first(tmp_path: Path) -> None:
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    db = tmp_path / "r.db"
-    env = _env(tmp_path)
+def test_kill_then_restart_switches_sources_off_first(tmp_path: Path, rig: Rig) -> None:
+    board, db, env, files = rig.board, rig.db, rig.env, rig.files
     with started_bench(board, tmp_path, timeout_ms=2000) as (bench, station):
         # 1. killed mid clipping search; the next `line` must not wait at a prompt with the
         #    board driven: every source is off before its first scope command and before
         #    it asks for anything.
-        _kill_in_clip_search(bench, station, rig, db, env)
+        _kill_in_clip_search(bench, station, files, db, env)
         first_scope = _spy_first(bench.scope, bench, "scope")
-        line = LiveRun(_cmd("line", station, rig, db, "--operator", "Ann"), env, stdin=-1)
+        line = LiveRun(_cmd("line", station, files, db, "--operator", "Ann"), env, stdin=-1)
         end = time.monotonic() + 60
         while time.monotonic() < end and not any(
             "Scan or type a serial" in ln for ln in line.printed()
@@ -157,10 +173,10 @@ def test_kill_then_restart_switches_sources_off_first(tmp_path: Path) -> None:
 
         # 2. killed again; the next `run` switches off before its first scope command (and
         #    so before the limits, which come after the connect) and completes.
-        _kill_in_clip_search(bench, station, rig, db, env)
+        _kill_in_clip_search(bench, station, files, db, env)
         first_scope = _spy_first(bench.scope, bench, "scope")
         t0 = time.monotonic()
-        nxt = LiveRun(_cmd("run", station, rig, db, "--serial", "SN-NEXT"), env)
+        nxt = LiveRun(_cmd("run", station, files, db, "--serial", "SN-NEXT"), env)
         while time.monotonic() - t0 < 30 and bench.generator.output_on:
             time.sleep(0.002)
         off_after_s = time.monotonic() - t0
@@ -176,18 +192,15 @@ def test_kill_then_restart_switches_sources_off_first(tmp_path: Path) -> None:
     print(f"\nsources off {off_after_s:.2f} s after the next run was launched")
 
 
-def test_two_runs_one_station(tmp_path: Path) -> None:
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    db = tmp_path / "r.db"
-    env = _env(tmp_path)
+def test_two_runs_one_station(tmp_path: Path, rig: Rig) -> None:
+    board, db, env, files = rig.board, rig.db, rig.env, rig.files
     with started_bench(board, tmp_path, timeout_ms=2000) as (bench, station):
         # the first run waits 0.5 s after each level change: busy for seconds, certainly
         # still holding the station while the second one starts
-        first = LiveRun(_cmd("run", station, rig, db, "--serial", "SN-FIRST", settle="0.5"), env)
+        first = LiveRun(_cmd("run", station, files, db, "--serial", "SN-FIRST", settle="0.5"), env)
         _wait_step(first, "supply")
         levels_before = len(bench.generator_log)
-        second = LiveRun(_cmd("run", station, rig, db, "--serial", "SN-SECOND"), env)
+        second = LiveRun(_cmd("run", station, files, db, "--serial", "SN-SECOND"), env)
         rc2, err2 = second.finish(60)
         lines = [ln for ln in err2.splitlines() if ln.strip()]
         assert rc2 == 2, err2
@@ -232,13 +245,13 @@ def _with_command(op: str, text: str) -> str:
         ("set_frequency", r"SOURce{output}:FREQuency:CW {frequency_hz}\nOUTPut{output}:STATe ON"),
     ],
 )
-def test_profile_injection_by_line_feed_refused_at_load(tmp_path: Path, op: str, text: str):
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    env = _env(tmp_path)
+def test_profile_injection_by_line_feed_refused_at_load(
+    tmp_path: Path, rig: Rig, op: str, text: str
+) -> None:
+    board, env, files = rig.board, rig.env, rig.files
     with started_bench(board, tmp_path) as (bench, _station):
         st = _station_with(bench, tmp_path, _with_command(op, text))
-        run = LiveRun(_cmd("run", st, rig, tmp_path / "r.db", "--serial", "SN-INJ"), env)
+        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-INJ"), env)
         rc, err = run.finish(60)
         lines = [ln for ln in err.splitlines() if ln.strip()]
         assert rc == 2 and len(lines) == 1, err
@@ -248,43 +261,41 @@ def test_profile_injection_by_line_feed_refused_at_load(tmp_path: Path, op: str,
         assert bench.max_commanded_vpp() <= safe_vpp(board)
 
 
-def test_profile_injection_by_chained_command_caught_by_read_back(tmp_path: Path) -> None:
+def test_profile_injection_by_chained_command_caught_by_read_back(tmp_path: Path, rig: Rig) -> None:
     """No control character, a second command after ``;`` (SCPI-99 vol. 1 §6.2.1: message
     units separated by semicolons): the generator reports 5 Vpp, the harness stops before
     the output is ever on, so the board never sees it."""
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    env = _env(tmp_path)
+    board, env, files = rig.board, rig.env, rig.files
     smuggled = _with_command(
         "set_amplitude",
         "SOURce{output}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude};:SOURce{output}:VOLTage 5",
     )
     with started_bench(board, tmp_path) as (bench, _station):
         st = _station_with(bench, tmp_path, smuggled)
-        run = LiveRun(_cmd("run", st, rig, tmp_path / "r.db", "--serial", "SN-CHAIN"), env)
+        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-CHAIN"), env)
         rc, err = run.finish(60)
         assert rc == 2, err
         assert "reports" in err and "safe input level" in err
         assert bench.max_commanded_vpp() == pytest.approx(5.0)  # the smuggled setting
         assert bench.max_commanded_vpp(while_on=True) <= safe_vpp(board)  # never while on
         assert not bench.generator.output_on
-    assert _runs(tmp_path / "r.db")["SN-CHAIN"][0] == "aborted"
+    assert _runs(rig.db)["SN-CHAIN"][0] == "aborted"
 
 
-def test_level_multiplied_behind_the_harness_caught_by_the_input_probe(tmp_path: Path):
+def test_level_multiplied_behind_the_harness_caught_by_the_input_probe(
+    tmp_path: Path, rig: Rig
+) -> None:
     """A profile that scales every setting a hundredfold (``{amplitude}E2``) and cannot read the
     amplitude back: the level measured on the input probe stops the run at the first
     acquisition above the safe level, and the output is switched off at once."""
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    env = _env(tmp_path)
+    board, env, files = rig.board, rig.env, rig.files
     text = _with_command(
         "set_amplitude", "SOURce{output}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}E2"
     )
     text = re.sub(r"(?m)^query_amplitude = .*\n", "", text)
     with started_bench(board, tmp_path) as (bench, _station):
         st = _station_with(bench, tmp_path, text)
-        run = LiveRun(_cmd("run", st, rig, tmp_path / "r.db", "--serial", "SN-X10"), env)
+        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-X10"), env)
         rc, err = run.finish(120)
         assert rc == 2, err
         assert "input probe" in err and "safe input level" in err
@@ -304,20 +315,18 @@ def test_level_multiplied_behind_the_harness_caught_by_the_input_probe(tmp_path:
                 t_over = e.time_s
         assert t_over is not None and t_off is not None
         assert t_off - t_over < 2.0, t_off - t_over
-    stored = _runs(tmp_path / "r.db")["SN-X10"]
+    stored = _runs(rig.db)["SN-X10"]
     assert stored[0] == "aborted" and "input probe" in (stored[1] or "")
 
 
-def test_output_off_ignored_is_unknown_never_off(tmp_path: Path) -> None:
+def test_output_off_ignored_is_unknown_never_off(tmp_path: Path, rig: Rig) -> None:
     """``output_off = "*WAI"`` (IEEE 488.2 §10.39: wait-to-continue, changes nothing): the
     read-back after the first switch-off in the run finds the output on."""
-    rig = write_rig(tmp_path)
-    board = load_board(rig.board)
-    env = _env(tmp_path)
+    board, env, files = rig.board, rig.env, rig.files
     db = tmp_path / "r.db"
     with started_bench(board, tmp_path) as (bench, _station):
         st = _station_with(bench, tmp_path, _with_command("output_off", "*WAI"))
-        run = LiveRun(_cmd("run", st, rig, db, "--serial", "SN-DEAF"), env)
+        run = LiveRun(_cmd("run", st, files, db, "--serial", "SN-DEAF"), env)
         rc, err = run.finish(120)
         out = "\n".join(run.printed())
         assert rc == 2, err
@@ -331,7 +340,7 @@ def test_output_off_ignored_is_unknown_never_off(tmp_path: Path) -> None:
             r"not confirmed off|switch(ed)? it off|output_off", "", stored[1]
         )
         # the next command will not start on a station it cannot switch off
-        again = LiveRun(_cmd("run", st, rig, db, "--serial", "SN-DEAF-2"), env)
+        again = LiveRun(_cmd("run", st, files, db, "--serial", "SN-DEAF-2"), env)
         rc2, err2 = again.finish(60)
         assert rc2 == 2 and "not confirmed off after connecting" in err2, err2
         assert "SN-DEAF-2" not in _runs(db)
