@@ -442,7 +442,9 @@ class Scope(_Driver):
         limits: dict[int, tuple[float, float]] = {}
         for n in wanted:
             cmd = self.profile.render("fetch", input=n)
-            data = self.session.query_block(cmd, fmt, big_endian=big, timeout_ms=tmo, retry=False)
+            data = self.session.query_block(
+                cmd, fmt, big_endian=big, timeout_ms=tmo, retry=False, max_points=self._points
+            )
             if len(data) != self._points:
                 self.session.check_errors(cmd)  # an instrument refusal explains it best
                 raise MalformedReply(

@@ -19,10 +19,10 @@ from typing import Any
 import pytest
 
 from harness.errors import InstrumentError, StationBusy
-from harness.instruments.station import load_station
+from harness.io.station import load_station
 from harness.run.safety import connect_safe, safe_station
 from harness.run.station_lock import lock_path, take_lock
-from tests.run.conftest import REPO, free_port, sim_bench
+from tests.support.bench import REPO, free_port, sim_bench
 
 pytestmark = pytest.mark.wire
 
