@@ -229,6 +229,17 @@ def _station_with(bench: Any, folder: Path, profile_text: str) -> Path:
     return st
 
 
+def _run_with_profile(
+    bench: Any, rig: Rig, tmp_path: Path, profile_text: str, serial: str, timeout_s: float = 120
+) -> tuple[int, str]:
+    """``stageproof run`` on the bench with ``profile_text`` as its generator profile:
+    (exit status, stderr)."""
+    st = _station_with(bench, tmp_path, profile_text)
+    return LiveRun(_cmd("run", st, rig.files, rig.db, "--serial", serial), rig.env).finish(
+        timeout_s
+    )
+
+
 def _with_command(op: str, text: str) -> str:
     line = next(ln for ln in GEN_PROFILE.splitlines() if ln.startswith(f"{op} = "))
     return GEN_PROFILE.replace(line, f'{op} = "{text}"')
@@ -248,11 +259,9 @@ def _with_command(op: str, text: str) -> str:
 def test_profile_injection_by_line_feed_refused_at_load(
     tmp_path: Path, rig: Rig, op: str, text: str
 ) -> None:
-    board, env, files = rig.board, rig.env, rig.files
+    board = rig.board
     with started_bench(board, tmp_path) as (bench, _station):
-        st = _station_with(bench, tmp_path, _with_command(op, text))
-        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-INJ"), env)
-        rc, err = run.finish(60)
+        rc, err = _run_with_profile(bench, rig, tmp_path, _with_command(op, text), "SN-INJ", 60)
         lines = [ln for ln in err.splitlines() if ln.strip()]
         assert rc == 2 and len(lines) == 1, err
         assert "my-generator.toml" in lines[0] and f"commands.{op} (line " in lines[0]
@@ -265,15 +274,13 @@ def test_profile_injection_by_chained_command_caught_by_read_back(tmp_path: Path
     """No control character, a second command after ``;`` (SCPI-99 vol. 1 §6.2.1: message
     units separated by semicolons): the generator reports 5 Vpp, the harness stops before
     the output is ever on, so the board never sees it."""
-    board, env, files = rig.board, rig.env, rig.files
+    board = rig.board
     smuggled = _with_command(
         "set_amplitude",
         "SOURce{output}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude};:SOURce{output}:VOLTage 5",
     )
     with started_bench(board, tmp_path) as (bench, _station):
-        st = _station_with(bench, tmp_path, smuggled)
-        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-CHAIN"), env)
-        rc, err = run.finish(60)
+        rc, err = _run_with_profile(bench, rig, tmp_path, smuggled, "SN-CHAIN", 60)
         assert rc == 2, err
         assert "reports" in err and "safe input level" in err
         assert bench.max_commanded_vpp() == pytest.approx(5.0)  # the smuggled setting
@@ -288,15 +295,13 @@ def test_level_multiplied_behind_the_harness_caught_by_the_input_probe(
     """A profile that scales every setting a hundredfold (``{amplitude}E2``) and cannot read the
     amplitude back: the level measured on the input probe stops the run at the first
     acquisition above the safe level, and the output is switched off at once."""
-    board, env, files = rig.board, rig.env, rig.files
+    board = rig.board
     text = _with_command(
         "set_amplitude", "SOURce{output}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}E2"
     )
     text = re.sub(r"(?m)^query_amplitude = .*\n", "", text)
     with started_bench(board, tmp_path) as (bench, _station):
-        st = _station_with(bench, tmp_path, text)
-        run = LiveRun(_cmd("run", st, files, tmp_path / "r.db", "--serial", "SN-X10"), env)
-        rc, err = run.finish(120)
+        rc, err = _run_with_profile(bench, rig, tmp_path, text, "SN-X10", 120)
         assert rc == 2, err
         assert "input probe" in err and "safe input level" in err
         assert not bench.generator.output_on
