@@ -49,3 +49,25 @@ def spice(ngspice: str, tmp_path: Path):
         return run_ngspice(ngspice, netlist, tmp_path, timeout_s)
 
     return _run
+
+
+@pytest.fixture(scope="session")
+def pg_cluster():
+    """One throwaway PostgreSQL cluster for the whole session (tests/pg_cluster.py);
+    skips with the reason outside CI, fails in CI."""
+    import pg_cluster as pgc
+
+    try:
+        cluster = pgc.start()
+    except RuntimeError as exc:
+        if os.environ.get("CI"):
+            pytest.fail(f"CI must run the PostgreSQL tests: {exc}")
+        pytest.skip(str(exc))
+    yield cluster
+    cluster.stop()
+
+
+@pytest.fixture
+def pg_url(pg_cluster) -> str:
+    """URL of a fresh, empty database on the session's cluster."""
+    return pg_cluster.new_database()

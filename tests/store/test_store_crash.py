@@ -146,14 +146,16 @@ def test_live_process_run_is_not_marked_aborted(tmp_path: Path) -> None:
 
 @needs_proc
 def test_reused_pid_and_foreign_host(tmp_path: Path) -> None:
-    """A live pid with another start token is not the owner (pid reuse after a reboot);
-    a run owned on another host is left alone unless its heartbeat is stale."""
+    """Runs written by schema version 1 (no run lock, token 'v1:...') keep the pid rule: a
+    live pid with another start token is not the owner (pid reuse after a reboot); a run
+    owned on another host is left alone unless its heartbeat is stale."""
     db = tmp_path / "owner.db"
     with open_store(db) as store:
         reused = store.begin_run(header("SN-R"))
         foreign = store.begin_run(header("SN-F"))
         raw = sqlite3.connect(db)
         try:
+            raw.execute("UPDATE runs SET run_token = 'v1:' || run_id")
             raw.execute("UPDATE runs SET start_token = 'boot:1' WHERE run_id = ?", (reused,))
             raw.execute("UPDATE runs SET host = 'station-elsewhere' WHERE run_id = ?", (foreign,))
             raw.commit()
