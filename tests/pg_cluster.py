@@ -26,7 +26,9 @@ SERVER_USER = "postgres"
 
 def find_bin() -> Path | None:
     """The newest installed server's bin folder, or None."""
-    found = sorted(glob.glob("/usr/lib/postgresql/*/bin/initdb"), key=lambda p: int(p.split("/")[4]))
+    found = sorted(
+        glob.glob("/usr/lib/postgresql/*/bin/initdb"), key=lambda p: int(p.split("/")[4])
+    )
     return Path(found[-1]).parent if found else None
 
 
@@ -59,8 +61,16 @@ class Cluster:
 
     def stop(self) -> None:
         subprocess.run(
-            [*self.run_as, str(self.bin / "pg_ctl"), "-D", str(self.folder / "data"), "-m",
-             "fast", "-w", "stop"],
+            [
+                *self.run_as,
+                str(self.bin / "pg_ctl"),
+                "-D",
+                str(self.folder / "data"),
+                "-m",
+                "fast",
+                "-w",
+                "stop",
+            ],
             capture_output=True,
             timeout=60,
             check=False,
@@ -98,8 +108,20 @@ def start(*, durable: bool = False) -> Cluster:
             os.chown(p, owner.pw_uid, owner.pw_gid)
     data = folder / "data"
     init = subprocess.run(
-        [*run_as, str(bindir / "initdb"), "-D", str(data), "-U", USER, f"--pwfile={folder / 'pw'}",
-         "--auth-host=scram-sha-256", "--auth-local=trust", "-E", "UTF8", "--no-sync"],
+        [
+            *run_as,
+            str(bindir / "initdb"),
+            "-D",
+            str(data),
+            "-U",
+            USER,
+            f"--pwfile={folder / 'pw'}",
+            "--auth-host=scram-sha-256",
+            "--auth-local=trust",
+            "-E",
+            "UTF8",
+            "--no-sync",
+        ],
         capture_output=True,
         text=True,
         timeout=180,
@@ -113,8 +135,20 @@ def start(*, durable: bool = False) -> Cluster:
     if not durable:
         opts += " -c fsync=off -c full_page_writes=off"
     started = subprocess.run(
-        [*run_as, str(bindir / "pg_ctl"), "-D", str(data), "-o", opts, "-l",
-         str(folder / "server.log"), "-w", "-t", "60", "start"],
+        [
+            *run_as,
+            str(bindir / "pg_ctl"),
+            "-D",
+            str(data),
+            "-o",
+            opts,
+            "-l",
+            str(folder / "server.log"),
+            "-w",
+            "-t",
+            "60",
+            "start",
+        ],
         capture_output=True,
         text=True,
         timeout=90,

@@ -15,7 +15,7 @@ from typing import Any
 
 from harness.diagnose import Candidate, Diagnosis, diagnose_run
 from harness.errors import StoreError
-from harness.files import load_board
+from harness.files import load_board, load_stored_board
 from harness.store import DEFAULT_DB, open_store
 
 
@@ -57,7 +57,11 @@ def run(args: argparse.Namespace) -> int:
                     hint="check the serial number and --db",
                 )
             row = max(runs, key=lambda r: (r.started_at, r.run_id))
-        board = load_board(args.board or row.board_file)
+        board = (
+            load_board(args.board)
+            if args.board
+            else load_stored_board(row.board_text, row.board_file)
+        )
         diag = diagnose_run(store, row.run_id, board)
     for w in diag.warnings:
         print(f"warning: {w}", file=sys.stderr)

@@ -24,6 +24,7 @@ import numpy as np
 
 from harness import __version__
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.files import read_board_text
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
 from harness.run.fixture import ChannelConnection, FixtureConfig
@@ -207,6 +208,7 @@ def run_header(
         limits_provenance=json.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
+        board_text=read_board_text(board_file, board.digest),
     )
 
 

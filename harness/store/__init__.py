@@ -79,9 +79,7 @@ def open_store(
         from harness.store.postgres import PostgresStore
 
         return PostgresStore(str(path_or_url), readonly=readonly, busy_timeout_s=busy_timeout_s)
-    return SQLiteStore(
-        sqlite_path(path_or_url), readonly=readonly, busy_timeout_s=busy_timeout_s
-    )
+    return SQLiteStore(sqlite_path(path_or_url), readonly=readonly, busy_timeout_s=busy_timeout_s)
 
 
 __all__ = [

@@ -39,6 +39,7 @@ from urllib.parse import quote
 
 from harness.errors import StoreError
 from harness.store.owner import Owner, owner_alive
+from harness.store.rows import utc_now
 from harness.store.schema import (
     SCHEMA_VERSION,
     SQLITE,
@@ -46,7 +47,6 @@ from harness.store.schema import (
     newer_schema_hint,
 )
 from harness.store.sql import SQLStore
-from harness.store.rows import utc_now
 
 try:  # POSIX; elsewhere liveness falls back to the pid check
     import fcntl
