@@ -47,7 +47,7 @@ def _fill(url: str) -> dict[str, int]:
             ("SN-4", "PN-200", "st-b", "FAIL", "2024-05-03T10:00:00+00:00"),
             ("SN-5", "PN-100", "st-a", "PASS", "2024-05-03T11:00:00+00:00"),
         ]
-        for k, (sn, pn, st, verdict, when) in enumerate(plan):
+        for k, (sn, pn, st, verdict, _when) in enumerate(plan):
             run_id = store.begin_run(header(sn, pn, station=st, board_name=f"board {pn}"))
             for i in range(3):
                 m = measurement(i)
@@ -119,7 +119,7 @@ def test_retest_numbers_are_guarded_by_a_unique_constraint(store_url: str) -> No
         store.finish_run(first, "complete", "PASS")
     row = raw_sql(store_url, "SELECT * FROM runs WHERE run_id = ?", (first,))
     assert row
-    with pytest.raises(Exception, match="(?i)unique|duplicate"):
+    with pytest.raises(Exception, match=r"(?i)unique|duplicate"):
         raw_sql(
             store_url,
             "INSERT INTO runs (serial, part_number, board_name, board_file, board_digest, "
