@@ -24,7 +24,7 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 from urllib.parse import parse_qs, urlsplit
 
-from harness.errors import StageproofError, StoreError
+from harness.errors import ReportError, StageproofError, StoreError
 from harness.report import html as h
 from harness.report.stats import CPK_THRESHOLD
 from harness.store import SQLStore, open_store
@@ -190,11 +190,9 @@ class LineHandler(BaseHTTPRequestHandler):
             return
         try:
             report = board_report_of(self.server.store(), run_id=int(rest))
-        except StoreError as exc:
-            if "no run" in str(exc):
-                self._text_page(404, "No such run", str(exc))
-                return
-            raise
+        except ReportError as exc:  # no such run
+            self._text_page(404, "No such run", str(exc))
+            return
         page = render_board_html(report, board_plots(report))
         self._send(200, page.encode(), "text/html; charset=utf-8", csp=_REPORT_CSP)
 
