@@ -15,6 +15,8 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
+from harness.store import redact
+
 DEMO_BOARD = "demo-twin-preamp.toml"
 DEMO_FIXTURE = "fixture-twin-preamp.toml"
 DEMO_DB = "stageproof-demo.db"
@@ -123,7 +125,10 @@ def run(args: argparse.Namespace) -> int:
             ", ".join(failing) or "-",
         )
     console.print(table)
-    console.print(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s", highlight=False)
+    console.print(
+        f"results stored in {redact(str(args.db))}; {time.perf_counter() - t0:.1f} s",
+        highlight=False,
+    )
     if args.keep:
         console.print(f"working folder kept: {workdir}", highlight=False)
     return 0

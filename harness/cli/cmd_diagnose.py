@@ -53,7 +53,7 @@ def run(args: argparse.Namespace) -> int:
             runs = store.list_runs(serial=args.serial)
             if not runs:
                 raise StoreError(
-                    f"no run of serial {args.serial!r} in {args.db}",
+                    f"no run of serial {args.serial!r} in {store.location}",
                     hint="check the serial number and --db",
                 )
             row = max(runs, key=lambda r: (r.started_at, r.run_id))

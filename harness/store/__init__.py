@@ -40,6 +40,15 @@ def is_server_url(path_or_url: str | Path) -> bool:
     return "://" in text and text.partition("://")[0].lower() in _PG_SCHEMES
 
 
+def redact(path_or_url: str | Path) -> str:
+    """The database as shown on screen: a server URL without its password."""
+    if is_server_url(path_or_url):
+        from harness.store.postgres import redact as without_password
+
+        return without_password(str(path_or_url))
+    return str(path_or_url)
+
+
 def sqlite_path(path_or_url: str | Path) -> Path:
     """The file an SQLite path or ``sqlite://`` URL names (checked, one-line errors)."""
     if isinstance(path_or_url, Path):
@@ -103,6 +112,7 @@ __all__ = [
     "load_frame",
     "open_store",
     "parse_when",
+    "redact",
     "sqlite_path",
     "utc_now",
 ]
