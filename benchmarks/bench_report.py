@@ -6,7 +6,7 @@ take minutes; the summary itself only reads), then times ``write_summary_report`
 into loading + statistics and HTML rendering, and one board report for comparison.
 
 With ``--postgres`` the same runs are copied (``store copy``) into a throwaway PostgreSQL
-cluster (tests/pg_cluster.py: Debian's server binaries, 127.0.0.1) and the summary is
+cluster (tests/support/pg_cluster.py: Debian's server binaries, 127.0.0.1) and the summary is
 timed there too.
 
     python benchmarks/bench_report.py [--runs 10000] [--keep DIR] [--postgres]
@@ -169,8 +169,8 @@ def _postgres(db: Path) -> bool:
 
     from harness.store.copy import copy_runs
 
-    sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
-    import pg_cluster
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+    from tests.support import pg_cluster
 
     cluster = pg_cluster.start()
     try:

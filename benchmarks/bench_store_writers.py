@@ -5,7 +5,7 @@ committed transaction at a time (the sequencer's pattern), timing every
 ``add_measurement`` call.  Printed per backend: measurement writes per second over all
 stations and the p50/p99 latency of one write.  SQLite is a file on the working disk
 (every commit fsynced, synchronous=FULL); PostgreSQL is a throwaway cluster with the
-server's default durability (fsync on), from tests/pg_cluster.py, on 127.0.0.1.
+server's default durability (fsync on), from tests/support/pg_cluster.py, on 127.0.0.1.
 
     python benchmarks/bench_store_writers.py [--stations 8] [--writes 300] [--only sqlite]
 """
@@ -97,8 +97,8 @@ def main() -> int:
         with tempfile.TemporaryDirectory(dir=REPO) as tmp:  # the working disk, not tmpfs
             run_backend("sqlite", str(Path(tmp) / "bench.db"), args.stations, args.writes)
     if args.only != "sqlite":
-        sys.path.insert(0, str(REPO / "tests"))
-        import pg_cluster
+        sys.path.insert(0, str(REPO))
+        from tests.support import pg_cluster
 
         cluster = pg_cluster.start(durable=True)
         try:

@@ -24,10 +24,10 @@ import numpy as np
 
 from harness import __version__
 from harness.errors import AnalysisError, InstrumentError, RunAborted
-from harness.files import read_board_text
+from harness.io.fixture import ChannelConnection, FixtureConfig
+from harness.io.toml import read_board_text
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
 

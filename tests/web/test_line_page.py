@@ -17,10 +17,10 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from cdp import Browser
 
 from harness.store import MeasurementRow, RunHeader, open_store
 from harness.web import make_server
+from tests.support.cdp import Browser
 
 EVIL = "SN-<script>window.pwned=1</script>"
 
