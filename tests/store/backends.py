@@ -4,6 +4,7 @@ store's code: sqlite3 (Python standard library) or psycopg (PostgreSQL's Python 
 from __future__ import annotations
 
 import sqlite3
+import subprocess
 from collections.abc import Sequence
 from typing import Any
 
@@ -28,3 +29,22 @@ def raw_sql(url: str, sql: str, params: Sequence[Any] = ()) -> list[tuple]:
         return rows
     finally:
         conn.close()
+
+
+def stamp_newer_schema(url: str, version: int) -> None:
+    """Mark the database as made by a newer schema: SQLite's PRAGMA user_version, or the
+    PostgreSQL store's meta row."""
+    if is_pg(url):
+        raw_sql(url, "UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(version),))
+    else:
+        raw_sql(url, f"PRAGMA user_version = {int(version)}")
+
+
+def reap(child: subprocess.Popen) -> None:
+    """Kill a worker still running and close its pipes."""
+    if child.poll() is None:
+        child.kill()
+    child.wait()
+    for stream in (child.stdin, child.stdout, child.stderr):
+        if stream:
+            stream.close()

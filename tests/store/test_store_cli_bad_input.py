@@ -7,7 +7,7 @@ import socket
 from pathlib import Path
 
 import pytest
-from backends import is_pg, raw_sql
+from backends import is_pg, raw_sql, stamp_newer_schema
 from store_worker import header
 
 from harness.cli.main import main
@@ -58,14 +58,7 @@ def test_unknown_scheme_writes_nothing(
 def test_newer_schema_writes_nothing(store_url: str, capsys: pytest.CaptureFixture[str]) -> None:
     with open_store(store_url) as store:
         store.finish_run(store.begin_run(header("SN-N")), "complete", "PASS")
-    if is_pg(store_url):
-        raw_sql(
-            store_url,
-            "UPDATE meta SET value = ? WHERE key = 'schema_version'",
-            (str(SCHEMA_VERSION + 1),),
-        )
-    else:
-        raw_sql(store_url, f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
+    stamp_newer_schema(store_url, SCHEMA_VERSION + 1)
     before = raw_sql(store_url, "SELECT key, value FROM meta ORDER BY key")
     err = _fails(capsys, "results", "--db", store_url)
     assert "made by a newer version" in err

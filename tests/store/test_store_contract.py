@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from backends import is_pg, raw_sql
+from backends import raw_sql, reap, stamp_newer_schema
 from store_worker import header, measurement
 
 from harness.errors import StoreError
@@ -216,24 +216,12 @@ def test_live_run_of_another_process_is_never_aborted_and_a_killed_one_is(
             assert len(store.measurements(run_id)) == 2
             assert store.recover_aborted() == []
     finally:
-        if child.poll() is None:
-            child.kill()
-            child.wait()
-        for s in (child.stdin, child.stdout, child.stderr):
-            if s:
-                s.close()
+        reap(child)
 
 
 def test_newer_schema_is_refused_for_reading_and_writing(store_url: str) -> None:
     open_store(store_url).close()
-    if is_pg(store_url):
-        raw_sql(
-            store_url,
-            "UPDATE meta SET value = ? WHERE key = 'schema_version'",
-            (str(SCHEMA_VERSION + 1),),
-        )
-    else:
-        raw_sql(store_url, f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
+    stamp_newer_schema(store_url, SCHEMA_VERSION + 1)
     for readonly in (False, True):
         with pytest.raises(StoreError, match="made by a newer version") as err:
             open_store(store_url, readonly=readonly)

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from backends import is_pg
+from backends import is_pg, reap
 from store_worker import RECORD_LEN, header, measurement
 
 from harness.store import open_store
@@ -139,12 +139,7 @@ def test_live_process_run_is_not_marked_aborted(tmp_path: Path) -> None:
                 3,
             )
     finally:
-        if child.poll() is None:
-            child.kill()
-            child.wait()
-        for stream in (child.stdin, child.stdout, child.stderr):
-            if stream:
-                stream.close()
+        reap(child)
 
 
 @needs_proc

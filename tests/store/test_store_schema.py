@@ -19,6 +19,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from backends import reap
 from store_worker import header, measurement
 
 from harness.errors import StoreError
@@ -195,9 +196,4 @@ def test_live_run_in_another_pid_namespace_is_not_aborted(tmp_path: Path) -> Non
             assert child.stdout.readline().strip() == "done"
             assert store.get_run(run_id).status == "complete"
     finally:
-        if child.poll() is None:
-            child.kill()
-        child.wait()
-        for s in (child.stdin, child.stdout, child.stderr):
-            if s:
-                s.close()
+        reap(child)
