@@ -21,6 +21,7 @@ import threading
 from datetime import time
 from http import HTTPStatus
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from time import monotonic
 from typing import Any
 from urllib.parse import parse_qs, urlsplit
 
@@ -55,8 +56,13 @@ _REPORT_CSP = (
 )
 
 
+#: Seconds one computed answer of /api/line is shared between viewers asking the same.
+SHARE_S = 1.0
+
+
 class LineServer(ThreadingHTTPServer):
-    """Serves one results database read-only; reopens the store after a lost connection."""
+    """Serves one results database read-only; reopens the store after a lost connection.
+    Viewers polling the same window within :data:`SHARE_S` share one computation."""
 
     daemon_threads = True
 
@@ -66,7 +72,23 @@ class LineServer(ThreadingHTTPServer):
         self._store_lock = threading.Lock()
         self._store: SQLStore | None = open_store(db, readonly=True)  # fails here, at start
         self.location = self._store.location
+        self._answers: dict[tuple, tuple[float, Any]] = {}
+        self._answers_lock = threading.Lock()
         super().__init__(address, LineHandler)
+
+    def line(self, q: LineQuery) -> Any:
+        """The figures for ``q``, computed at most once per :data:`SHARE_S`."""
+        window = resolve_window(q, shifts=self.shifts)
+        key = (q, window)
+        with self._answers_lock:
+            now = monotonic()
+            hit = self._answers.get(key)
+            if hit is not None and now - hit[0] < SHARE_S:
+                return hit[1]
+            data = line_status(self.store(), q, window)
+            self._answers = {k: v for k, v in self._answers.items() if now - v[0] < SHARE_S}
+            self._answers[key] = (now, data)
+            return data
 
     def store(self) -> SQLStore:
         with self._store_lock:
@@ -178,9 +200,7 @@ class LineHandler(BaseHTTPRequestHandler):
         except ValueError as exc:  # too many fields
             self._json(400, {"error": str(exc)})
             return
-        window = resolve_window(q, shifts=self.server.shifts)
-        store = self.server.store()
-        self._json(200, line_status(store, q, window))
+        self._json(200, self.server.line(q))
 
     def _board(self, rest: str) -> None:
         from harness.report import board_plots, board_report_of, render_board_html
