@@ -7,11 +7,11 @@ import socket
 from pathlib import Path
 
 import pytest
-from backends import is_pg, raw_sql, stamp_newer_schema
 from store_worker import header
 
 from harness.cli.main import main
 from harness.store import SCHEMA_VERSION, open_store
+from tests.support.db import is_pg, raw_sql, stamp_newer_schema
 
 
 def _fails(capsys: pytest.CaptureFixture[str], *argv: str) -> str:

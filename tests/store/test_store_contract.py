@@ -18,7 +18,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from backends import raw_sql, reap, stamp_newer_schema
 from store_worker import header, measurement
 
 from harness.errors import StoreError
@@ -31,6 +30,7 @@ from harness.store import (
     open_store,
 )
 from harness.store.copy import copy_runs
+from tests.support.db import raw_sql, reap, stamp_newer_schema
 
 WORKER = Path(__file__).with_name("store_worker.py")
 

@@ -21,11 +21,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from backends import is_pg, reap
 from store_worker import RECORD_LEN, header, measurement
 
 from harness.store import open_store
 from harness.store.owner import Owner, owner_alive, start_token
+from tests.support.db import is_pg, reap
 
 WORKER = Path(__file__).with_name("store_worker.py")
 needs_proc = pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")

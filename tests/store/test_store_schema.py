@@ -19,12 +19,12 @@ import sys
 from pathlib import Path
 
 import pytest
-from backends import reap
 from store_worker import header, measurement
 
 from harness.errors import StoreError
 from harness.store import SCHEMA_VERSION, open_store
 from harness.store.schema import SQLITE, migration_statements
+from tests.support.db import reap
 
 REPO = Path(__file__).resolve().parents[2]
 WORKER = Path(__file__).with_name("store_worker.py")
