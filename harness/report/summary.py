@@ -157,7 +157,7 @@ def load_summary(
             since=since,
             until=until,
             board=board,
-            db=str(getattr(store, "location", db)),
+            db=store.location,
             window=window,
         )
 
