@@ -71,7 +71,7 @@ def run(args: argparse.Namespace) -> int:
             file=sys.stderr,
         )
     server = make_server(args.db, args.host, args.port, shifts)
-    host, port = server.server_address[:2]
+    host, port = str(server.server_address[0]), int(server.server_address[1])
     print(f"line page for {server.location} at http://{host}:{port}/ (Ctrl-C to stop)", flush=True)
     try:
         server.serve_forever(poll_interval=0.5)

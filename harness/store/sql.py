@@ -629,7 +629,8 @@ class SQLStore:
             for name, dtype, shape, data in arrays:
                 flat = np.frombuffer(bytes(data), dtype=np.dtype(dtype))
                 loaded[name] = flat.reshape(json.loads(shape)).copy()
-            out.append(RecordRow(*head, arrays=loaded))
+            record_id, run, channel, label, rate, captured = head
+            out.append(RecordRow(record_id, run, channel, label, rate, captured, loaded))
         return out
 
     def query(self, sql: str, params: Sequence[Any], doing: str) -> tuple[list[str], list]:
@@ -765,7 +766,7 @@ class SQLStore:
         self.close()
 
 
-class _Guard(AbstractContextManager[Any]):
+class _Guard:
     """Hold the store's lock, open a transaction for writes, turn driver errors into
     :class:`StoreError` (the driver's exception kept as ``__cause__`` for retry logic)."""
 
@@ -793,7 +794,7 @@ class _Guard(AbstractContextManager[Any]):
         exc_type: type[BaseException] | None,
         exc: BaseException | None,
         tb: TracebackType | None,
-    ) -> bool:
+    ) -> None:
         try:
             if self._tx is not None:
                 try:
@@ -803,6 +804,5 @@ class _Guard(AbstractContextManager[Any]):
                         raise self.store._error(err, self.doing) from err
             if isinstance(exc, self.store._driver_errors()):
                 raise self.store._error(exc, self.doing) from exc
-            return False
         finally:
             self.store._lock.release()
