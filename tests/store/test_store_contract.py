@@ -260,6 +260,15 @@ def test_copy_is_idempotent_by_run_token(store_url: str, tmp_path: Path) -> None
             target.records(copied.run_id)[0].arrays["input"], np.arange(4.0)
         )
         assert not target.list_runs(serial="SN-RUNNING")
+    back = copy_runs(store_url, tmp_path / "back.db")  # and out again, to a new file
+    assert (back.copied, back.skipped, back.running) == (3, 0, 0)
+    with open_store(tmp_path / "back.db", readonly=True) as again:
+        assert sorted(r.retest for r in again.list_runs(serial="SN-C")) == [0, 1, 2]
+        assert {r.run_token for r in again.list_runs()} == set(raw_sql_tokens(store_url))
+
+
+def raw_sql_tokens(url: str) -> list[str]:
+    return [t for (t,) in raw_sql(url, "SELECT run_token FROM runs")]
 
 
 def test_copy_into_the_same_database_is_refused_and_writes_nothing(store_url: str) -> None:
