@@ -97,3 +97,29 @@ def test_web_warns_off_loopback() -> None:
 
     assert _loopback("127.0.0.1") and _loopback("::1") and _loopback("localhost")
     assert not _loopback("0.0.0.0") and not _loopback("192.0.2.7")
+
+
+def test_a_read_only_postgresql_role_reads_but_never_writes(
+    pg_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A viewer role granted SELECT only (PostgreSQL manual, GRANT) can list and report;
+    opening for writing fails in one line before anything is written."""
+    with open_store(pg_url) as store:
+        store.finish_run(store.begin_run(header("SN-V")), "complete", "PASS")
+    role = "viewer_" + pg_url.rsplit("/", 1)[1]  # roles are cluster-wide: one per database
+    raw_sql(pg_url, f"CREATE ROLE {role} LOGIN PASSWORD 'view-only'")
+    raw_sql(pg_url, f"GRANT SELECT ON ALL TABLES IN SCHEMA public TO {role}")
+    user = pg_url.split("//", 1)[1].split("@", 1)[0]
+    viewer = pg_url.replace(f"//{user}@", f"//{role}:view-only@")
+    assert main(["results", "--db", viewer, "--json"]) == 0
+    assert '"SN-V"' in capsys.readouterr().out
+    # the same database through another role is still the same database
+    assert "same database" in _fails(capsys, "store", "copy", "--from", pg_url, "--to", viewer)
+    station = tmp_path / "station.db"
+    with open_store(station) as store:
+        store.finish_run(store.begin_run(header("SN-W")), "complete", "PASS")
+    before = raw_sql(pg_url, "SELECT key, value FROM meta ORDER BY key")
+    err = _fails(capsys, "store", "copy", "--from", str(station), "--to", viewer)
+    assert "may not write" in err
+    assert raw_sql(pg_url, "SELECT key, value FROM meta ORDER BY key") == before
+    assert raw_sql(pg_url, "SELECT count(*) FROM runs") == [(1,)]
