@@ -197,3 +197,17 @@ def test_live_run_in_another_pid_namespace_is_not_aborted(tmp_path: Path) -> Non
             assert store.get_run(run_id).status == "complete"
     finally:
         reap(child)
+
+
+def test_an_old_station_file_copies_once_and_stays_old(tmp_path: Path) -> None:
+    """store copy reads a version-1 file as it is (never migrating the source) and the
+    derived tokens make a second copy add nothing."""
+    from harness.store.copy import copy_runs
+
+    old = tmp_path / "old.db"
+    _v1_database(old)
+    before = _digest(old)
+    first = copy_runs(old, tmp_path / "line.db")
+    again = copy_runs(old, tmp_path / "line.db")
+    assert (first.copied, again.copied, again.skipped) == (2, 0, 2)
+    assert _digest(old) == before
