@@ -101,7 +101,8 @@ def start(*, durable: bool = False) -> Cluster:
                 f"PostgreSQL as (useradd --system {SERVER_USER})"
             ) from None
         run_as = ["runuser", "-u", SERVER_USER, "--"]
-    folder = Path(tempfile.mkdtemp(prefix="sp-pg-"))
+    # /tmp, not $TMPDIR: the server user must reach it, and its socket path must be short
+    folder = Path(tempfile.mkdtemp(prefix="sp-pg-", dir="/tmp" if Path("/tmp").is_dir() else None))
     (folder / "pw").write_text(PASSWORD + "\n")
     if owner is not None:
         for p in (folder, folder / "pw"):
@@ -118,6 +119,7 @@ def start(*, durable: bool = False) -> Cluster:
             f"--pwfile={folder / 'pw'}",
             "--auth-host=scram-sha-256",
             "--auth-local=trust",
+            "--locale=C",
             "-E",
             "UTF8",
             "--no-sync",
