@@ -54,8 +54,9 @@ def copy_runs(source: str | Path, target: str | Path) -> CopyResult:
             try:
                 with open_store(target, readonly=True) as probe:
                     same = probe.identity() == src.identity()
-            except StoreError as exc:
-                if "no stageproof results" not in str(exc):
+            except StoreError as exc:  # no schema there yet: opening for writing decides
+                text = str(exc)
+                if "no stageproof results" not in text and "not a stageproof" not in text:
                     raise
         if same:
             raise StoreError(

@@ -38,7 +38,7 @@ _RUN_FIELDS = (
     "software_version",
 )
 
-#: frame -> (table alias, table, id column as named in the frame, the table's own columns)
+#: frame -> (table, the columns the frame may hold; run columns come from the joined run)
 _TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
     "runs": (
         "runs",
