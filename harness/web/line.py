@@ -24,9 +24,6 @@ from harness.store.frame import frame_of
 
 #: Shift starts (local time) when none are given.
 DEFAULT_SHIFTS = (time(6), time(14), time(22))
-#: Fewest boards for which Cpk is shown (common practice: about 25 values before
-#: judging capability, NIST/SEMATECH e-Handbook of Statistical Methods, ch. 6).
-CPK_MIN_BOARDS = 25
 WINDOWS = ("shift", "today", "range")
 LATEST = 25
 FAILING = 15
@@ -125,7 +122,7 @@ def _yield(y: Yield) -> dict[str, Any]:
 
 def cpk_flag(cap: Capability) -> str:
     """The flag shown beside Cpk: "too few boards", "no limit", "low" or "ok"."""
-    if cap.n < CPK_MIN_BOARDS:
+    if not cap.enough:
         return "too few boards"
     if cap.cpk is None:
         return "no limit" if cap.low is None and cap.high is None else "no spread"
@@ -171,7 +168,7 @@ def line_status(store: SQLStore, q: LineQuery, window: Window) -> dict[str, Any]
                         "measurement": m.label,
                         "unit": m.unit,
                         "n": m.capability.n,
-                        "cpk": _num(m.capability.cpk) if m.capability.n >= CPK_MIN_BOARDS else None,
+                        "cpk": _num(m.capability.cpk) if m.capability.enough else None,
                         "flag": cpk_flag(m.capability),
                         "not_pass": m.not_pass,
                     }

@@ -27,10 +27,9 @@ from urllib.parse import parse_qs, urlsplit
 
 from harness.errors import ReportError, StageproofError, StoreError
 from harness.report import html as h
-from harness.report.stats import CPK_THRESHOLD
+from harness.report.stats import CPK_MIN_BOARDS, CPK_THRESHOLD
 from harness.store import SQLStore, open_store
 from harness.web.line import (
-    CPK_MIN_BOARDS,
     DEFAULT_SHIFTS,
     LineQuery,
     line_status,

@@ -242,14 +242,18 @@ def test_two_stations_killed_and_restarted_at_random(pg_url: str) -> None:
     reported: dict[int, int] = {}
     for _ in range(5):
         kids = [_spawn("crash", pg_url, "SN-TWO") for _ in range(2)]
-        time.sleep(rng.uniform(0.3, 0.9))
+        first: list[str] = []
+        for child in kids:  # both writing (a kill during start-up is the test above)
+            assert child.stdout is not None
+            first.append(child.stdout.readline())
+        time.sleep(rng.uniform(0.0, 0.3))
         for child in kids:
             child.send_signal(signal.SIGKILL)
-        for child in kids:
+        for child, head in zip(kids, first, strict=True):
             child.wait(timeout=10)
             assert child.stdout is not None and child.stderr is not None
             run_id, count = None, 0
-            for line in child.stdout.read().splitlines():
+            for line in [head, *child.stdout.read().splitlines()]:
                 if line.startswith("run "):
                     run_id = int(line.split()[1])
                 elif line.strip():
