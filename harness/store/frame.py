@@ -172,14 +172,17 @@ def frame_of(
     names, rows = store.query(sql, params, f"loading {what}")
     frame = pd.DataFrame.from_records(rows, columns=names)
     for col in frame.columns:
-        if col in _TIMES:
-            frame[col] = pd.to_datetime(frame[col], utc=True, format="ISO8601")
-        elif col in _FLOATS:
-            frame[col] = frame[col].astype("float64")
-        elif col in _INTS:
-            frame[col] = frame[col].astype("int64")
-        elif col == "clipped":
-            frame[col] = frame[col].astype(bool)
+        try:
+            if col in _TIMES:
+                frame[col] = pd.to_datetime(frame[col], utc=True, format="ISO8601")
+            elif col in _FLOATS:
+                frame[col] = frame[col].astype("float64")
+            elif col in _INTS:
+                frame[col] = frame[col].astype("int64")
+            elif col == "clipped":
+                frame[col] = frame[col].astype(bool)
+        except (TypeError, ValueError, OverflowError) as exc:
+            raise _damaged(store.location, frame, col, exc) from None
     return frame
 
 
@@ -198,7 +201,7 @@ def load_frame(
     started_at...), ``"runs"`` or ``"sweeps"`` from a results database, read-only.
 
     The filters select runs (``since``/``until`` on the run's start, inclusive, a bare
-    date the whole local day; ``board`` the part number or board name) and are applied in
+    date the whole UTC day; ``board`` the part number or board name) and are applied in
     SQL."""
     from harness.store import open_store
 
@@ -207,3 +210,28 @@ def load_frame(
         raise StoreError(f"load_frame what={what!r}: choose one of {', '.join(FRAMES)}")
     with open_store(path_or_url, readonly=True) as store:
         return frame_of(store, what, columns=columns, where=where)
+
+
+def _damaged(location: str, frame: pd.DataFrame, col: str, exc: Exception) -> StoreError:
+    """A column holding what stageproof never writes there (a row edited by hand): the
+    first such row named, so it can be found."""
+    import pandas as pd
+
+    kind = "time" if col in _TIMES else "number" if col in _FLOATS + _INTS else "flag"
+    values = frame[col]
+    if kind == "time":
+        parsed = pd.to_datetime(values, utc=True, format="ISO8601", errors="coerce")
+    else:
+        parsed = pd.to_numeric(values, errors="coerce")
+    bad = values[parsed.isna() & values.notna()]
+    if col in _INTS:
+        bad = values[values.isna() | parsed.isna()] if bad.empty else bad
+    where = ""
+    if not bad.empty and "run_id" in frame.columns:
+        where = f"run {frame['run_id'][bad.index[0]]}: "
+    shown = repr(bad.iloc[0]) if not bad.empty else str(exc)
+    return StoreError(
+        f"results database {location}: {where}column {col} holds {shown}, not a {kind}",
+        hint="the row was changed outside stageproof: restore the database from a backup, "
+        "or delete that run",
+    )

@@ -125,12 +125,6 @@ def is_bare_date(value: When) -> bool:
     return len(str(value).strip()) == 10
 
 
-def _run_row(row: Sequence[Any]) -> RunRow:
-    values = list(row)
-    values[18] = json.loads(values[18])  # instruments_json -> dict
-    return RunRow(*values)
-
-
 @dataclass(frozen=True)
 class FullRun:
     """One finished run with everything stored about it: what ``store copy`` moves."""
@@ -376,7 +370,9 @@ class SQLStore:
         marked: list[int] = []
         found_at = utc_now()
         for run_id, host, pid, start, heartbeat_at, token in rows:
-            owner = Owner(host, int(pid), start)
+            if isinstance(pid, bool) or not isinstance(pid, int):
+                raise self._damaged(run_id, "pid", f"{pid!r} is not a process id")
+            owner = Owner(host, pid, start)
             gone, held = self._owner_gone(int(run_id), token or "", owner)
             try:
                 if gone is True:
@@ -541,6 +537,39 @@ class SQLStore:
 
     # --- reading --------------------------------------------------------------------------
 
+    def _damaged(self, run_id: Any, column: str, why: str) -> StoreError:
+        """A row changed outside stageproof (hand edit, another tool, a bad restore): named
+        so it can be found, never read as if it were right."""
+        return StoreError(
+            f"results database {self.location}: run {run_id} has a damaged {column} ({why})",
+            hint="the row was changed outside stageproof: restore the database from a "
+            "backup, or delete that run",
+        )
+
+    def _json_column(self, run_id: Any, column: str, text: Any, *, empty: bool = False) -> Any:
+        if text is None and empty:
+            return None
+        try:
+            return json.loads(text)
+        except (TypeError, ValueError) as exc:
+            raise self._damaged(run_id, column, f"not JSON: {exc}") from None
+
+    def _run_row(self, row: Sequence[Any], *, full: bool = False) -> RunRow:
+        """A run row, its owner and JSON columns checked (``full``: the limits too)."""
+        values = list(row)
+        run_id = values[0]
+        instruments = self._json_column(run_id, "instruments_json", values[18])
+        if not isinstance(instruments, dict):
+            raise self._damaged(run_id, "instruments_json", "not a table of roles")
+        values[18] = instruments
+        for i, column in ((7, "retest"), (22, "pid")):
+            if isinstance(values[i], bool) or not isinstance(values[i], int):
+                raise self._damaged(run_id, column, f"{values[i]!r} is not a whole number")
+        if full:
+            self._json_column(run_id, "limits_json", values[15])
+            self._json_column(run_id, "limits_provenance", values[17], empty=True)
+        return RunRow(*values)
+
     def get_run(self, run_id: int) -> RunRow:
         with self._read("reading a run") as conn:
             row = self._exec(
@@ -551,7 +580,7 @@ class SQLStore:
                 f"no run {run_id} in {self.location}",
                 hint="list runs with `stageproof results` to find its id",
             )
-        return _run_row(row)
+        return self._run_row(row, full=True)
 
     def list_runs(
         self,
@@ -567,7 +596,7 @@ class SQLStore:
         """Runs matching every filter given, newest first.
 
         ``board`` matches the part number or the board name; ``since`` / ``until`` are
-        inclusive (a bare date covers that whole local day).
+        inclusive (a bare date covers that whole UTC day).
         """
         where, params = RunFilter(serial, status, verdict, since, until, board, station).where()
         sql = f"SELECT {self._run_select()} FROM runs"
@@ -581,7 +610,7 @@ class SQLStore:
             params.append(limit)
         with self._read("listing runs") as conn:
             rows = self._exec(conn, sql, params).fetchall()
-        return [_run_row(r) for r in rows]
+        return [self._run_row(r) for r in rows]
 
     def _child_rows(
         self, run_id: int, doing: str, table: str, columns: str
@@ -596,10 +625,14 @@ class SQLStore:
 
     def measurements(self, run_id: int) -> list[MeasurementRow]:
         rows = self._child_rows(run_id, "reading measurements", "measurements", MEAS_COLUMNS)
+        for r in rows:
+            self._json_column(run_id, f"measurement {r[1]!r} detail_json", r[-1], empty=True)
         return [MeasurementRow(*r) for r in rows]
 
     def sweep_points(self, run_id: int) -> list[SweepPointRow]:
         rows = self._child_rows(run_id, "reading sweep points", "sweep_points", SWEEP_COLUMNS)
+        for r in rows:
+            self._json_column(run_id, "sweep point extra_json", r[8], empty=True)
         return [SweepPointRow(*r) for r in rows]
 
     def _record_rows(self, conn: Any, run_id: int) -> list[tuple[tuple[Any, ...], list]]:

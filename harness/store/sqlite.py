@@ -166,7 +166,8 @@ class SQLiteStore(SQLStore):
             if not p.exists():
                 raise StoreError(
                     f"no results database at {p}",
-                    hint="run a test first, or pass --db PATH of an existing database",
+                    hint="run a test first, or pass --db PATH of an existing database "
+                    "(stageproof demo writes stageproof-demo.db: --db stageproof-demo.db)",
                 )
             return
         parent = p.parent if str(p.parent) else Path(".")

@@ -1,8 +1,9 @@
 """What the line page shows, computed from the store for one window and filter.
 
-Windows (local time of the machine serving the page): ``shift`` (since the latest shift
-start, by default 06:00 / 14:00 / 22:00, a common three-shift pattern), ``today`` (since
-local midnight) or ``range`` (bare dates, each whole day).  Yields follow the summary
+Windows: ``shift`` (since the latest shift start on the serving machine's clock, by default
+06:00 / 14:00 / 22:00 local time, a common three-shift pattern), ``today`` (since local
+midnight) or ``range`` (bare dates, each a whole UTC day, as every stored time and every
+date filter of the command line is UTC).  Yields follow the summary
 report's rules (:mod:`harness.report.summary`): a board counts when it has a finished test
 in the window; first pass is its first finished test ever (up to the window's end),
 final its last.  Cp/Cpk use each board's first finished test in the window; below the
