@@ -24,9 +24,9 @@ import time
 from pathlib import Path
 
 from harness.instruments.bench import connect
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.station import load_station
-from harness.io.toml import load_board
 from harness.measure import analyze_uniform, clip_threshold, plan_coherent
 from harness.model import compute_limits
 from harness.run.sequence import RunOptions, choose_range, run_board

@@ -156,7 +156,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in thd),
-                        tuple(p.thd_percent for p in thd),
+                        tuple(p.thd_percent for p in thd if p.thd_percent is not None),
                         "measured THD",
                     ),
                 ),
@@ -177,7 +177,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in lv),
-                        tuple(p.gain_db for p in lv),
+                        tuple(p.gain_db for p in lv if p.gain_db is not None),
                         "measured gain",
                     ),
                 ),

@@ -14,10 +14,10 @@ from types import TracebackType
 import pyvisa
 
 from harness.errors import StationFileError
+from harness.instruments.config import StationConfig
 from harness.instruments.drivers import Dmm, Generator, Scope, Supply, Switch
 from harness.instruments.scpi import Identity
 from harness.instruments.session import Session
-from harness.io.station import StationConfig
 
 __all__ = ["REQUIRED_ROLES", "Instruments", "connect"]
 

@@ -772,7 +772,8 @@ class SQLiteStore:
                 ):
                     flat = np.frombuffer(data, dtype=np.dtype(dtype))
                     arrays[name] = flat.reshape(json.loads(shape)).copy()
-                out.append(RecordRow(*head, arrays=arrays))
+                rid, run, channel, label, rate, at = head
+                out.append(RecordRow(rid, run, channel, label, rate, at, arrays=arrays))
         return out
 
     # --- lifetime -------------------------------------------------------------------------

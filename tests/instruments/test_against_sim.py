@@ -11,8 +11,8 @@ import pytest
 
 from harness.errors import IdentityMismatch, ScpiError
 from harness.instruments.bench import connect
+from harness.io.board import load_board
 from harness.io.station import load_station
-from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire

@@ -199,3 +199,12 @@ def test_clip_threshold_interpolates_log_thd():
         [StepPoint(v, t, g) for v, t, g in zip(levels, thd, [20, 20, 19.9], strict=True)]
     )
     assert curves.compression_db[-1] == pytest.approx(0.1)
+
+
+def test_a_step_without_thd_is_a_typed_error_not_a_crash():
+    """An over-range record has no THD: the threshold search names the step instead of
+    failing inside float()."""
+    from harness.errors import AnalysisError
+
+    with pytest.raises(AnalysisError, match="no valid THD/gain"):
+        clip_threshold([0.1, 0.2, 0.4], [0.1, None, 2.0], [20.0, 20.0, 19.0])

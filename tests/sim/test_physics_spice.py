@@ -14,8 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.io.toml import load_board
-from harness.model.board import board_from_dict
+from harness.io.board import board_from_dict, load_board
 from harness.sim.physics import BETA_R_DEFAULT, BoardSim
 
 _spec = importlib.util.spec_from_file_location(

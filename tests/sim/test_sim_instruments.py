@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from harness.instruments.scpi import parse_block
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.bench import SimBench
 from harness.sim.physics import BoardSim
 
