@@ -89,19 +89,6 @@ class ValueParseError(StageproofError, ValueError):
         super().__init__(f"cannot read value {text!r}: {reason}", hint=hint)
 
 
-class DesignError(StageproofError, ValueError):
-    """The circuit described cannot work as an amplifier (saturated at rest, cut off,
-    cannot drive its load).  Raised by the model; loaders wrap it in BoardFileError."""
-
-    def __init__(self, location: str, reason: str, *, hint: str | None = None) -> None:
-        self.location = location
-        self.reason = reason
-        super().__init__(f"{location}: {reason}", hint=hint)
-
-
-# --- signal analysis ------------------------------------------------------------------------
-
-
 class AnalysisError(StageproofError, ValueError):
     """A record cannot be analysed honestly (NaN samples, too few cycles, silent...)."""
 

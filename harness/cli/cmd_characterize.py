@@ -115,7 +115,7 @@ def _safe_name(serial: str) -> str:
 
 
 def _check_output(out: Path) -> None:
-    from harness.report import ReportError
+    from harness.errors import ReportError
 
     if out.is_dir():
         raise ReportError("-o", f"{out} is a folder", hint="give a file name ending in .html")

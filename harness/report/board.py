@@ -19,9 +19,8 @@ from typing import Any
 import numpy as np
 
 from harness import __version__
-from harness.errors import AnalysisError, StoreError
+from harness.errors import AnalysisError, ReportError, StoreError
 from harness.report import html as h
-from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Band, Plot, Rule, Series, render_svg
 from harness.report.spectrum import spectrum_view, waveform_window
 from harness.store import MeasurementRow, RecordRow, ResultStore, RunRow, SweepPointRow

@@ -10,7 +10,7 @@ import itertools
 import re
 from pathlib import Path
 
-from harness.report.errors import ReportError
+from harness.errors import ReportError
 from harness.report.plot import DASHES, MARKERS, PALETTE, Plot
 
 _MPL_MARKERS = {"circle": "o", "square": "s", "triangle": "^", "diamond": "D"}

@@ -46,9 +46,7 @@ from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
 from harness.run.bench_ops import (
     RANGE_FILL,
-    RANGE_UNDERUSE,
     BoardRun,
-    added_thd_percent,
     choose_range,
     limit_get,
     plan_record,
@@ -69,16 +67,11 @@ from harness.run.decisions import (
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 
-#: Kept importable from here (public names of this module before the shared bench module).
 __all__ = [
-    "RANGE_FILL",
-    "RANGE_UNDERUSE",
     "ChannelVerdict",
     "RunOptions",
     "RunResult",
     "Sequencer",
-    "added_thd_percent",
-    "choose_range",
     "run_board",
 ]
 

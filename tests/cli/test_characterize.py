@@ -26,12 +26,12 @@ from tests.support.line import line_bench
 
 pytestmark = pytest.mark.wire
 
+
 @pytest.fixture(scope="module")
 def bench(board, tmp_path_factory):
     """One simulated bench per module: (bench, station file, fixture file)."""
     with line_bench(board, tmp_path_factory.mktemp("line")) as b:
         yield b
-
 
 
 def test_characterize_on_sim(bench, board, tmp_path, capsys):

@@ -28,12 +28,12 @@ FAST = ["--settle-wait", "0", "--max-points", "1000", "--no-extra-frequencies"]
 LONG = "X" * 100
 BEL = "\x07"
 
+
 @pytest.fixture(scope="module")
 def bench(board, tmp_path_factory):
     """One simulated bench per module: (bench, station file, fixture file)."""
     with line_bench(board, tmp_path_factory.mktemp("line")) as b:
         yield b
-
 
 
 def _cmd(station, fixture, db, *extra):
