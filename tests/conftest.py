@@ -14,9 +14,7 @@ from pathlib import Path
 import pytest
 
 from harness.io.board import load_board
-from harness.store import open_store
 from tests.support.bench import BOARD_FILE
-from tests.support.builders import add_run
 from tests.support.spice import run_ngspice
 
 
@@ -63,21 +61,3 @@ def limits(board):
     from harness.model import compute_limits
 
     return compute_limits(board)
-
-
-@pytest.fixture(scope="session")
-def _report_db_template(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    path = tmp_path_factory.mktemp("report-db") / "results.db"
-    with open_store(path) as store:
-        add_run(store, "SN0001", verdict="PASS")
-        add_run(store, "SN0002", verdict="FAIL", gain_db=18.2, records=False)
-    return path
-
-
-@pytest.fixture
-def db_path(_report_db_template: Path, tmp_path: Path) -> Path:
-    """A store with one passing board with raw records and one failing board without
-    (built once per session, copied per test so a test may change its copy)."""
-    path = tmp_path / "results.db"
-    shutil.copyfile(_report_db_template, path)
-    return path

@@ -227,6 +227,13 @@ class Conditions:
     thd_limit_percent: float | None = None
 
 
+#: Most Monte Carlo boards a board file may ask for.  The model keeps every board's
+#: figures in memory (about 1 kB each, see harness.model.limits.limits_memory_bytes) and
+#: takes about 60 µs per board on a two-core machine (benchmarks/bench_memory.py), so a
+#: million is about a gigabyte and a minute; 1e7 was 8.7 GB and over 300 s.
+MAX_SAMPLES = 1_000_000
+
+
 @dataclass(frozen=True)
 class LimitPolicy:
     """How limits are made from tolerances, so a line can freeze and trace them."""
