@@ -12,7 +12,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import fields
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, TypeVar
 
 from harness.errors import BoardFileError, ValueParseError
 from harness.io.toml import FieldReader, read_toml
@@ -35,6 +35,8 @@ from harness.model.board import (
     Transistor,
 )
 from harness.values import parse_quantity, parse_tolerance, split_value_tolerance
+
+_T = TypeVar("_T")
 
 
 class _Reader(FieldReader):
@@ -281,25 +283,22 @@ def _stage(
     def c(key: str) -> Part | None:
         return rd.part(data, key, where, tol_c, "capacitor", required=False)
 
-    def transistor() -> Transistor:
-        ref = rd.text(data, "transistor", where)
-        if ref not in transistors:
+    def named(key: str, defined: Mapping[str, _T], what: str) -> _T:
+        """The device the stage names in ``key``, defined in a [<key>.<name>] table."""
+        ref = rd.text(data, key, where)
+        if ref not in defined:
             raise rd.fail(
-                f"{where}.transistor",
-                f"no transistor named {ref!r}",
-                hint="define it in a [transistor.<name>] table",
+                f"{where}.{key}",
+                f"no {what} named {ref!r}",
+                hint=f"define it in {'an' if what[0] in 'aeiou' else 'a'} [{key}.<name>] table",
             )
-        return transistors[ref]
+        return defined[ref]
+
+    def transistor() -> Transistor:
+        return named("transistor", transistors, "transistor")
 
     def opamp() -> OpAmp:
-        ref = rd.text(data, "opamp", where)
-        if ref not in opamps:
-            raise rd.fail(
-                f"{where}.opamp",
-                f"no op-amp named {ref!r}",
-                hint="define it in an [opamp.<name>] table",
-            )
-        return opamps[ref]
+        return named("opamp", opamps, "op-amp")
 
     if kind == "common_emitter":
         rd.known(data, _CE_FIELDS, where)
