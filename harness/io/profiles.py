@@ -399,9 +399,9 @@ def load_profile(
 ) -> Profile:
     """Load a profile by name (``scpi-scope``) or path (``benches/my-scope.toml``).
 
-    A name is looked up in ``search_dirs`` (default: the shipped fixtures/instruments);
-    a path is taken relative to
-    ``base_dir`` (the station file's folder).  ``role`` checks the profile is for it.
+    A name is looked up in ``search_dirs`` (default: the shipped fixtures/instruments); a
+    path is taken relative to ``base_dir`` (the station file's folder).  ``role`` checks the
+    profile is for it.
     """
     dirs = tuple(search_dirs) if search_dirs is not None else DEFAULT_PROFILE_DIRS
     ref = str(name_or_path)

@@ -360,8 +360,8 @@ def scope_profile_text(inputs: int) -> str:
     doc["profile"]["name"] = f"{_PROFILES['scope']}-{inputs}"
     doc["settings"]["inputs"] = inputs
     profile_from_dict(doc)
-    head = "# Scope profile written by `stageproof sim serve`: the default with more inputs.\n\n"
-    return head + tomli_w.dumps(doc)
+    head = f"# Scope profile written by `stageproof sim serve`: the default, {inputs} inputs.\n"
+    return head + "\n" + tomli_w.dumps(doc)
 
 
 def _esc(text: str) -> str:
