@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.support.bench import BOARD_FILE
 from tests.support.spice import run_ngspice
 

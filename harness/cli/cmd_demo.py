@@ -1,8 +1,8 @@
 """``stageproof demo``: test three demo boards on a simulated bench, no hardware needed.
 
 Starts the simulated bench itself (SCPI servers on 127.0.0.1, ephemeral ports, no
-latency), tests three boards of the demo type limits/demo-twin-preamp.toml (packaged in
-harness/data so an installed copy works from any folder): one good, one with the emitter
+latency), tests three boards of the demo type limits/demo-twin-preamp.toml (shipped in the
+package, so an installed copy works from any folder): one good, one with the emitter
 bypass capacitor C102 open (channel A's gain falls), one with bias resistor R201 drifted
 to 1.5x (channel B clips early on one half-cycle), and prints the verdicts.
 """
@@ -15,6 +15,10 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from harness.run.sequence import RunResult
 
 from harness.store import redact
 
@@ -56,11 +60,12 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def run_demo(
     db: str | Path, workdir: Path, *, progress_console=None, settle_wait_s: float | None = None
-) -> list[tuple[DemoBoard, object]]:
+) -> list[tuple[DemoBoard, RunResult]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
-    from harness.io.toml import load_board
+    from harness.io.board import load_board
+    from harness.io.packaged import packaged
     from harness.model import compute_limits
-    from harness.run.runner import execute, packaged, prepare
+    from harness.run.runner import execute, prepare
     from harness.run.sequence import RunOptions
     from harness.sim.bench import SimBench
 

@@ -70,7 +70,8 @@ def solve_junction(
         v = v - step
         if np.all(np.abs(step) < 1e-13):
             break
-    return v
+    out: np.ndarray = v
+    return out
 
 
 # --- results -----------------------------------------------------------------------------------
@@ -664,7 +665,8 @@ def solve_drive(
         num /= 1.0 + np.abs(u)
         if num.max() < tol:
             break
-    return u
+    out: np.ndarray = u
+    return out
 
 
 def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
@@ -706,7 +708,8 @@ def chain_waveform(chain: LargeSignalChain, amp_vpk: np.ndarray, n_points: int =
             x = np.minimum(ie * np.expm1(solve_drive(x, ie * r, v_t)) * r, room)
         else:
             x = np.clip(c[:, 0:1] * x, c[:, 1:2], c[:, 2:3])
-    return x
+    out: np.ndarray = x
+    return out
 
 
 def harmonics(
@@ -745,7 +748,8 @@ def harmonics(
 def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
     """THD_F in percent: sqrt(sum of harmonics 2..k_max squared) over the fundamental."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        return 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+        thd: np.ndarray = 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+    return thd
 
 
 def criterion_level(
@@ -778,8 +782,10 @@ def criterion_level(
         if criterion == "compression":
             with np.errstate(divide="ignore"):
                 comp = 20.0 * np.log10(np.abs(gain[rows]) * amp / np.maximum(h[:, 1], 1e-300))
-            return comp - compression_db
-        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent)
+            score: np.ndarray = comp - compression_db
+            return score
+        score = np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent)
+        return score
 
     every = slice(None)
     ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12))

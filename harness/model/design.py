@@ -217,7 +217,8 @@ def large_signal_harmonics(
     res = _arrays(board, ch, params, search=False)
     _raise_first(board, res)
     amp = np.array([input_vrms * math.sqrt(2.0)])
-    return harmonics(LargeSignalChain.from_arrays(res), amp, n_points)[0]
+    h: np.ndarray = harmonics(LargeSignalChain.from_arrays(res), amp, n_points)[0]
+    return h
 
 
 #: Longest wait after a level change the model may ask of a run.  The sequence waits the

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from harness.errors import ReportError
 from harness.report.board import (
     BoardReport,
     attach_diagnosis,
@@ -20,7 +21,6 @@ from harness.report.board import (
     load_board_report,
     render_board_html,
 )
-from harness.report.errors import ReportError
 from harness.report.export import FORMATS, TABLES, export_tables
 from harness.report.plot import Band, Bars, Plot, Rule, Series, render_svg
 from harness.report.stats import CPK_THRESHOLD, Capability, Yield, capability, yields
@@ -107,7 +107,6 @@ __all__ = [
     "BoardReport",
     "Capability",
     "Plot",
-    "ReportError",
     "Rule",
     "Series",
     "SummaryReport",

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from harness.report.errors import ReportError
+from harness.errors import ReportError
 from harness.report.summary import date_window
 from harness.store import load_frame
 

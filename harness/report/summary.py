@@ -23,9 +23,8 @@ import numpy as np
 import pandas as pd
 
 from harness import __version__
-from harness.errors import ValueParseError
+from harness.errors import ReportError, ValueParseError
 from harness.report import html as h
-from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Bars, Plot, Rule, histogram, render_svg
 from harness.report.stats import (
     CPK_MIN_BOARDS,

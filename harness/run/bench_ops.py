@@ -24,8 +24,8 @@ import numpy as np
 
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.board import read_board_text
 from harness.io.fixture import ChannelConnection, FixtureConfig
-from harness.io.toml import read_board_text
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
 from harness.model.design import check_settle_time

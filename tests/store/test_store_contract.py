@@ -282,7 +282,7 @@ def test_copy_into_the_same_database_is_refused_and_writes_nothing(store_url: st
 def test_diagnosis_reads_the_board_from_the_store(store_url: str, tmp_path: Path) -> None:
     """A run keeps its board file's text: the board report's diagnosis works after the
     file is gone (the stored text is what is read)."""
-    from harness.io.toml import load_stored_board
+    from harness.io.board import load_stored_board
 
     repo = Path(__file__).resolve().parents[2]
     text = (repo / "limits" / "demo-twin-preamp.toml").read_text()
