@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import json
 
-from harness.cli.capture import read_capture
+from harness import jsontext
 from harness.errors import AnalysisError
+from harness.io.capture import read_capture
 from harness.measure import analyze_record
 
 
@@ -135,7 +135,7 @@ def run(args: argparse.Namespace) -> int:
         res = _remove_scope_harmonics(res, cap, in_adc, out_adc, args.k_max)
     d = res.to_dict()
     if args.json:
-        print(json.dumps({"capture": cap.path, **d}, indent=2))
+        print(jsontext.dumps({"capture": cap.path, **d}, indent=2))
         return 0
     from rich.table import Table
     from rich.text import Text

@@ -13,6 +13,7 @@ reconnected).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import unicodedata
 from typing import Any, Literal, TextIO
@@ -22,7 +23,7 @@ from harness.cli.run_args import RichProgress
 from harness.cli.term import make_console
 from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
-from harness.run.runner import prepare
+from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
@@ -73,6 +74,35 @@ def read_line(stream: TextIO, limit: int = MAX_LINE) -> str | None:
                 break
         return line[: limit + 1] + "…"
     return line.rstrip("\r\n")
+
+
+def discard_typeahead(stream: TextIO) -> bool:
+    """Throw away whatever was typed on the terminal ``stream`` and not read yet; True when
+    something could be discarded this way (``stream`` is a terminal).
+
+    A line typed or scanned while a board is under test would otherwise become the answer
+    to the next prompt at once: the next board's serial before anyone could change the
+    board, so one physical board would be stored under two serials.  termios.tcflush with
+    TCIFLUSH drops data received but not read (POSIX termios, tcflush()).  Input that is
+    not a terminal (a pipe, a file) is a script written beforehand: its lines are taken in
+    order and nothing is discarded.  In canonical mode a terminal read returns at most one
+    line, so Python's own buffer holds nothing beyond the line already returned.
+    """
+    try:
+        fd = stream.fileno()
+    except (AttributeError, OSError, ValueError):
+        return False  # an in-memory stream: a script
+    if not os.isatty(fd):
+        return False
+    try:
+        import termios
+    except ImportError:  # not a POSIX system
+        return False
+    try:
+        termios.tcflush(fd, termios.TCIFLUSH)
+    except (termios.error, OSError):
+        return False
+    return True
 
 
 def check_operator(name: str) -> str:
@@ -126,6 +156,9 @@ class TerminalUI:
         self.ink = "█" if "utf" in enc else "#"
 
     def prompt(self, text: str) -> str | None:
+        """Ask on a fresh line of input: anything typed on the terminal before the prompt
+        appears (while a board was under test) is discarded, see :func:`discard_typeahead`."""
+        discard_typeahead(self.stdin)
         self.console.print(text, end="", highlight=False, markup=False, soft_wrap=True)
         self.console.file.flush()
         return read_line(self.stdin)
@@ -306,38 +339,56 @@ def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any =
     console = console or make_console()
     if args.max_points is not None and args.max_points < 1:
         raise ValueParseError(str(args.max_points), "--max-points must be a positive count")
-    # Everything is read and the limits computed before the operator is asked anything.
-    prep = prepare(args.board, args.fixture, args.station)
-    ui = TerminalUI(console, stdin, details=args.details)
-    if args.operator is not None:
-        operator = check_operator(args.operator)
-    else:
-        operator = ""
-        while not operator:
-            try:
-                name = ui.prompt(OPERATOR_PROMPT)
-            except KeyboardInterrupt:
-                console.print("")
-                return 0
-            if name is None:
+    # Every file is read, the station locked and made safe (a crashed session may have left
+    # it driving a board) and the limits computed before the operator is asked anything.
+    from harness.run.safety import connect_safe
+    from harness.run.station_lock import station_lock
+
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
+    with station_lock(prep.station):
+        instruments = connect_safe(prep.station)
+        try:
+            prep = ensure_limits(prep)
+            ui = TerminalUI(console, stdin, details=args.details)
+            operator = _operator(args, ui, console)
+            if operator is None:
                 return 0  # nobody there: nothing tested
-            try:
-                operator = check_operator(name)
-            except ValueParseError as exc:
-                ui.message(str(exc), "error")
-    kw: dict[str, Any] = {}
-    if args.max_points is not None:
-        kw["max_points"] = args.max_points
-    options = run_args.run_options(
-        args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
-    )
-    summary = run_line(
-        prep,
-        args.db or DEFAULT_DB,
-        ui,
-        operator=operator,
-        options=options,
-        scanner_prefix=args.scanner_prefix,
-        scanner_suffix=args.scanner_suffix,
-    )
+            kw: dict[str, Any] = {}
+            if args.max_points is not None:
+                kw["max_points"] = args.max_points
+            options = run_args.run_options(
+                args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
+            )
+            handed, instruments = instruments, None  # the session closes it from here
+            summary = run_line(
+                prep,
+                args.db or DEFAULT_DB,
+                ui,
+                operator=operator,
+                options=options,
+                scanner_prefix=args.scanner_prefix,
+                scanner_suffix=args.scanner_suffix,
+                instruments=handed,
+            )
+        finally:
+            if instruments is not None:
+                instruments.close()
     return 2 if summary.error else 0
+
+
+def _operator(args: argparse.Namespace, ui: TerminalUI, console: Any) -> str | None:
+    """The operator's name from --operator, else asked once; None when nobody answers."""
+    if args.operator is not None:
+        return check_operator(args.operator)
+    while True:
+        try:
+            name = ui.prompt(OPERATOR_PROMPT)
+        except KeyboardInterrupt:
+            console.print("")
+            return None
+        if name is None:
+            return None
+        try:
+            return check_operator(name)
+        except ValueParseError as exc:
+            ui.message(str(exc), "error")

@@ -13,6 +13,7 @@ import sys
 from dataclasses import asdict
 from typing import TYPE_CHECKING, Any
 
+from harness import jsontext
 from harness.cli.run_args import value_text
 from harness.errors import ValueParseError
 from harness.store import (
@@ -130,7 +131,7 @@ def run(args: argparse.Namespace) -> int:
         )
     rows = [{**r.summary(), "board_name": r.board_name} for r in runs]
     if args.json:
-        json.dump(rows, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(rows, indent=2))
         sys.stdout.write("\n")
     elif args.csv:
         _write_csv(rows, _LIST_FIELDS)
@@ -238,10 +239,10 @@ def _show_run(
         head["limits_provenance"] = json.loads(prov) if prov else None
         doc = {
             "run": head,
-            "measurements": [asdict(m) for m in meas],
+            "measurements": [{**asdict(m), "reason": m.reason} for m in meas],
             "sweep_points": [asdict(p) for p in points],
         }
-        json.dump(doc, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(doc, indent=2))
         sys.stdout.write("\n")
         return
     if args.csv:

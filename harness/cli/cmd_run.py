@@ -7,10 +7,10 @@ unwritable database, aborted run).
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from typing import Any
 
+from harness import jsontext
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.cli.term import make_console, styled
@@ -91,7 +91,8 @@ def run(args: argparse.Namespace) -> int:
     from harness.store import DEFAULT_DB
 
     serial = validate_serial(args.serial)  # before anything touches an instrument
-    prep = prepare(args.board, args.fixture, args.station)
+    # limits deferred: the station is made safe before the Monte Carlo runs
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
     console = make_console(stderr=args.json)
     progress = None if args.json else RichProgress(console)
     options = run_args.run_options(args, operator=args.operator)
@@ -110,7 +111,7 @@ def run(args: argparse.Namespace) -> int:
         has_supply = prep.station.get("supply") is not None
         raise RunAborted(interrupted_words(db, serial, started, supply=has_supply)) from None
     if args.json:
-        json.dump(result.to_dict(), sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(result.to_dict(), indent=2))
         sys.stdout.write("\n")
     else:
         print_verdict(console, result)

@@ -75,7 +75,7 @@ def value_text(row: Any, *, unit: bool = True) -> str:
         safe = detail.get("safe_input_vrms")
         if detail.get("result") == "threshold above safe level" and isinstance(safe, int | float):
             return f"> {safe:g}{suffix} (safe level)"
-        return f"-{suffix}"
+        return getattr(row, "reason_label", None) or "-"
     return f"{row.value:.5g}{suffix}"
 
 

@@ -17,8 +17,8 @@ from contextlib import contextmanager
 import pytest
 
 from harness.errors import ConnectionLost
-from harness.instruments.profiles import load_profile
 from harness.instruments.session import Session
+from harness.io.profiles import load_profile
 
 GEN = load_profile("scpi-generator")
 

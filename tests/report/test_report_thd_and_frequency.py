@@ -18,14 +18,14 @@ from harness.report.board import MIN_GAIN_SPAN_DB, channel_plots, load_board_rep
 from harness.run.runner import execute, prepare
 from harness.run.sequence import RunOptions
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, sim_bench
 
 pytestmark = pytest.mark.wire
 
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
-    from harness.files import load_board
+    from harness.io.toml import load_board
 
     tmp = tmp_path_factory.mktemp("thd")
     board = load_board(BOARD_FILE)

@@ -12,7 +12,7 @@ import tomllib
 import pytest
 
 from harness.cli.main import build_parser, main
-from tests.run.conftest import BOARD_FILE, REPO
+from tests.support.bench import BOARD_FILE, REPO
 
 README = (REPO / "README.md").read_text(encoding="utf-8")
 
@@ -63,7 +63,7 @@ def test_absolute_sqlite_url_documented_and_works(tmp_path):
 
 
 def test_fixture_comment_states_the_real_current_limit_factor():
-    from harness.files import load_board
+    from harness.io.toml import load_board
     from harness.sim.bench import SimBench
 
     bench = SimBench(load_board(BOARD_FILE))

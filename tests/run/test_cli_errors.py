@@ -22,7 +22,7 @@ import pytest
 from harness.cli.main import main
 from harness.store import open_store
 from tests.instruments.test_connect_timeout import full_backlog
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -165,7 +165,7 @@ def test_deeply_nested_toml_one_line(tmp_path, capsys, kind):
 
 
 def test_nesting_just_past_the_limit_named(tmp_path, capsys):
-    from harness.files import MAX_DEPTH
+    from harness.io.toml import MAX_DEPTH
 
     bad = tmp_path / "deep.toml"
     levels = MAX_DEPTH + 1

@@ -15,8 +15,8 @@ import sys
 import pytest
 
 from harness.cli.main import main
-from harness.files import load_board
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from harness.io.toml import load_board
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = pytest.mark.wire
 

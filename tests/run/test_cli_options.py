@@ -10,7 +10,7 @@ import pytest
 from harness.cli.main import main
 from harness.errors import ValueParseError
 from harness.run.runner import validate_serial
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE
 
 FILES = ["--station", "nowhere.toml", "--fixture", str(FIXTURE_FILE), "--board", str(BOARD_FILE)]
 

@@ -14,7 +14,7 @@ import pytest
 
 from harness.cli.cmd_demo import DEMO_BOARDS, DEMO_DB
 from harness.cli.main import main
-from tests.run.conftest import REPO
+from tests.support.bench import REPO
 
 pytestmark = pytest.mark.wire
 
@@ -83,7 +83,7 @@ def test_measurement_lines_read_in_words(demo_run):
     """The progress lines: the clipping side as a half-cycle, one-sided limits as ``≤``,
     a threshold the criterion never reached as above the board's safe level."""
     from harness.cli.cmd_demo import DEMO_BOARD
-    from harness.files import load_board
+    from harness.io.toml import load_board
     from harness.run.runner import packaged
 
     _cwd, out = demo_run
