@@ -16,14 +16,14 @@ import resource
 import socket
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 
 import pytest
 
-from harness.instruments.profiles import load_profile
 from harness.instruments.session import Session, resource_manager
+from harness.io.profiles import load_profile
+from tests.support.streams import LineCollector
 
 pytestmark = pytest.mark.wire
 
@@ -37,25 +37,6 @@ NOFILE = 32
 def _limit() -> None:  # runs in the child before exec
     hard = resource.getrlimit(resource.RLIMIT_NOFILE)[1]
     resource.setrlimit(resource.RLIMIT_NOFILE, (NOFILE, hard))
-
-
-class _Lines(threading.Thread):
-    def __init__(self, stream) -> None:
-        super().__init__(daemon=True)
-        self.stream = stream
-        self.text = ""
-
-    def run(self) -> None:
-        for line in self.stream:
-            self.text += line
-
-    def wait_for(self, what: str, timeout_s: float = 30.0) -> None:
-        deadline = time.monotonic() + timeout_s
-        while time.monotonic() < deadline:
-            if what in self.text:
-                return
-            time.sleep(0.02)
-        raise AssertionError(f"{what!r} not seen in:\n{self.text}")
 
 
 def test_accept_loop_survives_emfile(tmp_path):
@@ -79,7 +60,7 @@ def test_accept_loop_survives_emfile(tmp_path):
         env=dict(os.environ, PYTHONPATH=str(REPO)),
         preexec_fn=_limit,
     )
-    out, err = _Lines(proc.stdout), _Lines(proc.stderr)
+    out, err = LineCollector(proc.stdout), LineCollector(proc.stderr)
     out.start()
     err.start()
     clients: list[socket.socket] = []
