@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -31,17 +31,25 @@ __all__ = [
     "encode_block",
     "encode_values",
     "format_number",
+    "parse_ascii_values",
     "parse_block",
     "parse_block_header",
     "parse_bool",
     "parse_error_reply",
     "parse_idn",
     "parse_number",
+    "parse_preamble",
 ]
 
 #: Element types a waveform block may carry, with their numpy kind.  SCPI ``FORMat:DATA``
 #: names them INTeger,8 / INTeger,16 / REAL,32.
-DATATYPES: dict[str, str] = {"int8": "i1", "int16": "i2", "float32": "f4"}
+DATATYPES: dict[str, str] = {
+    "int8": "i1",
+    "int16": "i2",
+    "uint8": "u1",
+    "uint16": "u2",
+    "float32": "f4",
+}
 
 #: SCPI ``FORMat:DATA`` argument for each element type (SCPI-99 vol. 2 ch. 9).
 SCPI_FORMAT: dict[str, str] = {"int8": "INTeger,8", "int16": "INTeger,16", "float32": "REAL,32"}
@@ -222,6 +230,54 @@ def parse_number(text: str) -> float:
     if math.isclose(abs(x), _SCPI_INF, rel_tol=1e-6):
         return math.copysign(math.inf, x)
     return x
+
+
+def parse_ascii_values(text: str) -> np.ndarray:
+    """Comma-separated numeric response data (IEEE 488.2 §8.7.2-8.7.4) as float64."""
+    s = text.strip()
+    if not s:
+        return np.zeros(0)
+    out = np.empty(s.count(",") + 1)
+    for i, item in enumerate(s.split(",")):
+        out[i] = parse_number(item)
+    if not np.all(np.isfinite(out)):
+        raise MalformedReply("waveform text holds an overload or not-a-number value")
+    return out
+
+
+def parse_preamble(text: str, fields: Mapping[str, int]) -> dict[str, float]:
+    """A waveform preamble reply: comma-separated fields, picked by position.
+
+    ``fields`` maps a field name (``x_increment``, ``y_reference``, ...) to its position
+    (0 = first).  Every named field must be there and be a finite number; the increments
+    must be positive.  Anything else raises :class:`MalformedReply` naming the field.
+    """
+    items = [t.strip().strip('"') for t in text.strip().split(",")]
+    out: dict[str, float] = {}
+    for name, pos in sorted(fields.items(), key=lambda kv: kv[1]):
+        if pos >= len(items) or not items[pos]:
+            raise MalformedReply(
+                f"preamble has {len(items)} field(s), no field {pos} ({name}): {text[:80]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        try:
+            x = float(items[pos])
+        except ValueError:
+            x = math.nan
+        if not math.isfinite(x) or abs(x) >= 9.9e37:
+            raise MalformedReply(
+                f"preamble field {pos} ({name}) is not a number: {items[pos][:20]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        if name in ("x_increment", "y_increment") and not x > 0:
+            raise MalformedReply(
+                f"preamble field {pos} ({name}) must be positive, not {items[pos][:20]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        if name == "points" and (x < 1 or not x.is_integer()):
+            raise MalformedReply(f"preamble field {pos} (points) is not a count: {items[pos]!r}")
+        out[name] = x
+    return out
 
 
 def parse_bool(text: str) -> bool:
