@@ -79,13 +79,14 @@ def amplitude_setting(
     EMF·Z_L/(Z_L + R_out).  Its display assumes ``calibrated_load_ohm``: the setting is the
     level that EMF would give across that load, so a generator calibrated for 50 Ω whose
     output is 50 Ω has EMF = 2 × setting (common practice), and a high-Z-calibrated one
-    EMF = setting.  ``math.inf`` stands for high impedance.
+    EMF = setting.  ``math.inf`` stands for high impedance.  A dBm setting is the power that
+    level would put into the calibrated load: 10·log10(V²/R / 1 mW).
     """
     if level_vrms < 0 or not math.isfinite(level_vrms):
         raise ValueError(f"level must be a finite rms value >= 0, not {level_vrms}")
     emf = level_vrms * (1.0 + output_ohm / load_ohm)  # V·(Z_L+R)/Z_L, Z_L=inf -> V
     setting_rms = emf / (1.0 + output_ohm / calibrated_load_ohm)
-    return setting_rms * _RMS_TO[unit]
+    return _rms_to_unit(setting_rms, unit, calibrated_load_ohm)
 
 
 def level_at_load(

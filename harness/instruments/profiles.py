@@ -22,7 +22,7 @@ from typing import Any
 
 from harness.errors import ProfileError
 from harness.files import read_toml
-from harness.instruments.scpi import DATATYPES, SCPI_FORMAT, format_number
+from harness.instruments.scpi import DATATYPES, SCPI_FORMAT, format_number, ladder_values
 
 __all__ = [
     "DEFAULT_PROFILE_DIRS",
@@ -273,25 +273,14 @@ def _ladder_or_list(v: Any) -> tuple[float, ...]:
     raise ValueError('must be a list or a table { ladder = "1-2-5", min = ..., max = ... }')
 
 
-def ladder_values(steps: tuple[float, ...], lo: float, hi: float) -> tuple[float, ...]:
-    """Every mantissa x 10^k of ``steps`` between ``lo`` and ``hi`` (inclusive)."""
-    out = []
-    for k in range(math.floor(math.log10(lo)) - 1, math.ceil(math.log10(hi)) + 1):
-        for m in steps:
-            x = float(f"{m * 10.0**k:.6g}")
-            if lo * (1 - 1e-9) <= x <= hi * (1 + 1e-9):
-                out.append(x)
-    if not out:
-        raise ValueError("holds no value between min and max")
-    return tuple(sorted(out))
-
-
 def _format_names(v: Any) -> dict[str, str]:
     if not isinstance(v, dict) or not all(isinstance(x, str) and x for x in v.values()):
         raise ValueError('must be a table of data format = text, e.g. { uint8 = "BYTE" }')
     for k in v:
-        if k not in DATATYPES:
-            raise ValueError(f"names unknown data format {k!r}; known: {', '.join(DATATYPES)}")
+        if k not in DATATYPES and k != "ascii":
+            raise ValueError(
+                f"names unknown data format {k!r}; known: {', '.join(DATATYPES)}, ascii"
+            )
     return dict(v)
 
 

@@ -31,6 +31,7 @@ __all__ = [
     "encode_block",
     "encode_values",
     "format_number",
+    "ladder_values",
     "parse_ascii_values",
     "parse_block",
     "parse_block_header",
@@ -315,6 +316,20 @@ def format_number(x: float | int | bool) -> str:
         mant, exp = s.split("E")
         s = f"{mant}E{int(exp)}"
     return s
+
+
+def ladder_values(steps: tuple[float, ...], lo: float, hi: float) -> tuple[float, ...]:
+    """A setting ladder (1-2-5 and the like, common practice): every mantissa of ``steps``
+    times a power of ten between ``lo`` and ``hi`` (inclusive)."""
+    out = []
+    for k in range(math.floor(math.log10(lo)) - 1, math.ceil(math.log10(hi)) + 1):
+        for m in steps:
+            x = float(f"{m * 10.0**k:.6g}")
+            if lo * (1 - 1e-9) <= x <= hi * (1 + 1e-9):
+                out.append(x)
+    if not out:
+        raise ValueError("holds no value between min and max")
+    return tuple(sorted(out))
 
 
 def channel_list(channels: Iterable[int]) -> str:
