@@ -65,6 +65,14 @@ def register(subparsers: Any) -> None:
         "times (default: instant)",
     )
     serve.add_argument("--seed", type=int, default=20240601, help="noise seed")
+    serve.add_argument(
+        "--dialect",
+        choices=("default", "benchtop"),
+        default="default",
+        help="instrument dialect: SCPI-99 digitiser and generator (default), or a benchtop "
+        "scope (V/div, s/div, preamble, chunked reads) and a dBm generator; the station "
+        "file names the matching shipped profiles",
+    )
     serve.set_defaults(func=_serve)
     sim.set_defaults(func=lambda args: (sim.print_help(), 2)[1])
 
@@ -93,6 +101,7 @@ def _serve(
         host=args.host,
         port_base=args.port_base,
         seed=args.seed,
+        dialect=args.dialect,
     )
     stop = stop or threading.Event()
     try:
@@ -109,7 +118,7 @@ def _serve(
     try:
         bench.write_station(args.station_out)
         bench.write_fixture(args.fixture_out)
-        print(f"simulated bench for {board.name} ({board.part_number})")
+        print(f"simulated bench for {board.name} ({board.part_number}), {args.dialect} dialect")
         for role, resource in bench.resources.items():
             print(f"  {role:<9} {resource}")
         print(f"station file: {args.station_out}")

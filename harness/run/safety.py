@@ -139,21 +139,25 @@ class SafeGenerator:
             self._command(v)
         self._resync()
 
-    def configure(self, frequency_hz: float, level_vrms: float) -> None:
-        """Set a sine at ``frequency_hz`` with the output off, then the level."""
+    def configure(self, frequency_hz: float, level_vrms: float) -> float | None:
+        """Set a sine at ``frequency_hz`` with the output off, then the level.  Returns the
+        frequency the generator reports (None from a driver that cannot say)."""
         self.off()
-        self._gen.configure_sine(frequency_hz, output=self.output)
+        got = self._gen.configure_sine(frequency_hz, output=self.output)
         self._command(min(self.check(level_vrms), self.direct_vrms))
         if level_vrms > self.direct_vrms:
             self.set_level(level_vrms)
+        return got
 
-    def set_frequency(self, frequency_hz: float) -> None:
-        """Change the frequency; the level stays (the driver's configure keeps it)."""
+    def set_frequency(self, frequency_hz: float) -> float | None:
+        """Change the frequency; the level stays (the driver's configure keeps it).
+        Returns the frequency the generator reports."""
         level = self.level_vrms
-        self._gen.configure_sine(frequency_hz, output=self.output)
+        got = self._gen.configure_sine(frequency_hz, output=self.output)
         if level > 0:
             self._command(level)
         self._resync()
+        return got
 
     def on(self) -> None:
         """Switch the output on at the present level; a level above ``direct_vrms`` is
