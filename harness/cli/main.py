@@ -42,7 +42,7 @@ def build_parser() -> argparse.ArgumentParser:
         "from a model of the board.",
     )
     parser.add_argument("--version", action="version", version=f"stageproof {__version__}")
-    parser.add_argument("-v", "--verbose", action="store_true", help="log instrument traffic")
+    parser.add_argument("-v", "--verbose", action="count", default=0, help=_VERBOSE_HELP)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
         try:
@@ -52,7 +52,52 @@ def build_parser() -> argparse.ArgumentParser:
                 continue  # command not built yet in this tree
             raise
         module.register(sub)
+    _verbose_everywhere(parser)
     return parser
+
+
+_VERBOSE_HELP = (
+    "SCPI trace on stderr: every command and reply with its timing (-vv: all debug logging); "
+    "accepted before or after the sub-command"
+)
+
+
+def _verbose_everywhere(parser: argparse.ArgumentParser) -> None:
+    """``-v`` after the sub-command too (``stageproof run ... -v``): every sub-parser takes
+    it, counting into the same place, and leaves the value alone when it is not given."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for child in action.choices.values():
+                if not any("--verbose" in a.option_strings for a in child._actions):
+                    child.add_argument(
+                        "-v",
+                        "--verbose",
+                        action="count",
+                        default=argparse.SUPPRESS,
+                        help=_VERBOSE_HELP,
+                    )
+                _verbose_everywhere(child)
+
+
+def _start_trace(level: int) -> None:
+    """Send the SCPI trace (and with -vv everything at DEBUG) to stderr, timed from now."""
+    import logging
+    import time
+
+    t0 = time.perf_counter()
+
+    class _Since(logging.Formatter):
+        def format(self, record: logging.LogRecord) -> str:
+            return f"{time.perf_counter() - t0:9.3f} s  {record.getMessage()}"
+
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(_Since())
+    if level >= 2:
+        logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
+    trace = logging.getLogger("harness.instruments.trace")
+    trace.setLevel(logging.INFO)
+    trace.addHandler(handler)
+    trace.propagate = False
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -61,10 +106,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     if getattr(args, "func", None) is None:
         parser.print_help()
         return 2
-    if args.verbose:
-        import logging
-
-        logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
+    if getattr(args, "verbose", 0):
+        _start_trace(int(args.verbose))
     try:
         return int(args.func(args) or 0)
     except StageproofError as exc:

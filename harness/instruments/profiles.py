@@ -263,7 +263,8 @@ def _ladder_or_list(v: Any) -> tuple[float, ...]:
         unknown = set(v) - {"ladder", "min", "max"}
         if unknown:
             raise ValueError(f"has unknown key {sorted(unknown)[0]!r}; use ladder, min, max")
-        steps = _LADDERS.get(v.get("ladder"))  # type: ignore[arg-type]
+        name = v.get("ladder")
+        steps = _LADDERS.get(name) if isinstance(name, str) else None
         if steps is None:
             raise ValueError(f"ladder must be one of {', '.join(repr(k) for k in _LADDERS)}")
         lo, hi = _pos_float(v.get("min")), _pos_float(v.get("max"))
