@@ -11,7 +11,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 from harness import __version__
 from harness.errors import StageproofError
@@ -79,7 +79,7 @@ def _verbose_everywhere(parser: argparse.ArgumentParser) -> None:
                 _verbose_everywhere(child)
 
 
-def _start_trace(level: int) -> None:
+def _start_trace(level: int) -> Callable[[], None]:
     """Send the SCPI trace (and with -vv everything at DEBUG) to stderr, timed from now."""
     import logging
     import time
@@ -95,9 +95,17 @@ def _start_trace(level: int) -> None:
     if level >= 2:
         logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
     trace = logging.getLogger("harness.instruments.trace")
+    old = (trace.level, trace.propagate)
     trace.setLevel(logging.INFO)
     trace.addHandler(handler)
     trace.propagate = False
+
+    def stop() -> None:
+        trace.removeHandler(handler)
+        trace.setLevel(old[0])
+        trace.propagate = old[1]
+
+    return stop
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -106,8 +114,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if getattr(args, "func", None) is None:
         parser.print_help()
         return 2
-    if getattr(args, "verbose", 0):
-        _start_trace(int(args.verbose))
+    stop_trace = _start_trace(int(args.verbose)) if getattr(args, "verbose", 0) else None
     try:
         return int(args.func(args) or 0)
     except StageproofError as exc:
@@ -118,6 +125,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
+    finally:
+        if stop_trace is not None:
+            stop_trace()
 
 
 if __name__ == "__main__":  # pragma: no cover

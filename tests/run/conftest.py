@@ -37,11 +37,13 @@ def fast_station(path: Path, timeout_ms: int = 1000) -> Path:
 
 
 @contextmanager
-def sim_bench(board, tmp_path: Path, faults=(), timeout_ms: int = 2000) -> Iterator:
+def sim_bench(
+    board, tmp_path: Path, faults=(), timeout_ms: int = 2000, dialect: str = "default"
+) -> Iterator:
     """A started SimBench (127.0.0.1, ephemeral ports, no latency) and its station file."""
     from harness.sim.bench import SimBench
 
-    with SimBench(board, faults=faults, latency=False, host="127.0.0.1") as bench:
+    with SimBench(board, faults=faults, latency=False, host="127.0.0.1", dialect=dialect) as bench:
         station = fast_station(bench.write_station(tmp_path / "station.toml"), timeout_ms)
         yield bench, station
 
