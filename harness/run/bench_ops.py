@@ -25,6 +25,7 @@ import numpy as np
 from harness import __version__
 from harness.errors import AnalysisError, InstrumentError, RunAborted
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
+from harness.measure.coherent import plan_coherent_within
 from harness.model.board import Board
 from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
@@ -476,11 +477,10 @@ class GroupScope:
             self.timebase = (want, (rate, points))
         if self._fits(plan):
             return plan
-        lengths = range(max(points // 2, 16), points + 1)
-        new = plan_coherent(
+        new = plan_coherent_within(
             float(plan.frequency_hz),
-            [rate],
-            list(lengths)[-512:],
+            rate,
+            points,
             tolerance_rel=tolerance_rel,
             min_cycles=min(int(plan.cycles), 3),
         )

@@ -151,3 +151,83 @@ def test_run_time_bad_profile_is_one_line_generator_off_run_aborted(
         assert run.status == "aborted" and words in (run.reason or "")
         names = {m.name for m in store.measurements(run.run_id)}
     assert "gain" not in names  # nothing measured at the failed step was stored
+
+
+# --- line, characterisation and diagnosis on the benchtop dialect ----------------------------
+
+
+def test_line_on_benchtop(board, tmp_path):
+    """The production loop with the benchtop profiles: a good board, a faulty one."""
+    import subprocess
+    import sys
+
+    from tests.line.test_line_cli import _env
+
+    for faults, serial, verdict in (((), "SN-L1", "PASS"), (("C102:open",), "SN-L2", "FAIL")):
+        with sim_bench(board, tmp_path, faults, dialect="benchtop") as (_bench, station):
+            proc = subprocess.run(
+                [
+                    sys.executable,
+                    "-m",
+                    "harness.cli.main",
+                    "line",
+                    "--station",
+                    str(station),
+                    "--fixture",
+                    str(FIXTURE_FILE),
+                    "--board",
+                    str(BOARD_FILE),
+                    "--db",
+                    str(tmp_path / "line.db"),
+                    "--settle-wait",
+                    "0",
+                    "--no-extra-frequencies",
+                ],
+                input=f"Ada\n{serial}\nquit\n",
+                capture_output=True,
+                text=True,
+                encoding="utf-8",
+                timeout=240,
+                cwd=REPO,
+                env=_env(),
+            )
+        assert f"VERDICT {serial}: {verdict}" in proc.stdout, proc.stdout + proc.stderr
+
+
+def test_characterize_on_benchtop(board, limits, tmp_path, capsys):
+    """Level and frequency sweeps through instrument-chosen timing: the measured low
+    corner lies in the model's band and the threshold passes."""
+    db = tmp_path / "c.db"
+    with sim_bench(board, tmp_path, dialect="benchtop") as (_bench, station):
+        rc = main(
+            [
+                "characterize", "--station", str(station), "--fixture", str(FIXTURE_FILE),
+                "--board", str(BOARD_FILE), "--serial", "PROTO-BT", "--db", str(db),
+                "-o", str(tmp_path / "c.html"), "--settle-wait", "0", "--per-decade", "3",
+            ]
+        )  # fmt: skip
+    cap = capsys.readouterr()
+    assert rc == 0, cap.out + cap.err
+    corner = limits.channels["A"].low_corner_hz
+    with open_store(db) as store:
+        (run,) = store.list_runs()
+        ms = {m.name: m for m in store.measurements(run.run_id) if m.channel == "A"}
+    assert run.status == "complete"
+    assert corner.low <= ms["low_corner"].value <= corner.high
+    assert ms["clip_input"].decision == "pass"
+
+
+def test_diagnosis_on_benchtop_ranks_the_open_capacitor(board, limits, tmp_path):
+    from harness.report import write_board_report
+
+    with sim_bench(board, tmp_path, ("C102:open",), dialect="benchtop") as (_b, station_file):
+        fixture = load_fixture(FIXTURE_FILE, board, scope_inputs=4)
+        with open_store(tmp_path / "r.db") as store, connect(load_station(station_file)) as inst:
+            res = run_board(
+                inst, board, limits, fixture, "SN-DX", store, options=FAST,
+                board_file=str(BOARD_FILE),
+            )  # fmt: skip
+    assert res.verdict == "FAIL"
+    _, report = write_board_report(tmp_path / "r.db", tmp_path / "r.html", serial="SN-DX")
+    top = [c.ref for c in report.diagnosis.candidates if c.kind != "none"][:3]
+    assert "C102" in top, top
