@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 import json
 
-from harness.cli.capture import read_capture
 from harness.errors import AnalysisError
+from harness.io.capture import read_capture
 from harness.measure import analyze_record
 
 

@@ -67,7 +67,7 @@ def run_demo(
     dialect: str = "default",
 ) -> list[tuple[DemoBoard, object]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
-    from harness.files import load_board
+    from harness.io.toml import load_board
     from harness.model import compute_limits
     from harness.run.runner import execute, packaged, prepare
     from harness.run.sequence import RunOptions

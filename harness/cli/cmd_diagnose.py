@@ -15,7 +15,7 @@ from typing import Any
 
 from harness.diagnose import Candidate, Diagnosis, diagnose_run
 from harness.errors import StoreError
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.store import DEFAULT_DB, open_store
 
 

@@ -12,7 +12,7 @@ import json
 import math
 import sys
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
 

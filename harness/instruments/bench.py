@@ -17,7 +17,7 @@ from harness.errors import StationFileError
 from harness.instruments.drivers import Dmm, Generator, Scope, Supply, Switch
 from harness.instruments.scpi import Identity
 from harness.instruments.session import Session
-from harness.instruments.station import StationConfig
+from harness.io.station import StationConfig
 
 __all__ = ["REQUIRED_ROLES", "Instruments", "connect"]
 

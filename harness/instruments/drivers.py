@@ -26,7 +26,6 @@ from harness.errors import (
     ReadbackMismatch,
     StageproofError,
 )
-from harness.instruments.profiles import format_text
 from harness.instruments.scpi import (
     DATATYPES,
     channel_list,
@@ -36,6 +35,7 @@ from harness.instruments.scpi import (
     parse_preamble,
 )
 from harness.instruments.session import Session
+from harness.io.profiles import format_text
 
 T = TypeVar("T")
 

@@ -39,7 +39,6 @@ from harness.errors import (
     MalformedReply,
     ScpiError,
 )
-from harness.instruments.profiles import Profile
 from harness.instruments.scpi import (
     NO_ERROR,
     Identity,
@@ -48,6 +47,7 @@ from harness.instruments.scpi import (
     parse_error_reply,
     parse_idn,
 )
+from harness.io.profiles import Profile
 
 __all__ = ["Session", "resource_manager"]
 

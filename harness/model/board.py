@@ -6,7 +6,7 @@ designator); transistor and op-amp parameters are :class:`Spread` ranges
 (min / typ / max) as data sheets give them.
 
 ``board_from_dict`` validates a parsed TOML document (no file I/O here: the reader is
-``harness.files.load_board``) and raises :class:`~harness.errors.BoardFileError`
+``harness.io.toml.load_board``) and raises :class:`~harness.errors.BoardFileError`
 naming the channel, stage and field of any mistake.
 """
 
@@ -19,7 +19,7 @@ from dataclasses import dataclass, field, fields
 from typing import Any, Literal
 
 from harness.errors import BoardFileError, ValueParseError
-from harness.files import FieldReader
+from harness.io.toml import FieldReader
 from harness.values import Toleranced, parse_quantity, parse_tolerance, split_value_tolerance
 
 # --- value objects ------------------------------------------------------------------------------

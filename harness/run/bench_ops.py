@@ -24,10 +24,10 @@ import numpy as np
 
 from harness import __version__
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.measure.coherent import plan_coherent_within
 from harness.model.board import Board
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
 
@@ -471,9 +471,7 @@ class GroupScope:
             rate, points = self.timebase[1]
         else:
             got = self.scope.configure_timebase(*want)
-            rate, points = (
-                (float(got.sample_rate_hz), int(got.points)) if got is not None else want
-            )
+            rate, points = (float(got.sample_rate_hz), int(got.points)) if got is not None else want
             self.timebase = (want, (rate, points))
         if self._fits(plan):
             return plan

@@ -40,6 +40,7 @@ from typing import Any, Literal
 import numpy as np
 
 from harness.errors import AnalysisError, RunAborted, SafetyError
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import RecordAnalysis, clip_threshold
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
@@ -50,7 +51,6 @@ from harness.run.bench_ops import (
     routed,
     run_guarded,
 )
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 

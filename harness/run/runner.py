@@ -15,9 +15,9 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import ValueParseError
-from harness.files import load_board
+from harness.io.fixture import FixtureConfig, check_station, load_fixture
+from harness.io.toml import load_board
 from harness.model.board import Board
-from harness.run.fixture import FixtureConfig, check_station, load_fixture
 from harness.run.progress import Progress
 from harness.run.sequence import RunOptions, RunResult, run_board
 
@@ -75,7 +75,7 @@ def prepare(
     limits: Any = None,
 ) -> Prepared:
     """Read and cross-check board, limits, station and fixture; touches no instrument."""
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
     from harness.model import compute_limits
 
     board = load_board(board_file)

@@ -34,6 +34,7 @@ from typing import Any, Literal
 import numpy as np
 
 from harness.errors import FixtureFileError, StageproofError
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import (
     RecordAnalysis,
     SearchStep,
@@ -65,7 +66,6 @@ from harness.run.decisions import (
     thd_uncertainty_percent,
     threshold_uncertainty_db,
 )
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 

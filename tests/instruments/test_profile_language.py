@@ -23,11 +23,11 @@ from harness.errors import (
     ReadbackMismatch,
     ScpiError,
 )
-from harness.files import load_board
 from harness.instruments.drivers import Generator, Scope, amplitude_setting
-from harness.instruments.profiles import load_profile
 from harness.instruments.scpi import encode_values, ladder_values, parse_preamble
 from harness.instruments.session import Session
+from harness.io.profiles import load_profile
+from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 from tests.instruments.fakeinst import FakeInstrument
 

@@ -12,11 +12,10 @@ import pytest
 import scipy.constants as const
 from scipy.special import iv
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point, thermal_voltage
 from harness.model.core import solve_drive, solve_junction
-
-from .boards import board_text, make_board, write_board
+from tests.support.boards import board_text, make_board, write_board
 
 V_T = thermal_voltage(300.0)
 

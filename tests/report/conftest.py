@@ -8,7 +8,7 @@ from pathlib import Path
 import pytest
 
 from harness.store import open_store
-from tests.report.builders import add_run
+from tests.support.builders import add_run
 
 
 @pytest.fixture(scope="session")

@@ -15,7 +15,7 @@ import pytest
 from harness.report import capability, load_summary, render_summary_html
 from harness.report.stats import CPK_THRESHOLD
 from harness.store import open_store
-from tests.report.builders import add_run
+from tests.support.builders import add_run
 
 DATA = (9.8, 10.0, 10.2, 10.1, 9.9)
 

@@ -21,11 +21,11 @@ import pytest
 
 from harness.cli.main import main
 from harness.instruments.bench import connect
-from harness.instruments.station import load_station
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
+from harness.io.station import load_station
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -161,7 +161,7 @@ def test_line_on_benchtop(board, tmp_path):
     import subprocess
     import sys
 
-    from tests.line.test_line_cli import _env
+    from tests.cli.test_line_cli import _env
 
     for faults, serial, verdict in (((), "SN-L1", "PASS"), (("C102:open",), "SN-L2", "FAIL")):
         with sim_bench(board, tmp_path, faults, dialect="benchtop") as (_bench, station):

@@ -8,7 +8,7 @@ import math
 import pytest
 
 from harness.errors import RunAborted
-from harness.run.fixture import ChannelConnection, FixtureConfig, SupplyConnection, TestPoint
+from harness.io.fixture import ChannelConnection, FixtureConfig, SupplyConnection, TestPoint
 from harness.run.progress import RecordingProgress
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store

@@ -21,8 +21,8 @@ from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError
-from harness.files import read_toml
 from harness.instruments.scpi import DATATYPES, SCPI_FORMAT, format_number, ladder_values
+from harness.io.toml import read_toml
 
 __all__ = [
     "DEFAULT_PROFILE_DIRS",

@@ -9,13 +9,13 @@ from pathlib import Path
 import pytest
 
 from harness.errors import ProfileError, StationFileError
-from harness.instruments.profiles import (
+from harness.io.profiles import (
     DEFAULT_PROFILE_DIRS,
     ROLE_OPS,
     ROLES,
     load_profile,
 )
-from harness.instruments.station import load_station, validate_resource
+from harness.io.station import load_station, validate_resource
 
 REPO = Path(__file__).resolve().parents[2]
 FIXTURE_PROFILES = REPO / "fixtures" / "instruments"

@@ -17,8 +17,8 @@ from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError, StationFileError
-from harness.files import FieldReader, read_toml
-from harness.instruments.profiles import ROLES, Profile, load_profile
+from harness.io.profiles import ROLES, Profile, load_profile
+from harness.io.toml import FieldReader, read_toml
 
 __all__ = [
     "InstrumentConfig",

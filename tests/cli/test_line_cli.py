@@ -19,13 +19,21 @@ import time
 import pytest
 
 from harness.store import RunHeader, open_store
-from tests.line.conftest import BOARD_FILE, REPO, connections
+from tests.support.bench import BOARD_FILE, REPO, connections
+from tests.support.line import line_bench
 
 pytestmark = pytest.mark.wire
 
 FAST = ["--settle-wait", "0", "--max-points", "1000", "--no-extra-frequencies"]
 LONG = "X" * 100
 BEL = "\x07"
+
+
+@pytest.fixture(scope="module")
+def bench(board, tmp_path_factory):
+    """One simulated bench per module: (bench, station file, fixture file)."""
+    with line_bench(board, tmp_path_factory.mktemp("line")) as b:
+        yield b
 
 
 def _cmd(station, fixture, db, *extra):
