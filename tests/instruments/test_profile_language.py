@@ -481,3 +481,63 @@ def test_high_resolution_mode_lowers_the_noise(benchtop, rm, tmp_path):
         g.session.close()
     assert res["normal"][0] == 8 and res["fine"][0] == 12
     assert res["fine"][1] < 0.2 * res["normal"][1]
+
+
+UNSHIPPED = """
+[profile]
+name = "lab-scope"
+role = "scope"
+
+[settings]
+inputs = 2
+vertical = "range"
+ranges_vpp = [0.5, 1, 2, 5]
+horizontal = "record_time"
+sample_rates_hz = [1e4, 1e5]
+record_lengths = [2048, 4096]
+adc_bits = 12
+data_format = "int16"
+byte_order = "little"
+format_names = { int16 = "WORD,LE" }
+scaling = "range_and_bits"
+
+[commands]
+identify = "*IDN?"
+clear_status = "*CLS"
+error_query = "SYST:ERR?"
+wait_complete = "*OPC?"
+input_on = "CH{input}:ON"
+set_range = "CH{input}:FS {range_vpp}"
+query_range = "CH{input}:FS?"
+set_offset = "CH{input}:OFS {offset_v}"
+set_coupling = "CH{input}:CPL {coupling}"
+set_bandwidth_limit = "CH{input}:BW {state}"
+set_record_time = "ACQ:TIME {record_s}"
+set_record_length = "ACQ:LEN {points}"
+query_sample_interval = "ACQ:DT?"
+query_record_length = "ACQ:N?"
+set_trigger = "TRIG {source},{level_v}"
+set_data_format = "DATA:ENC {format}"
+single = "ACQ:GO"
+fetch = "DATA? {input}"
+"""
+
+
+def test_a_dialect_we_do_not_ship_works_from_its_profile_alone(fake, rm, tmp_path):
+    """Range vertical, record-time horizontal, signed 12-bit codes in little-endian words,
+    range-and-bits scaling: volts = offset + code·range/2^12 (the profile's convention)."""
+    p = tmp_path / "lab-scope.toml"
+    p.write_text(UNSHIPPED)
+    sc = _open(Scope, fake, rm, p)
+    fake.replies["ACQ:DT?"] = "1E-5"
+    fake.replies["ACQ:N?"] = "4096"
+    codes = np.resize(np.array([-2048, -1, 0, 1, 2047], dtype=np.int16), 4096)
+    fake.replies["DATA? 1"] = encode_values(codes, "int16", big_endian=False) + b"\n"
+    setup = sc.configure_input(1, range_vpp=0.8, offset_v=0.1)
+    tb = sc.configure_timebase(1e5, 4096)
+    sc.configure_trigger(1)
+    acq = sc.acquire([1], points=4000)
+    assert setup.range_vpp == 1.0 and (tb.sample_rate_hz, tb.points) == (1e5, 4096)
+    np.testing.assert_allclose(acq.volts[1], 0.1 + codes[:4000] * 1.0 / 4096, atol=1e-12)
+    assert "ACQ:TIME 0.04096" in fake.sent() and "DATA:ENC WORD,LE" in fake.sent()
+    sc.session.close()
