@@ -25,7 +25,7 @@ from harness.io.fixture import load_fixture
 from harness.io.station import load_station
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, ends_off, measurement, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -42,15 +42,6 @@ def _run(board, limits, tmp_path, dialect, faults=()):
     return res, ident, log
 
 
-def _row(res, ch, name):
-    return next(m for m in res.measurements if m.channel == ch and m.name == name)
-
-
-def _ends_off(log) -> bool:
-    outs = [e for e in log if e.what in ("output", "reset")]
-    return not outs or outs[-1].what == "reset" or outs[-1].value == 0.0
-
-
 @pytest.fixture(scope="module")
 def both(board, limits, tmp_path_factory):
     return {d: _run(board, limits, tmp_path_factory.mktemp(d), d) for d in ("default", "benchtop")}
@@ -61,21 +52,21 @@ def test_same_board_same_gain_and_threshold_on_both_dialects(both):
     assert (dmodel, bmodel) == ("DIG-4", "BTS-4")
     assert dres.verdict == bres.verdict == "PASS"
     for ch in ("A", "B"):
-        g0, g1 = _row(dres, ch, "gain").value, _row(bres, ch, "gain").value
+        g0, g1 = measurement(dres, ch, "gain").value, measurement(bres, ch, "gain").value
         assert abs(g0 - g1) <= 0.05, (ch, g0, g1)
-        c0, c1 = _row(dres, ch, "clip_input"), _row(bres, ch, "clip_input")
+        c0, c1 = measurement(dres, ch, "clip_input"), measurement(bres, ch, "clip_input")
         u = math.hypot(c0.uncertainty, c1.uncertainty)
         assert abs(c0.value - c1.value) <= u, (ch, c0.value, c1.value, u)
-    assert _ends_off(dlog) and _ends_off(blog)
+    assert ends_off(dlog) and ends_off(blog)
 
 
 def test_faulty_board_fails_on_the_benchtop_dialect(board, limits, tmp_path):
     res, _, log = _run(board, limits, tmp_path, "benchtop", faults=("C102:open",))
     assert res.verdict == "FAIL"
-    gain = _row(res, "A", "gain")
+    gain = measurement(res, "A", "gain")
     assert gain.decision == "fail" and gain.value < gain.low
-    assert _row(res, "B", "gain").decision == "pass"
-    assert _ends_off(log)
+    assert measurement(res, "B", "gain").decision == "pass"
+    assert ends_off(log)
 
 
 def _cli(station, db, *extra):
@@ -145,7 +136,7 @@ def test_run_time_bad_profile_is_one_line_generator_off_run_aborted(
     assert code == 2
     assert len(err) == 1 and err[0].startswith("stageproof: error:") and words in err[0]
     assert f"role={role}" in err[0]
-    assert _ends_off(log)
+    assert ends_off(log)
     with open_store(db) as store:
         (run,) = store.list_runs()
         assert run.status == "aborted" and words in (run.reason or "")

@@ -43,3 +43,14 @@ def free_port() -> int:
 def connections(bench) -> dict[str, int]:
     """TCP connections each simulated instrument has accepted so far."""
     return {role: srv.connections_served for role, srv in bench.servers.items()}
+
+
+def measurement(res, channel: str, name: str):
+    """The run result's measurement row of ``name`` on ``channel``."""
+    return next(m for m in res.measurements if m.channel == channel and m.name == name)
+
+
+def ends_off(log) -> bool:
+    """The simulated generator's last output event is off (or a reset, which is off)."""
+    outs = [e for e in log if e.what in ("output", "reset")]
+    return not outs or outs[-1].what == "reset" or outs[-1].value == 0.0
