@@ -264,6 +264,16 @@ class Session:
             raise self._typed(
                 ConnectionLost, f"VISA I/O error: {exc.description}", command
             ) from exc
+        except UnicodeDecodeError as exc:
+            # binary bytes where text was expected: a late block reply, or framing lost
+            self._broken = True
+            raise self._typed(
+                MalformedReply,
+                f"reply is not text ({exc.reason} at byte {exc.start})",
+                command,
+                "a binary block arrived for a text query: check the profile's fetch and "
+                "query commands",
+            ) from exc
         except OSError as exc:
             self._broken = True
             raise self._typed(
