@@ -214,6 +214,10 @@ class SafetyError(StageproofError, RuntimeError):
     """A step would break a safety rule (level above the safe input, supply fault)."""
 
 
+class StationBusy(StageproofError, RuntimeError):
+    """Another process holds the station's instruments (its lock names who)."""
+
+
 class RunAborted(StageproofError, RuntimeError):
     """The sequence stopped before a verdict (operator interrupt, lost instrument)."""
 

@@ -21,7 +21,7 @@ from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
-from harness.run.runner import prepare
+from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
@@ -300,38 +300,56 @@ def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any =
     console = console or Console(highlight=False)
     if args.max_points is not None and args.max_points < 1:
         raise ValueParseError(str(args.max_points), "--max-points must be a positive count")
-    # Everything is read and the limits computed before the operator is asked anything.
-    prep = prepare(args.board, args.fixture, args.station)
-    ui = TerminalUI(console, stdin, details=args.details)
-    if args.operator is not None:
-        operator = check_operator(args.operator)
-    else:
-        operator = ""
-        while not operator:
-            try:
-                name = ui.prompt("operator> ")
-            except KeyboardInterrupt:
-                console.print("")
-                return 0
-            if name is None:
+    # Every file is read, the station locked and made safe (a crashed session may have left
+    # it driving a board) and the limits computed before the operator is asked anything.
+    from harness.run.safety import connect_safe
+    from harness.run.station_lock import station_lock
+
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
+    with station_lock(prep.station):
+        instruments = connect_safe(prep.station)
+        try:
+            prep = ensure_limits(prep)
+            ui = TerminalUI(console, stdin, details=args.details)
+            operator = _operator(args, ui, console)
+            if operator is None:
                 return 0  # nobody there: nothing tested
-            try:
-                operator = check_operator(name)
-            except ValueParseError as exc:
-                ui.message(str(exc), "error")
-    kw: dict[str, Any] = {}
-    if args.max_points is not None:
-        kw["max_points"] = args.max_points
-    options = run_args.run_options(
-        args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
-    )
-    summary = run_line(
-        prep,
-        args.db or DEFAULT_DB,
-        ui,
-        operator=operator,
-        options=options,
-        scanner_prefix=args.scanner_prefix,
-        scanner_suffix=args.scanner_suffix,
-    )
+            kw: dict[str, Any] = {}
+            if args.max_points is not None:
+                kw["max_points"] = args.max_points
+            options = run_args.run_options(
+                args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
+            )
+            handed, instruments = instruments, None  # the session closes it from here
+            summary = run_line(
+                prep,
+                args.db or DEFAULT_DB,
+                ui,
+                operator=operator,
+                options=options,
+                scanner_prefix=args.scanner_prefix,
+                scanner_suffix=args.scanner_suffix,
+                instruments=handed,
+            )
+        finally:
+            if instruments is not None:
+                instruments.close()
     return 2 if summary.error else 0
+
+
+def _operator(args: argparse.Namespace, ui: TerminalUI, console: Any) -> str | None:
+    """The operator's name from --operator, else asked once; None when nobody answers."""
+    if args.operator is not None:
+        return check_operator(args.operator)
+    while True:
+        try:
+            name = ui.prompt("operator> ")
+        except KeyboardInterrupt:
+            console.print("")
+            return None
+        if name is None:
+            return None
+        try:
+            return check_operator(name)
+        except ValueParseError as exc:
+            ui.message(str(exc), "error")

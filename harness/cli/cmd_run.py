@@ -63,7 +63,8 @@ def run(args: argparse.Namespace) -> int:
     from harness.store import DEFAULT_DB
 
     serial = validate_serial(args.serial)  # before anything touches an instrument
-    prep = prepare(args.board, args.fixture, args.station)
+    # limits deferred: the station is made safe before the Monte Carlo runs
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
     console = Console(stderr=args.json)
     progress = None if args.json else RichProgress(console)
     options = run_args.run_options(args, operator=args.operator)

@@ -229,6 +229,8 @@ class Generator(_SwitchedOutputs):
     def __init__(self, session: Session) -> None:
         super().__init__(session)
         self._prepared: set[int] = set()
+        #: output -> amplitude read back after the last set_level (profile unit)
+        self._read_setting: dict[int, float] = {}
 
     @property
     def output_ohm(self) -> float:
@@ -243,6 +245,7 @@ class Generator(_SwitchedOutputs):
         for key, (op, params) in list(self._state.items()):
             if op == "output_on":
                 self._state[key] = ("output_off", params)
+        self._read_setting.clear()  # a read-back from before the reconnect is stale
         super()._replay()
 
     def _prepare(self, o: int) -> None:
@@ -329,7 +332,8 @@ class Generator(_SwitchedOutputs):
         rel = float(self.settings["amplitude_tolerance_rel"])
         # compared as rms volts: a relative tolerance means the same in every unit
         tol = 20 * math.log10(1 + rel) if unit == "dbm" else abs(setting) * rel
-        self.read_back(
+        self._read_setting.pop(o, None)
+        got = self.read_back(
             "amplitude",
             "query_amplitude",
             setting,
@@ -337,6 +341,7 @@ class Generator(_SwitchedOutputs):
             hint="check amplitude_unit, calibrated_load and max_amplitude_vpp in the profile",
             output=o,
         )
+        self._read_setting[o] = float(got)
         return setting
 
     def set_offset(self, offset_v: float, *, load_ohm: float = math.inf, output: int = 1) -> None:
@@ -351,6 +356,23 @@ class Generator(_SwitchedOutputs):
     def amplitude_setting(self, output: int = 1) -> float:
         """The amplitude the instrument reports (profile unit), if the profile can ask."""
         return self._ask(parse_number, "query_amplitude", output=self._output_no(output))
+
+    def level_readback_vrms(self, *, load_ohm: float = math.inf, output: int = 1) -> float | None:
+        """The level the instrument reports, as rms volts across ``load_ohm`` (the inverse
+        of :meth:`set_level`, which reads the amplitude back after every change); None when
+        the profile has no ``query_amplitude``."""
+        if not self.profile.has("query_amplitude"):
+            return None
+        o = self._output_no(output)
+        # the value set_level has just read back, else a fresh query: one read per change
+        setting = self._read_setting.get(o)
+        return level_at_load(
+            self.amplitude_setting(o) if setting is None else setting,
+            load_ohm=load_ohm,
+            unit=self.settings["amplitude_unit"],
+            calibrated_load_ohm=self.settings["calibrated_load"],
+            output_ohm=self.output_ohm,
+        )
 
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""

@@ -13,6 +13,9 @@ Everything the drivers send goes through :class:`Session`, which
   connection is taken as lost;
 - on a lost connection (instrument power-cycled, cable pulled) closes, reopens,
   re-identifies, runs the drivers' re-configure hooks and retries, a bounded number of times;
+- before any recovery (the resynchronisation after a timeout, every reconnect attempt) runs
+  its recovery hooks first: the run layer switches the generator off there, so a board is
+  never driven while an instrument is lost;
 - refuses an instrument whose ``*IDN?`` is not the one the station expects.
 
 Every I/O is logged at DEBUG on ``harness.instruments`` with the resource name.
@@ -122,6 +125,9 @@ class Session:
         self._broken = False
         self._in_reconnect = False
         self._hooks: list[Callable[[], None]] = []
+        self._recovery_hooks: list[Callable[[], None]] = []
+        #: How often this session had to recover (a timeout or a lost connection).
+        self.troubles = 0
 
     # --- life cycle -----------------------------------------------------------------------
 
@@ -139,6 +145,19 @@ class Session:
     def add_reconfigure_hook(self, hook: Callable[[], None]) -> None:
         """``hook()`` runs after every reconnect to restore the instrument's settings."""
         self._hooks.append(hook)
+
+    def add_recovery_hook(self, hook: Callable[[], None]) -> None:
+        """``hook()`` runs before every recovery attempt (resynchronise or reconnect); it
+        must not raise (an exception is logged and the recovery goes on)."""
+        self._recovery_hooks.append(hook)
+
+    def _before_recovery(self) -> None:
+        self.troubles += 1
+        for hook in self._recovery_hooks:
+            try:
+                hook()
+            except Exception as exc:  # a hook must never stop the recovery
+                log.error("%s recovery hook failed: %s", self.resource, exc)
 
     def open(self) -> Identity:
         """Open the resource, clear its status and check its identity (bounded retries)."""
@@ -223,6 +242,7 @@ class Session:
         with self._lock:
             self.reconnects += 1
             log.warning("%s (%s) reconnecting", self.resource, self.role)
+            self._before_recovery()
             self._open_resource()
             ident = self._identify()
             self._in_reconnect = True
@@ -425,7 +445,10 @@ class Session:
                         self.reconnect()
                     return fn()
                 except InstrumentTimeout as exc:
-                    if self._in_reconnect or self._alive():
+                    if self._in_reconnect:
+                        raise
+                    self._before_recovery()
+                    if self._alive():
                         raise
                     self._broken = True
                     last = self._typed(
@@ -438,6 +461,8 @@ class Session:
                 except ConnectionLost as exc:
                     self._broken = True
                     last = exc
+                    if not self._in_reconnect:
+                        self._before_recovery()
                 if attempt < attempts - 1:
                     log.warning("%s %s failed (%s); retrying", self.resource, command, last)
             assert last is not None

@@ -16,6 +16,7 @@ import contextlib
 import json
 import logging
 import math
+import time
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import asdict, replace
 from typing import Any, Literal, NoReturn
@@ -35,6 +36,11 @@ from harness.store import MeasurementRow, RunHeader, SweepPointRow
 RANGE_FILL = 0.8
 #: A record using less than this fraction of its target fill is re-ranged down.
 RANGE_UNDERUSE = 0.35
+#: The input probe may read this much above the safe level before the run stops: the
+#: margin for the scope's gain accuracy (about 2-3 % for an 8-bit scope, common practice).
+MEASURED_SAFE_MARGIN = 0.05
+#: Acquisitions in a row that may be spoilt by an instrument recovering before giving up.
+MAX_RESTORES = 3
 
 log = logging.getLogger("harness.run")
 
@@ -148,17 +154,41 @@ def settle_time_s(limits: Any, fixture: FixtureConfig, override_s: float | None)
 
 
 def safe_generator(
-    generator: Any, board: Board, fixture: FixtureConfig, max_step_up_db: float
+    generator: Any,
+    board: Board,
+    fixture: FixtureConfig,
+    max_step_up_db: float,
+    *,
+    on_alarm: Callable[[str], None] | None = None,
+    disturbances: Callable[[], int] | None = None,
 ) -> SafeGenerator:
-    """The generator behind the board's safe input level (rises above nominal ramp)."""
+    """The generator behind the board's safe input level: it switches on at no more than
+    the nominal level and every rise while on ramps."""
     cond = board.conditions
     return SafeGenerator(
         generator,
         cond.safe_input_vrms,
         direct_vrms=cond.nominal_input_vrms,
         max_step_up_db=max_step_up_db,
+        on_alarm=on_alarm,
+        disturbances=disturbances,
         output=fixture.generator_output,
     )
+
+
+def station_disturbances(instruments: Any) -> Callable[[], int] | None:
+    """A counter of every recovery on the station's sessions (None without sessions)."""
+    sessions = getattr(instruments, "sessions", None)
+    if not isinstance(sessions, dict) or not sessions:
+        return None
+
+    def count() -> int:
+        return sum(
+            int(getattr(s, "reconnects", 0) or 0) + int(getattr(s, "troubles", 0) or 0)
+            for s in sessions.values()
+        )
+
+    return count
 
 
 def supply_guard(fixture: FixtureConfig, supply: Any) -> SupplyGuard | None:
@@ -329,11 +359,12 @@ def run_guarded(
     shutdown: Callable[[], None],
     step: Callable[[], str],
     safe: SafeGenerator,
+    supply: SupplyGuard | None = None,
 ) -> tuple[Literal["complete", "aborted"], str | None, BaseException | None]:
     """Run ``steps`` (which may return a reason for stopping early) with SIGTERM raising and
     ``shutdown`` on every exit; any exception, Ctrl-C included, makes the run aborted with
     its reason at the current ``step()``.  Returns (status, reason, exception or None); an
-    unknown generator state is added to the reason."""
+    unknown generator or supply state (not read back off) is added to the reason."""
     status: Literal["complete", "aborted"] = "complete"
     reason: str | None = None
     error: BaseException | None = None
@@ -348,6 +379,8 @@ def run_guarded(
         reason = abort_reason(exc, step())
     if safe.output_state == "unknown":
         reason = (reason + "; " if reason else "") + "generator output state unknown"
+    if supply is not None and supply.output_state == "unknown":
+        reason = (reason + "; " if reason else "") + "supply output state unknown"
     return status, reason, error
 
 
@@ -426,7 +459,14 @@ def scope_inputs(channels: Iterable[ChannelConnection]) -> list[int]:
 
 class GroupScope:
     """The scope as both runs use it: ranges, timebase and trigger set only on change, a
-    group of channels acquired at once and analysed.  ``note`` hears every re-range."""
+    group of channels acquired at once and analysed.  ``note`` hears every re-range.
+
+    With ``safe`` every acquisition checks the level the input probes measure against the
+    board's safe input level (a wrong profile or probe factor makes the real level differ
+    from the commanded one): above it, the generator is switched off and the run stops
+    with a SafetyError.  ``restore()`` is asked after every acquisition whether the
+    station had to recover an instrument meanwhile (the generator was then switched off
+    and is brought back): the record is then taken again."""
 
     def __init__(
         self,
@@ -435,8 +475,12 @@ class GroupScope:
         *,
         max_rerange: int,
         note: Callable[[str], None] | None = None,
+        safe: SafeGenerator | None = None,
+        restore: Callable[[], bool] | None = None,
     ) -> None:
         self.scope = scope
+        self.safe = safe
+        self.restore = restore
         self.span_v = board.supply.v_pos - board.supply.v_neg
         self.max_rerange = max_rerange
         self.note = note
@@ -565,12 +609,11 @@ class GroupScope:
             self.scope.configure_trigger(inputs[0], 0.0)
             self.trigger = inputs[0]
         for attempt in range(self.max_rerange + 1):
-            acq = (
-                self.scope.acquire(inputs)
-                if whole
-                else self.scope.acquire(inputs, points=int(plan.n_samples))
+            acq = self._acquire_sound(
+                inputs,
+                [c.input_scope for c in channels],
+                None if whole else int(plan.n_samples),
             )
-            self.acquisitions += 1
             changed = False
             for n in inputs:
                 v = np.asarray(acq.volts[n], dtype=float)
@@ -625,6 +668,40 @@ class GroupScope:
                     a = replace(a, thd_percent=corr)
             out[c.board_channel] = a
         return out, acq
+
+    def _acquire_sound(
+        self, inputs: list[int], input_probes: list[int], points: int | None = None
+    ) -> Any:
+        """One acquisition (the first ``points`` samples of the record, None: all) taken with
+        the generator as the run set it, its input levels checked against the safe level."""
+        for _ in range(MAX_RESTORES):
+            acq = (
+                self.scope.acquire(inputs)
+                if points is None
+                else self.scope.acquire(inputs, points=points)
+            )
+            self.acquisitions += 1
+            if self.restore is None or not self.restore():
+                break
+        else:
+            raise RunAborted(
+                f"instruments recovered during {MAX_RESTORES} acquisitions in a row: "
+                "no record was taken with the signal on"
+            )
+        if self.safe is not None:
+            limit = self.safe.safe_input_vrms
+            for n in dict.fromkeys(input_probes):
+                v = np.asarray(acq.volts[n], dtype=float)
+                vrms = float(np.std(v))
+                if vrms > limit * (1 + MEASURED_SAFE_MARGIN):
+                    raise self.safe.stop(
+                        f"the input probe (scope input {n}) measures {vrms:.4g} V rms, above "
+                        f"the board's safe input level {limit:.4g} V rms (commanded "
+                        f"{self.safe.level_vrms:.4g} V rms)",
+                        hint="check the generator profile's amplitude_unit and "
+                        "calibrated_load and the fixture's input_probe factor",
+                    )
+        return acq
 
 
 def _fills_match(
@@ -684,8 +761,22 @@ class BoardRun:
         self.progress = progress
         self.board_file = board_file
         self.criterion = clip_criterion(board)
-        self.scope_ops = GroupScope(scope, board, max_rerange=options.max_rerange, note=note)
-        self.safe = safe_generator(generator, board, fixture, options.max_step_up_db)
+        self.safe = safe_generator(
+            generator,
+            board,
+            fixture,
+            options.max_step_up_db,
+            on_alarm=note,
+            disturbances=station_disturbances(instruments),
+        )
+        self.scope_ops = GroupScope(
+            scope,
+            board,
+            max_rerange=options.max_rerange,
+            note=note,
+            safe=self.safe,
+            restore=self._restore_signal,
+        )
         self.supply: SupplyGuard | None = supply_guard(fixture, supply)
         self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s)
         self.settle_note = ""
@@ -695,6 +786,16 @@ class BoardRun:
 
     def station_text(self) -> str:
         return self.opt.station_name
+
+    def _restore_signal(self) -> bool:
+        """After an instrument recovery: the generator back on (ramped) and settled; True
+        when the last record was taken without the signal."""
+        if not self.safe.resync():
+            return False
+        if self.settle_s > 0:
+            sleep = getattr(self.opt, "sleep", None) or time.sleep
+            sleep(self.settle_s)
+        return True
 
     def header(self) -> RunHeader:
         return run_header(

@@ -570,7 +570,7 @@ class Characterizer(BoardRun):
         t0 = time.perf_counter()
         self.run_id = self.run_log.begin(self.header())
         status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step, self.safe
+            self._steps, self._shutdown, lambda: self.step, self.safe, self.supply
         )
         verdict: Literal["PASS", "FAIL"] | None = None
         if status == "complete":

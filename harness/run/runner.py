@@ -1,9 +1,11 @@
 """From file names to a stored verdict: what ``stageproof run`` and ``stageproof demo`` share.
 
-Order matters for "nothing written half-way": every input is read and validated (serial
-number, board, limits, station, fixture, roles), then the store is opened (an unwritable
-path fails here), then the instruments are connected (an unreachable or wrong instrument
-fails here), and only then is a run begun in the store.
+Order matters, for safety first and then for "nothing written half-way": every input file
+is read and validated (serial number, board, station, fixture, roles), then the store is
+opened (an unwritable path fails here, before any instrument is touched), then the station
+is locked and connected with every source put in its safe state (a station left driving a
+board by a crashed process is switched off before anything slow happens), then the limits
+are computed, and only then is a run begun in the store.
 """
 
 from __future__ import annotations
@@ -67,14 +69,28 @@ class Prepared:
     station_file: str
 
 
+def ensure_limits(prep: Prepared) -> Prepared:
+    """``prep`` with its limits computed (when :func:`prepare` deferred them)."""
+    if prep.limits is not None:
+        return prep
+    from dataclasses import replace
+
+    from harness.model import compute_limits
+
+    return replace(prep, limits=compute_limits(prep.board))
+
+
 def prepare(
     board_file: str | Path,
     fixture_file: str | Path,
     station_file: str | Path,
     *,
     limits: Any = None,
+    defer_limits: bool = False,
 ) -> Prepared:
-    """Read and cross-check board, limits, station and fixture; touches no instrument."""
+    """Read and cross-check board, limits, station and fixture; touches no instrument.
+    ``defer_limits`` leaves the limits (a second of Monte Carlo) to :func:`ensure_limits`,
+    so a command can make the station safe first."""
     from harness.io.station import load_station
     from harness.model import compute_limits
 
@@ -99,7 +115,7 @@ def prepare(
                 f"(the station's generator has {outs})",
                 hint="use an output the generator has",
             )
-    lim = limits if limits is not None else compute_limits(board)
+    lim = limits if limits is not None or defer_limits else compute_limits(board)
     return Prepared(board, lim, station, fixture, str(board_file), str(station_file))
 
 
@@ -112,31 +128,29 @@ def execute(
     progress: Progress | None = None,
     rm: Any = None,
 ) -> RunResult:
-    """Open the store (recovering aborted runs), connect the station, run the board."""
-    from harness.instruments.bench import connect
+    """Open the store, lock and connect the station (every source safe first), compute
+    the limits if deferred, recover aborted runs, run the board."""
+    from harness.run.safety import safe_station
     from harness.store import open_store
 
     serial = validate_serial(serial)
     opts = options or RunOptions()
-    with open_store(db) as store:
+    with open_store(db) as store, safe_station(prep.station, rm=rm) as instruments:
+        prep = ensure_limits(prep)
         store.recover_aborted()
-        instruments = connect(prep.station, rm=rm) if rm is not None else connect(prep.station)
-        try:
-            if not opts.station_name:
-                from dataclasses import replace
+        if not opts.station_name:
+            from dataclasses import replace
 
-                opts = replace(opts, station_name=getattr(prep.station, "name", "") or "")
-            return run_board(
-                instruments,
-                prep.board,
-                prep.limits,
-                prep.fixture,
-                serial,
-                store,
-                options=opts,
-                progress=progress,
-                board_file=prep.board_file,
-                station_file=prep.station_file,
-            )
-        finally:
-            instruments.close()
+            opts = replace(opts, station_name=getattr(prep.station, "name", "") or "")
+        return run_board(
+            instruments,
+            prep.board,
+            prep.limits,
+            prep.fixture,
+            serial,
+            store,
+            options=opts,
+            progress=progress,
+            board_file=prep.board_file,
+            station_file=prep.station_file,
+        )

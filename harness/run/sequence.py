@@ -963,7 +963,7 @@ class Sequencer(BoardRun):
         with contextlib.suppress(AttributeError, StageproofError):  # a store without get_run
             retest = int(self.store.get_run(self.run_id).retest)
         status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step_name, self.safe
+            self._steps, self._shutdown, lambda: self.step_name, self.safe, self.supply
         )
         verdicts = self.verdicts()
         verdict: Literal["PASS", "FAIL"] | None = None
