@@ -165,16 +165,27 @@ class _Driver:
                 math.isfinite(value) and abs(value - requested) <= tolerance
             )
         if not ok:
-            raise ReadbackMismatch(
+            raise self._mismatch(
                 setting,
                 requested,
                 value,
-                resource=self.session.resource,
-                command=command,
-                role=self.session.role,
-                hint=hint or f"check the profile's {setting} settings against the instrument",
+                command,
+                hint or f"check the profile's {setting} settings against the instrument",
             )
         return value
+
+    def _mismatch(
+        self, setting: str, requested: Any, got: Any, command: str, hint: str
+    ) -> ReadbackMismatch:
+        return ReadbackMismatch(
+            setting,
+            requested,
+            got,
+            resource=self.session.resource,
+            command=command,
+            role=self.session.role,
+            hint=hint,
+        )
 
     def _err(self, message: str, hint: str | None = None) -> InstrumentError:
         return InstrumentError(
@@ -643,24 +654,20 @@ class Scope(_Driver):
         tb = Timebase(float(f"{1.0 / interval:.10g}"), round(got_points))
         if mode == "sample_rate":
             if not self._close(tb.sample_rate_hz, sample_rate_hz):
-                raise ReadbackMismatch(
+                raise self._mismatch(
                     "sample rate (S/s)",
                     float(sample_rate_hz),
                     tb.sample_rate_hz,
-                    resource=self.session.resource,
-                    command=self.profile.render("query_sample_interval"),
-                    role=self.session.role,
-                    hint="the profile's sample_rates_hz must list rates the scope offers",
+                    self.profile.render("query_sample_interval"),
+                    "the profile's sample_rates_hz must list rates the scope offers",
                 )
             if tb.points != int(points):
-                raise ReadbackMismatch(
+                raise self._mismatch(
                     "record length (points)",
                     int(points),
                     tb.points,
-                    resource=self.session.resource,
-                    command=self.profile.render("query_record_length"),
-                    role=self.session.role,
-                    hint="the profile's record_lengths must list lengths the scope offers",
+                    self.profile.render("query_record_length"),
+                    "the profile's record_lengths must list lengths the scope offers",
                 )
             tb = Timebase(float(sample_rate_hz), tb.points)
         self._rate_hz, self._points = tb.sample_rate_hz, tb.points
@@ -780,24 +787,20 @@ class Scope(_Driver):
         )
         assert self._rate_hz is not None and self._points is not None
         if not self._close(1.0 / pre["x_increment"], self._rate_hz):
-            raise ReadbackMismatch(
+            raise self._mismatch(
                 "sample interval (preamble x_increment)",
                 1.0 / self._rate_hz,
                 pre["x_increment"],
-                resource=self.session.resource,
-                command=command,
-                role=self.session.role,
-                hint="check the preamble_fields positions in the profile",
+                command,
+                "check the preamble_fields positions in the profile",
             )
         if "points" in pre and int(pre["points"]) != self._points:
-            raise ReadbackMismatch(
+            raise self._mismatch(
                 "record length (preamble points)",
                 self._points,
                 int(pre["points"]),
-                resource=self.session.resource,
-                command=command,
-                role=self.session.role,
-                hint="check the preamble_fields positions in the profile",
+                command,
+                "check the preamble_fields positions in the profile",
             )
         return pre
 
