@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import argparse
-import json
 
+from harness import jsontext
 from harness.errors import AnalysisError
 from harness.io.capture import read_capture
 from harness.measure import analyze_record
@@ -70,7 +70,7 @@ def run(args: argparse.Namespace) -> int:
     )
     d = res.to_dict()
     if args.json:
-        print(json.dumps({"capture": cap.path, **d}, indent=2))
+        print(jsontext.dumps({"capture": cap.path, **d}, indent=2))
         return 0
     from rich.console import Console
     from rich.table import Table

@@ -8,11 +8,11 @@ prints the top candidates with the evidence for each.  ``--json`` for other prog
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 from typing import Any
 
+from harness import jsontext
 from harness.diagnose import Candidate, Diagnosis, diagnose_run
 from harness.errors import StoreError
 from harness.io.toml import load_board
@@ -62,7 +62,7 @@ def run(args: argparse.Namespace) -> int:
     for w in diag.warnings:
         print(f"warning: {w}", file=sys.stderr)
     if args.json:
-        print(json.dumps(diag.to_dict(top=args.top), indent=2, default=_json))
+        print(jsontext.dumps(diag.to_dict(top=args.top), indent=2, default=_json))
         return 0
     _print(diag, args.top)
     return 0

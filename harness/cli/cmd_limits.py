@@ -8,13 +8,14 @@ the output; polarity) or, with ``--json``, the full limits with their provenance
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 
+from harness import jsontext
 from harness.io.toml import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
+from harness.run.runner import check_limits_memory
 
 #: 0 dBu is the voltage that dissipates 1 mW in 600 ohm: sqrt(0.6) = 0.7746 V rms.
 DBU_REF_VRMS = math.sqrt(0.6)
@@ -92,12 +93,16 @@ def _row(table, ch, lim: Limit, fmt: str, unit: str, scale: float = 1.0) -> None
 
 def run(args: argparse.Namespace) -> int:
     board = load_board(args.board)
+    if args.samples is not None:
+        check_limits_memory(board, args.samples, "--samples")
+    else:
+        check_limits_memory(board, board.policy.samples, "board file limits.samples")
     limits = compute_limits(board, samples=args.samples, seed=args.seed)
     if args.json:
         doc = limits.to_dict()
         doc["digest"] = limits.digest
         doc["board"]["file"] = board.source
-        json.dump(doc, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write(jsontext.dumps(doc, indent=2, sort_keys=True))
         sys.stdout.write("\n")
         return 0
     _print_tables(board, limits)

@@ -13,6 +13,7 @@ reconnected).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import unicodedata
 from typing import Any, Literal, TextIO
@@ -71,6 +72,35 @@ def read_line(stream: TextIO, limit: int = MAX_LINE) -> str | None:
     return line.rstrip("\r\n")
 
 
+def discard_typeahead(stream: TextIO) -> bool:
+    """Throw away whatever was typed on the terminal ``stream`` and not read yet; True when
+    something could be discarded this way (``stream`` is a terminal).
+
+    A line typed or scanned while a board is under test would otherwise become the answer
+    to the next prompt at once: the next board's serial before anyone could change the
+    board, so one physical board would be stored under two serials.  termios.tcflush with
+    TCIFLUSH drops data received but not read (POSIX termios, tcflush()).  Input that is
+    not a terminal (a pipe, a file) is a script written beforehand: its lines are taken in
+    order and nothing is discarded.  In canonical mode a terminal read returns at most one
+    line, so Python's own buffer holds nothing beyond the line already returned.
+    """
+    try:
+        fd = stream.fileno()
+    except (AttributeError, OSError, ValueError):
+        return False  # an in-memory stream: a script
+    if not os.isatty(fd):
+        return False
+    try:
+        import termios
+    except ImportError:  # not a POSIX system
+        return False
+    try:
+        termios.tcflush(fd, termios.TCIFLUSH)
+    except (termios.error, OSError):
+        return False
+    return True
+
+
 def check_operator(name: str) -> str:
     """An operator name: printable, at most 64 characters."""
     s = name.strip()
@@ -120,6 +150,9 @@ class TerminalUI:
         self.ink = "█" if "utf" in enc else "#"
 
     def prompt(self, text: str) -> str | None:
+        """Ask on a fresh line of input: anything typed on the terminal before the prompt
+        appears (while a board was under test) is discarded, see :func:`discard_typeahead`."""
+        discard_typeahead(self.stdin)
         self.console.print(text, end="", highlight=False, markup=False, soft_wrap=True)
         self.console.file.flush()
         return read_line(self.stdin)

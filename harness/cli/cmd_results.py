@@ -13,6 +13,7 @@ import sys
 from dataclasses import asdict
 from typing import TYPE_CHECKING, Any
 
+from harness import jsontext
 from harness.errors import ValueParseError
 from harness.store import (
     DEFAULT_DB,
@@ -128,7 +129,7 @@ def run(args: argparse.Namespace) -> int:
         )
     rows = [{**r.summary(), "board_name": r.board_name} for r in runs]
     if args.json:
-        json.dump(rows, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(rows, indent=2))
         sys.stdout.write("\n")
     elif args.csv:
         _write_csv(rows, _LIST_FIELDS)
@@ -236,10 +237,10 @@ def _show_run(
         head["limits_provenance"] = json.loads(prov) if prov else None
         doc = {
             "run": head,
-            "measurements": [asdict(m) for m in meas],
+            "measurements": [{**asdict(m), "reason": m.reason} for m in meas],
             "sweep_points": [asdict(p) for p in points],
         }
-        json.dump(doc, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(doc, indent=2))
         sys.stdout.write("\n")
         return
     if args.csv:
@@ -300,7 +301,7 @@ def _show_run(
         cells = (
             m.channel,
             m.name,
-            _fmt(m.value),
+            _fmt(m.value) if m.value is not None else (m.reason_label or ""),
             m.unit,
             _fmt(m.low),
             _fmt(m.high),

@@ -7,10 +7,10 @@ unwritable database, aborted run).
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from typing import Any
 
+from harness import jsontext
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.run.runner import execute, prepare, validate_serial
@@ -76,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
         )
     result = execute(prep, serial, args.db or DEFAULT_DB, options=options, progress=progress)
     if args.json:
-        json.dump(result.to_dict(), sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(result.to_dict(), indent=2))
         sys.stdout.write("\n")
     else:
         print_verdict(console, result)

@@ -30,7 +30,9 @@ class RichProgress:
 
     def measurement(self, row: Any) -> None:
         colour = _COLOURS.get(row.decision, "white")
-        value = "-" if row.value is None else f"{row.value:.5g}"
+        value = (
+            (getattr(row, "reason_label", None) or "-") if row.value is None else f"{row.value:.5g}"
+        )
         lim = limits_text(row)
         ch = f"{row.channel}: " if row.channel else ""
         self.console.print(

@@ -823,7 +823,12 @@ class Scope(_Driver):
                 data = self._parsed(parse_ascii_values, text, cmd)
             else:
                 data = self.session.query_block(
-                    cmd, fmt, big_endian=big, timeout_ms=tmo, retry=False
+                    cmd,
+                    fmt,
+                    big_endian=big,
+                    timeout_ms=tmo,
+                    retry=False,
+                    max_points=count if chunked else self._points,
                 )
             if not chunked and len(data) == self._points:
                 data = data[:count]  # a whole-record fetch: the plan uses its first points

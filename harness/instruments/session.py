@@ -43,6 +43,7 @@ from harness.errors import (
     ScpiError,
 )
 from harness.instruments.scpi import (
+    DATATYPES,
     NO_ERROR,
     Identity,
     decode_values,
@@ -339,11 +340,15 @@ class Session:
         self._trace(command, reply, t0)
         return reply
 
-    def _read_block_raw(self, command: str, timeout_ms: int | None) -> bytes:
+    def _read_block_raw(
+        self, command: str, timeout_ms: int | None, max_bytes: int | None = None
+    ) -> bytes:
         """Write ``command``, then read one definite-length block and its LF exactly.
 
         The termination character is switched off while the payload is read, so LF bytes
-        inside binary data do not split it.
+        inside binary data do not split it.  A header promising more than ``max_bytes`` (what
+        the caller expects) is refused before the payload is read: a corrupt or hostile
+        count of up to 999,999,999 bytes must not become an allocation of that size.
         """
         res = self._res
 
@@ -359,6 +364,11 @@ class Session:
                     parse_block_header(head + b"0" * 9)  # raises with the reason
                 head += res.read_bytes(int(head[1:2]))
                 _hlen, count = parse_block_header(head)
+                if max_bytes is not None and count > max_bytes:
+                    raise MalformedReply(
+                        f"block header promises {count} bytes, {max_bytes} expected",
+                        hint="check the scope's record length and data format settings",
+                    )
                 body = res.read_bytes(count + 1)
             finally:
                 res.set_visa_attribute(
@@ -479,10 +489,18 @@ class Session:
         return self._run(command, lambda: self._query_raw(command, timeout_ms), retry=retry)
 
     def query_block_bytes(
-        self, command: str, *, timeout_ms: int | None = None, retry: bool = True
+        self,
+        command: str,
+        *,
+        timeout_ms: int | None = None,
+        retry: bool = True,
+        max_bytes: int | None = None,
     ) -> bytes:
-        """Send ``command`` and return the payload of its definite-length block reply."""
-        return self._run(command, lambda: self._read_block_raw(command, timeout_ms), retry=retry)
+        """Send ``command`` and return the payload of its definite-length block reply; a
+        block longer than ``max_bytes`` is refused unread (MalformedReply)."""
+        return self._run(
+            command, lambda: self._read_block_raw(command, timeout_ms, max_bytes), retry=retry
+        )
 
     def query_block(
         self,
@@ -492,9 +510,18 @@ class Session:
         big_endian: bool = True,
         timeout_ms: int | None = None,
         retry: bool = True,
+        max_points: int | None = None,
     ) -> np.ndarray:
-        """A binary block reply as a numpy array of ``datatype`` (int8, int16, float32)."""
-        payload = self.query_block_bytes(command, timeout_ms=timeout_ms, retry=retry)
+        """A binary block reply as a numpy array of ``datatype`` (int8, int16, float32); a
+        block of more than ``max_points`` elements is refused before it is read."""
+        cap = None
+        if max_points is not None:
+            cap = (
+                max_points * np.dtype(DATATYPES[datatype]).itemsize
+                if datatype in DATATYPES
+                else None
+            )
+        payload = self.query_block_bytes(command, timeout_ms=timeout_ms, retry=retry, max_bytes=cap)
         try:
             return decode_values(payload, datatype, big_endian=big_endian)
         except MalformedReply as exc:

@@ -8,6 +8,7 @@ missing field or a typo is reported the same way whatever the file.
 
 from __future__ import annotations
 
+import re
 import tomllib
 from collections.abc import Iterator, Mapping
 from pathlib import Path
@@ -42,6 +43,162 @@ def read_toml(
         raise error(str(p), None, f"TOML syntax: {exc}", hint="fix the line named") from None
 
 
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+
+def _toml_keys(text: str) -> list[str] | None:
+    """The keys of a dotted TOML key (``a."b.c".d``); None when it is not one."""
+    keys: list[str] = []
+    rest = text.strip()
+    while rest:
+        if rest[0] in "\"'":
+            end = rest.find(rest[0], 1)
+            if end < 0:
+                return None
+            keys.append(rest[1:end])
+            rest = rest[end + 1 :].lstrip()
+        else:
+            m = _BARE_KEY.match(rest)
+            if not m:
+                return None
+            keys.append(m.group())
+            rest = rest[m.end() :].lstrip()
+        if rest.startswith("."):
+            rest = rest[1:].lstrip()
+        elif rest:
+            return None
+    return keys or None
+
+
+class TomlLines:
+    """The line on which each key of a TOML document is written, so an error can name it.
+
+    tomllib gives values without positions; this scan of the text follows the table headers
+    (``[a.b]``, ``[[a.b]]`` with its element count) and ``key = value`` lines and keys each
+    by its path in the parsed document (``("channel", 0, "stage", 1, "rc")``).  Keys inside
+    an inline table or a multi-line value are found at the line of the key that holds them.
+    """
+
+    def __init__(self, text: str) -> None:
+        self.lines: dict[tuple[str | int, ...], int] = {}
+        counts: dict[tuple[str | int, ...], int] = {}
+        table: tuple[str | int, ...] = ()
+        depth = 0  # open brackets/braces of a value continued on the next lines
+        quote: str | None = None  # open multi-line string delimiter
+        for number, line in enumerate(text.splitlines(), start=1):
+            if quote is not None:
+                if line.count(quote) % 2 == 1:
+                    quote = None
+                continue
+            if depth > 0:
+                depth = max(depth + _bracket_balance(line), 0)
+                continue
+            stripped = line.strip()
+            if not stripped or stripped.startswith("#"):
+                continue
+            if stripped.startswith("[["):
+                keys = _toml_keys(stripped[2 : stripped.find("]]")])
+                if keys:
+                    parent = self._resolve(tuple(keys[:-1]), counts)
+                    arr = (*parent, keys[-1])
+                    counts[arr] = counts.get(arr, -1) + 1
+                    table = (*arr, counts[arr])
+                    self.lines.setdefault(arr, number)
+                    self.lines[table] = number
+                continue
+            if stripped.startswith("["):
+                keys = _toml_keys(stripped[1 : stripped.find("]")])
+                if keys:
+                    table = self._resolve(tuple(keys), counts)
+                    self.lines.setdefault(table, number)
+                continue
+            key_text, eq, value = _split_assignment(stripped)
+            keys = _toml_keys(key_text) if eq else None
+            if not keys:
+                continue
+            self.lines.setdefault((*table, *keys), number)
+            for delim in ('"""', "'''"):
+                if value.count(delim) % 2 == 1:
+                    quote = delim
+                    break
+            else:
+                depth = max(_bracket_balance(value), 0)
+
+    @staticmethod
+    def _resolve(
+        keys: tuple[str, ...], counts: dict[tuple[str | int, ...], int]
+    ) -> tuple[str | int, ...]:
+        """A header's keys with the current element of every array of tables they pass."""
+        path: tuple[str | int, ...] = ()
+        for k in keys:
+            path = (*path, k)
+            if path in counts:
+                path = (*path, counts[path])
+        return path
+
+    def line(self, path: tuple[str | int, ...]) -> int | None:
+        """The line of ``path`` or of the nearest enclosing key that is written down."""
+        for end in range(len(path), 0, -1):
+            if path[:end] in self.lines:
+                return self.lines[path[:end]]
+        return None
+
+
+def _split_assignment(line: str) -> tuple[str, str, str]:
+    """``key = value`` split at the first ``=`` outside a quoted key."""
+    quote = None
+    for i, ch in enumerate(line):
+        if quote:
+            if ch == quote:
+                quote = None
+        elif ch in "\"'":
+            quote = ch
+        elif ch == "=":
+            return line[:i], "=", line[i + 1 :]
+    return line, "", ""
+
+
+def _bracket_balance(text: str) -> int:
+    """Opened minus closed brackets and braces outside strings and comments."""
+    balance, quote, i = 0, None, 0
+    while i < len(text):
+        ch = text[i]
+        if quote:
+            if ch == "\\" and quote == '"':
+                i += 1
+            elif ch == quote:
+                quote = None
+        elif ch in "\"'":
+            quote = ch
+        elif ch == "#":
+            break
+        elif ch in "[{":
+            balance += 1
+        elif ch in "]}":
+            balance -= 1
+        i += 1
+    return balance
+
+
+def document_paths(doc: Any) -> dict[int, tuple[str | int, ...]]:
+    """The path of every table and array inside a parsed document, by object id, so a
+    reader handed a sub-table can find where it is written (see :class:`TomlLines`)."""
+    paths: dict[int, tuple[str | int, ...]] = {}
+
+    def walk(obj: Any, path: tuple[str | int, ...]) -> None:
+        if isinstance(obj, Mapping):
+            paths[id(obj)] = path
+            for k, v in obj.items():
+                walk(v, (*path, k))
+        elif isinstance(obj, list):
+            paths[id(obj)] = path
+            for i, v in enumerate(obj):
+                walk(v, (*path, i))
+
+    walk(doc, ())
+    return paths
+
+
 class FieldReader:
     """Walks a parsed TOML mapping; each complaint is the loader's ``error`` class (a subclass
     of InputFileError) naming the file, the dotted field (``channel[0].route``) and the fix.
@@ -53,9 +210,39 @@ class FieldReader:
     #: How the hint that lists the allowed fields begins (each loader keeps its wording).
     allowed_hint = "allowed here"
 
-    def __init__(self, path: str | None, error: type[InputFileError] = InputFileError) -> None:
+    def __init__(
+        self,
+        path: str | None,
+        error: type[InputFileError] = InputFileError,
+        *,
+        doc: Any = None,
+        raw: bytes | None = None,
+    ) -> None:
         self.path = path
         self.error = error
+        self._doc = doc
+        self._raw = raw
+        self._lines: TomlLines | None = None
+        self._paths: dict[int, tuple[str | int, ...]] = {}
+
+    def line_of(self, data: Any, key: str | None = None) -> int | None:
+        """The file line of ``data[key]`` (or of ``data``), when the text was given (the
+        text is scanned on the first complaint only)."""
+        if self._doc is None or self._raw is None:
+            return None
+        if self._lines is None:
+            self._lines = TomlLines(self._raw.decode("utf-8", errors="replace"))
+            self._paths = document_paths(self._doc)
+        if id(data) not in self._paths:
+            return None
+        path = self._paths[id(data)]
+        return self._lines.line((*path, key) if key is not None else path)
+
+    def located(self, where: str, data: Any, key: str | None = None) -> str:
+        """``where`` with its line, ``"channel.A.rc (line 42)"``, as the profile loader
+        writes it; ``where`` alone when the line is unknown."""
+        line = self.line_of(data, key)
+        return f"{where} (line {line})" if line else where
 
     def fail(self, where: str | None, reason: str, hint: str | None = None) -> InputFileError:
         """The error to raise for ``where`` (the caller raises it, so the traceback ends there)."""

@@ -13,7 +13,6 @@ Only driver calls here, no SCPI text.
 from __future__ import annotations
 
 import contextlib
-import json
 import logging
 import math
 import time
@@ -23,12 +22,13 @@ from typing import Any, Literal, NoReturn
 
 import numpy as np
 
-from harness import __version__
+from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.measure.coherent import plan_coherent_within
 from harness.model.board import Board
+from harness.model.design import check_settle_time
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
 
@@ -146,11 +146,22 @@ def clip_criterion(board: Board) -> ClipCriterion:
     )
 
 
-def settle_time_s(limits: Any, fixture: FixtureConfig, override_s: float | None) -> float:
-    """The operator's settle time, else the longest the model gives a tested channel."""
+def settle_time_s(
+    limits: Any, fixture: FixtureConfig, override_s: float | None, board: Board | None = None
+) -> float:
+    """The operator's settle time, else the longest the model gives a tested channel; a
+    model wait over MAX_SETTLE_S (a capacitor's value or unit wrong) is refused with a
+    BoardFileError naming the channel when ``board`` is given, before anything waits."""
     if override_s is not None:
         return override_s
-    return max(float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels)
+    waits = {
+        c.board_channel: float(limits.channels[c.board_channel].settle_time_s)
+        for c in fixture.channels
+    }
+    if board is not None:
+        for name, wait in waits.items():
+            check_settle_time(board, board.channel(name), wait)
+    return max(waits.values())
 
 
 def safe_generator(
@@ -227,7 +238,7 @@ def run_header(
         board_name=board.name,
         board_file=board_file,
         board_digest=board.digest,
-        limits_json=json.dumps(limits_dict, sort_keys=True, default=json_default),
+        limits_json=jsontext.dumps(limits_dict, sort_keys=True, default=json_default),
         limits_digest=str(limits.digest),
         station=station,
         fixture=f"{fixture.name} ({fixture.path}, sha256 {fixture.digest}){fixture_note}",
@@ -235,7 +246,7 @@ def run_header(
         instruments={role: identity_text(i) for role, i in identities.items()},
         software_version=__version__,
         settle_note=settle_note,
-        limits_provenance=json.dumps(prov, sort_keys=True, default=json_default)
+        limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
     )
@@ -268,7 +279,20 @@ class RunLog:
         decision: str,
         step: str,
         detail: dict | None = None,
+        reason: str | None = None,
     ) -> MeasurementRow:
+        """Store, keep and show one decided measurement.  A value that could not be measured
+        (None or not finite) is stored as null with no uncertainty and always with a reason
+        in its detail (``reason``, the detail's own, or "not measured"), never silently."""
+        if value is not None and not math.isfinite(value):
+            reason = reason or f"reading not finite ({value})"
+            value = None
+        if value is None:
+            uncertainty = None
+            detail = dict(detail or {})
+            detail["reason"] = reason or detail.get("reason") or "not measured"
+        elif reason:
+            detail = {**(detail or {}), "reason": reason}
         row = MeasurementRow(
             channel=channel,
             name=name,
@@ -279,7 +303,7 @@ class RunLog:
             uncertainty=uncertainty,
             decision=decision,
             step=step,
-            detail_json=json.dumps(detail, default=json_default) if detail else None,
+            detail_json=jsontext.dumps(detail, default=json_default) if detail else None,
         )
         self.store.add_measurement(self.run_id, row)
         self.rows.append(row)
@@ -299,7 +323,7 @@ class RunLog:
                 thdn_percent=a.thdn_percent,
                 clipped=a.clipped,
                 clip_side=a.clip_side,
-                extra_json=json.dumps(extra, default=json_default),
+                extra_json=jsontext.dumps(extra, default=json_default),
             ),
         )
 
@@ -778,7 +802,7 @@ class BoardRun:
             restore=self._restore_signal,
         )
         self.supply: SupplyGuard | None = supply_guard(fixture, supply)
-        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s)
+        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s, board)
         self.settle_note = ""
         self.run_log = RunLog(store, progress)
         self.rows: list[MeasurementRow] = self.run_log.rows

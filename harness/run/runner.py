@@ -115,6 +115,8 @@ def prepare(
                 f"(the station's generator has {outs})",
                 hint="use an output the generator has",
             )
+    if limits is None:
+        check_limits_memory(board, board.policy.samples, "board file limits.samples")
     lim = limits if limits is not None or defer_limits else compute_limits(board)
     return Prepared(board, lim, station, fixture, str(board_file), str(station_file))
 
@@ -154,3 +156,36 @@ def execute(
             board_file=prep.board_file,
             station_file=prep.station_file,
         )
+
+
+def _size(n: float) -> str:
+    for unit, scale in (("TB", 1e12), ("GB", 1e9), ("MB", 1e6)):
+        if n >= scale:
+            return f"{n / scale:.3g} {unit}"
+    return f"{n / 1e3:.3g} kB"
+
+
+def check_limits_memory(
+    board: Board, samples: int, field: str = "--samples", budget: int | None = None
+) -> None:
+    """Refuse a Monte Carlo whose estimated peak memory (harness.model.limits_memory_bytes)
+    is over the budget, with the largest sample count that fits."""
+    from harness.errors import MemoryBudgetError
+    from harness.io.memory import memory_budget_bytes
+    from harness.model.limits import limits_memory_bytes
+
+    avail = memory_budget_bytes() if budget is None else budget
+    need = limits_memory_bytes(board, samples)
+    if need <= avail:
+        return
+    fixed = limits_memory_bytes(board, 0)
+    per = max(limits_memory_bytes(board, 1) - fixed, 1)
+    fits = max((avail - fixed) // per // 1000 * 1000, 0)
+    raise MemoryBudgetError(
+        field,
+        f"{samples} Monte Carlo boards need about {_size(need)} of memory, "
+        f"{_size(avail)} may be used here",
+        needed=need,
+        available=avail,
+        hint=f"use {fits} boards or fewer (20000 is the usual)",
+    )

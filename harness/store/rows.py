@@ -177,7 +177,9 @@ class MeasurementRow:
 
     ``value`` None (or NaN, which SQLite keeps as NULL) means not measurable; ``decision``
     is the decision rule's text ("pass", "conditional fail", "info"...), stored verbatim.
-    ``measured_at`` defaults to now.
+    ``measured_at`` defaults to now.  Nothing infinite is kept (JSON has no Infinity): an
+    infinite limit is no limit (None), an infinite uncertainty is unknown (None) and an
+    infinite value is no value, whose ``reason`` (in the detail) says so.
     """
 
     channel: str
@@ -198,13 +200,38 @@ class MeasurementRow:
         _text(self.unit, "unit", allow_empty=True)
         _text(self.decision, "decision")
         _text(self.step, "step", allow_empty=True)
+        raw_value = _number(self.value, "value")
         for name in ("value", "low", "high", "uncertainty"):
             v = _number(getattr(self, name), name)
-            if v is not None and math.isnan(v):
+            if v is not None and not math.isfinite(v):
                 v = None
             object.__setattr__(self, name, v)
         object.__setattr__(self, "measured_at", _stamp(self.measured_at))
         _json_text(self.detail_json, "detail_json")
+        if raw_value is not None and math.isinf(raw_value) and self.reason is None:
+            detail = json.loads(self.detail_json) if self.detail_json else {}
+            if not isinstance(detail, dict):
+                detail = {"detail": detail}
+            detail["reason"] = f"reading not finite ({raw_value})"
+            object.__setattr__(self, "detail_json", json.dumps(detail))
+
+    @property
+    def reason(self) -> str | None:
+        """Why the value is missing (stored in the detail), e.g. ``"over-range: ..."``."""
+        if not self.detail_json:
+            return None
+        try:
+            detail = json.loads(self.detail_json)
+        except json.JSONDecodeError:
+            return None
+        why = detail.get("reason") if isinstance(detail, dict) else None
+        return why if isinstance(why, str) and why else None
+
+    @property
+    def reason_label(self) -> str | None:
+        """The reason's first words, for a table cell: ``"over-range"``."""
+        why = self.reason
+        return why.split(":", 1)[0].strip() if why else None
 
 
 @dataclass(frozen=True)
@@ -233,7 +260,7 @@ class SweepPointRow:
             )
         for name in ("level_vrms", "gain_db", "thd_percent", "thdn_percent"):
             v = _number(getattr(self, name), name)
-            if v is not None and math.isnan(v):
+            if v is not None and not math.isfinite(v):
                 v = None
             object.__setattr__(self, name, v)
         object.__setattr__(self, "clipped", bool(self.clipped))

@@ -208,6 +208,19 @@ class _Reader(threading.Thread):
         raise AssertionError(f"{what!r} x{count} not seen; output so far:\n{self.text}")
 
 
+def stop(proc, reader) -> str:
+    """End the child if it still runs, join the reader, close the pipes; its stderr."""
+    if proc.poll() is None:
+        proc.kill()
+        proc.wait(timeout=10)
+    reader.join(timeout=5)
+    err = proc.stderr.read()
+    for stream in (proc.stdin, proc.stdout, proc.stderr):
+        if stream is not None:
+            stream.close()
+    return err
+
+
 def test_ctrl_c_during_a_board_then_at_the_prompt(bench, tmp_path):
     """SIGINT while a board is under test aborts that board (stored aborted, generator off)
     and returns to the prompt; SIGINT at the prompt ends with the summary and status 0."""
@@ -236,13 +249,7 @@ def test_ctrl_c_during_a_board_then_at_the_prompt(bench, tmp_path):
         proc.send_signal(signal.SIGINT)
         rc = proc.wait(timeout=60)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(timeout=10)
-        reader.join(timeout=5)
-        err = proc.stderr.read()
-        for stream in (proc.stdin, proc.stdout, proc.stderr):
-            stream.close()
+        err = stop(proc, reader)
     assert rc == 0, err
     assert "VERDICT SN-C1: ABORTED" in reader.text
     assert "ended by Ctrl-C" in reader.text
