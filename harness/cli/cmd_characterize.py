@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.cli.run_args import RichProgress, add_bench_files, add_db, add_settle_wait
+from harness.cli.term import make_console
 from harness.run.characterize import CharacterizationResult, CharacterizeOptions
 
 
@@ -49,7 +50,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
+    from rich.text import Text
 
     from harness.run.characterize import characterize
     from harness.run.runner import ensure_limits, prepare, validate_serial
@@ -73,10 +74,12 @@ def run(args: argparse.Namespace) -> int:
     from dataclasses import replace
 
     opts = replace(opts, station_name=getattr(prep.station, "name", "") or args.station)
-    console = Console(highlight=False)
+    console = make_console()
     console.print(
-        f"[bold]{prep.board.name}[/bold] ({prep.board.part_number}), prototype "
-        f"{serial}: characterisation"
+        Text.assemble(
+            (prep.board.name, "bold"),
+            f" ({prep.board.part_number}), prototype {serial}: characterisation",
+        )
     )
     # lock and make the station safe first; then the limits, the store and the sweeps
     with safe_station(prep.station) as inst:

@@ -20,6 +20,7 @@ from typing import Any, Literal, TextIO
 
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
+from harness.cli.term import make_console
 from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import ensure_limits, prepare
@@ -128,7 +129,9 @@ class StepProgress:
         if self.inner is not None:
             self.inner.step(name, text)
         else:
-            self.console.print(f"[dim]  {name}: {text}[/dim]", highlight=False)
+            from rich.text import Text
+
+            self.console.print(Text(f"  {name}: {text}", style="dim"))
 
     def measurement(self, row: Any) -> None:
         if self.inner is not None:
@@ -208,8 +211,10 @@ class TerminalUI:
         )
 
     def testing(self, serial: str, retest: int) -> None:
+        from rich.text import Text
+
         flag = f"  RETEST #{retest}" if retest else ""
-        self.console.rule(f"testing {serial}{flag}")
+        self.console.rule(Text(f"testing {serial}{flag}"))
 
     def verdict(self, outcome: BoardOutcome, result: RunResult | None) -> None:
         from rich.align import Align
@@ -221,7 +226,7 @@ class TerminalUI:
         if outcome.outcome == "ABORTED":
             body = Text(f"ABORTED — {outcome.reason or 'no verdict'}", style="bold")
             self.console.print(
-                Panel(body, title=f"{serial} · {retest}", border_style="yellow", expand=False)
+                Panel(body, title=Text(f"{serial} · {retest}"), border_style="yellow", expand=False)
             )
             self.console.print(
                 f"VERDICT {serial}: ABORTED ({retest})", highlight=False, soft_wrap=True
@@ -240,8 +245,8 @@ class TerminalUI:
         self.console.print(
             Panel(
                 Group(*lines),
-                title=f"{serial} · {retest}",
-                subtitle=f"run {outcome.run_id}",
+                title=Text(f"{serial} · {retest}"),
+                subtitle=Text(f"run {outcome.run_id}"),
                 border_style="green" if ok else "red",
                 padding=(1, 2),
             )
@@ -325,12 +330,10 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any = None) -> int:
-    from rich.console import Console
-
     from harness.store import DEFAULT_DB
 
     stdin = stdin if stdin is not None else sys.stdin
-    console = console or Console(highlight=False)
+    console = console or make_console()
     if args.max_points is not None and args.max_points < 1:
         raise ValueParseError(str(args.max_points), "--max-points must be a positive count")
     # Every file is read, the station locked and made safe (a crashed session may have left

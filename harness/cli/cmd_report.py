@@ -47,8 +47,8 @@ def _db(p: argparse.ArgumentParser) -> None:
 
 
 def _range(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--since", metavar="DATE", help="first day (YYYY-MM-DD, local) or date-time")
-    p.add_argument("--until", metavar="DATE", help="last day, included, or date-time")
+    p.add_argument("--since", metavar="DATE", help="first day (YYYY-MM-DD, UTC) or date-time")
+    p.add_argument("--until", metavar="DATE", help="last day, included, or date-time (UTC)")
     p.add_argument("--board", metavar="PN", help="only this part number or board name")
 
 

@@ -203,6 +203,20 @@ class Session:
                 hint="check the instrument is on and the resource string; for USB/GPIB "
                 "the VISA backend needs its driver",
             ) from exc
+        except Exception as exc:
+            # pyvisa-py's TCPIP SOCKET session raises a bare Exception("could not connect:
+            # <status>") when the connection is not made within open_timeout (a host that
+            # drops the handshake, a listener with a full queue); other backends may do
+            # likewise.  Anything more specific is a defect and is not hidden.
+            if type(exc) is not Exception:
+                raise
+            raise ConnectionLost(
+                f"cannot open: {_backend_words(exc, self.timeout_ms)}",
+                resource=self.resource,
+                role=self.role,
+                hint="check the instrument is on, answers on the network and is not "
+                "serving another client; raise timeout_ms if it is slow to accept",
+            ) from exc
         res.timeout = self.timeout_ms
         res.write_termination = "\n"
         if _is_socket(self.resource) or _is_serial(self.resource):
@@ -591,6 +605,20 @@ class Session:
         if reply.strip() not in ("1", "+1"):
             raise self._typed(MalformedReply, f"*OPC? answered {reply!r}, expected 1", cmd)
         log.debug("%s operation complete after %.3f s", self.resource, time.perf_counter() - t0)
+
+
+def _backend_words(exc: Exception, timeout_ms: int) -> str:
+    """A VISA backend's bare exception in words: its text, with a numeric VISA status
+    code named (``-1073807339`` is ``VI_ERROR_TMO``, VPP-4.3 completion and error codes)."""
+    text = str(exc).strip() or "the VISA backend gave no reason"
+    head, _, code = text.rpartition(" ")
+    try:
+        status = constants.StatusCode(int(code))
+    except ValueError:
+        return text
+    if status == constants.StatusCode.error_timeout:
+        return f"{head} no connection within {timeout_ms} ms (timeout)"
+    return f"{head} {status.name}"
 
 
 def _connection_words(exc: OSError) -> str:

@@ -38,9 +38,48 @@ def read_toml(
             str(p), f"byte {exc.start}", "not UTF-8 text", hint="save the file as UTF-8"
         ) from None
     try:
-        return tomllib.loads(text), raw
+        doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise error(str(p), None, f"TOML syntax: {exc}", hint="fix the line named") from None
+    except RecursionError:
+        # tomllib parses nested arrays and inline tables recursively: a few hundred levels
+        # exhaust Python's stack before any of our checks can run.
+        raise error(
+            str(p),
+            None,
+            "tables or arrays nested too deeply to read",
+            hint=f"no stageproof file nests more than a few levels (limit {MAX_DEPTH})",
+        ) from None
+    where = _too_deep(doc)
+    if where is not None:
+        raise error(
+            str(p),
+            where,
+            f"nested more than {MAX_DEPTH} levels deep",
+            hint="no stageproof file nests more than a few levels: check the brackets",
+        )
+    return doc, raw
+
+
+#: Deepest nesting of tables and arrays a project file may have (they use four at most).
+MAX_DEPTH = 32
+
+
+def _too_deep(doc: Any) -> str | None:
+    """The dotted location where ``doc`` nests deeper than :data:`MAX_DEPTH`, or None.
+    Walked with a stack of its own, so no depth can overflow Python's."""
+    stack: list[tuple[Any, str, int]] = [(doc, "", 0)]
+    while stack:
+        node, where, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            return where or None
+        if isinstance(node, dict):
+            stack.extend(
+                (v, f"{where}.{k}" if where else str(k), depth + 1) for k, v in node.items()
+            )
+        elif isinstance(node, list):
+            stack.extend((v, f"{where}[{i}]", depth + 1) for i, v in enumerate(node))
+    return None
 
 
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")

@@ -79,7 +79,7 @@ class Window:
 
 
 def date_window(since: str | None, until: str | None) -> Window:
-    """Parse ``--since``/``--until`` the way the store does (bare date = whole local day)."""
+    """Parse ``--since``/``--until`` the way the store does (bare date = whole UTC day)."""
 
     def parse(value: str | None, option: str, end: bool) -> pd.Timestamp | None:
         if value is None:
@@ -175,7 +175,7 @@ def summarise(
         raise ReportError(
             "--since/--until",
             f"no runs {span}" + (f" for board {board}" if board else ""),
-            hint="widen the date range (dates are YYYY-MM-DD, local time)",
+            hint="widen the date range (dates are YYYY-MM-DD, UTC)",
         )
     done = in_range[(in_range["status"] == "complete") & in_range["verdict"].notna()]
     keys = done[["part_number", "serial"]].drop_duplicates()

@@ -28,7 +28,8 @@ MAX_SERIAL = 64
 
 
 def validate_serial(serial: str) -> str:
-    """A serial number: printable, no control characters, at most 64 characters."""
+    """A serial number: one printable word (no spaces, no control characters), at most
+    64 characters."""
     s = serial.strip() if isinstance(serial, str) else ""
     if not s:
         raise ValueParseError(
@@ -41,6 +42,15 @@ def validate_serial(serial: str) -> str:
             hint="check the scanner did not read two labels",
         )
     for ch in s:
+        if ch.isspace():
+            # A space splits the serial in shell commands, CSV columns and labels alike,
+            # and "SN 1" and "SN  1" would be two boards: refused, never quietly changed.
+            raise ValueParseError(
+                s,
+                f"serial number has a space (U+{ord(ch):04X}) inside",
+                hint="serial numbers are one word: write it as printed, with - or _ "
+                "where the label has a gap",
+            )
         if not ch.isprintable() or unicodedata.category(ch).startswith("C"):
             raise ValueParseError(
                 s.encode("unicode_escape").decode(),

@@ -41,12 +41,14 @@ def format_time(when: datetime) -> str:
 def parse_when(value: str | date | datetime, *, end_of_day: bool = False) -> str:
     """Turn a user's date or date-time into the store's UTC text form.
 
-    A bare date (``2024-05-01``) means local midnight; with ``end_of_day`` it means the
-    following local midnight, so ``--until 2024-05-01`` includes that whole day.  Naive
-    date-times are local time, as an operator at the bench reads the clock.
+    Dates and times without a zone are UTC, the zone every stored stamp and every listing
+    is in, so what the table shows can be typed back as a filter.  A bare date
+    (``2024-05-01``) means 00:00 UTC; with ``end_of_day`` the following 00:00 UTC, so
+    ``--until 2024-05-01`` includes that whole day.  A date-time with an offset
+    (``2024-05-01T08:00+02:00``) is taken as written.
     """
     if isinstance(value, datetime):
-        return format_time(value)
+        return format_time(value if value.tzinfo else value.replace(tzinfo=UTC))
     if isinstance(value, date):
         day = value
     else:
@@ -55,14 +57,15 @@ def parse_when(value: str | date | datetime, *, end_of_day: bool = False) -> str
             if len(text) == 10:
                 day = date.fromisoformat(text)
             else:
-                return format_time(datetime.fromisoformat(text))
+                return parse_when(datetime.fromisoformat(text))
         except ValueError:
             raise ValueParseError(
                 text,
                 "not a date or date-time",
-                hint="write YYYY-MM-DD or YYYY-MM-DDTHH:MM[:SS][+HH:MM]",
+                hint="write YYYY-MM-DD or YYYY-MM-DDTHH:MM[:SS][+HH:MM] (UTC unless an "
+                "offset is given)",
             ) from None
-    start = datetime(day.year, day.month, day.day)
+    start = datetime(day.year, day.month, day.day, tzinfo=UTC)
     if end_of_day:
         start += timedelta(days=1)
     return format_time(start)
