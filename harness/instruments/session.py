@@ -126,7 +126,7 @@ class Session:
         self._broken = False
         self._in_reconnect = False
         self._hooks: list[Callable[[], None]] = []
-        self._recovery_hooks: list[Callable[[], None]] = []
+        self._recovery_hooks: list[Callable[[], object]] = []
         #: How often this session had to recover (a timeout or a lost connection).
         self.troubles = 0
 
@@ -147,7 +147,7 @@ class Session:
         """``hook()`` runs after every reconnect to restore the instrument's settings."""
         self._hooks.append(hook)
 
-    def add_recovery_hook(self, hook: Callable[[], None]) -> None:
+    def add_recovery_hook(self, hook: Callable[[], object]) -> None:
         """``hook()`` runs before every recovery attempt (resynchronise or reconnect); it
         must not raise (an exception is logged and the recovery goes on)."""
         self._recovery_hooks.append(hook)

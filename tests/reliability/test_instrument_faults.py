@@ -147,7 +147,9 @@ def test_fault_at_step(rig: dict[str, Any], cell: tuple[str, ...], kind: str) ->
     elapsed = time.monotonic() - t0
     bench.clear_faults()
     bench.wait_listening()
-    assert arm.armed_at is not None, f"the sequence never reached {event}"
+    assert arm.armed_at is not None, (
+        f"the sequence never reached {event}: {stored.status}, {stored.reason}"
+    )
     assert elapsed < CELL_LIMIT_S
     assert generator_off(bench), "generator output left on"
     assert bench.max_commanded_vpp() <= safe_vpp(board) * (1 + 1e-9)
