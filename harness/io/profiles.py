@@ -66,7 +66,7 @@ ROLE_OPS: dict[str, dict[str, _Op]] = {
         "set_frequency": _op(True, "output", "frequency_hz"),
         "query_frequency": _op(True, "output"),
         "set_amplitude": _op(True, "output", "amplitude"),
-        "query_amplitude": _op(True, "output"),
+        "query_amplitude": _op(False, "output"),
         "set_amplitude_unit": _op(False, "output"),
         "set_load": _op(False, "output", "load"),
         "query_load": _op(False, "output"),

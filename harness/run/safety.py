@@ -148,7 +148,14 @@ class SafeGenerator:
             self._gen.set_level(v, load_ohm=math.inf, output=self.output)
         except ReadbackMismatch as exc:
             # the driver's read-back: the generator does not report what it was sent
-            raise self.stop(f"{exc.message} after {v:.6g} V rms was commanded", exc.hint) from exc
+            read = getattr(self._gen, "level_readback_vrms", None)
+            got = read(output=self.output) if read is not None else None
+            said = f"{got:.6g} V rms" if got is not None else repr(exc.read_back)
+            raise self.stop(
+                f"the generator reports {said} after {v:.6g} V rms was commanded "
+                f"(safe input level {self.safe_input_vrms:.6g} V rms; {exc.message})",
+                exc.hint,
+            ) from exc
         self.level_vrms = v
         self.max_commanded_vrms = max(self.max_commanded_vrms, v)
         self.steps += 1
