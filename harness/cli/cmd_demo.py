@@ -16,6 +16,8 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
+from harness.store import redact
+
 DEMO_BOARD = "demo-twin-preamp.toml"
 DEMO_FIXTURE = "fixture-twin-preamp.toml"
 DEMO_DB = "stageproof-demo.db"
@@ -143,7 +145,8 @@ def run(args: argparse.Namespace) -> int:
         )
     console.print(table)
     console.print(
-        Text(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s"), highlight=False
+        Text(f"results stored in {redact(str(args.db))}; {time.perf_counter() - t0:.1f} s"),
+        highlight=False,
     )
     if args.keep:
         console.print(Text(f"working folder kept: {workdir}"), highlight=False)
@@ -155,8 +158,9 @@ def run(args: argparse.Namespace) -> int:
 
 def follow_up_commands(db: str | Path) -> list[str]:
     """The commands to look at the demo's results, each with ``--db`` of the demo's database:
-    without it they would look for the default results file and find none."""
-    q = shlex.quote(str(db))
+    without it they would look for the default results file and find none.  A server URL is
+    shown without its password (libpq takes it from PGPASSWORD or ~/.pgpass)."""
+    q = shlex.quote(redact(str(db)).replace(":***@", "@"))
     _good, gain_fault, bias_fault = (d.serial for d in DEMO_BOARDS)
     return [
         f"stageproof results --db {q}",

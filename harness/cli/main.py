@@ -28,6 +28,8 @@ COMMANDS: tuple[str, ...] = (
     "report",
     "diagnose",
     "characterize",
+    "store",
+    "web",
 )
 
 

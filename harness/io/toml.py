@@ -424,3 +424,50 @@ def load_board(path: str | Path, *, validate: bool = True):
 
         validate_board(board)
     return board
+
+
+def load_stored_board(text: str | None, path: str, *, validate: bool = True):
+    """The board a stored run was tested against: the board file's text kept in the run
+    (schema 2 on), else the file at its recorded path (runs stored before that)."""
+    if text is None:
+        try:
+            return load_board(path, validate=validate)
+        except BoardFileError as exc:
+            raise BoardFileError(
+                path,
+                None,
+                f"this run was stored before board files were kept in the database, and the "
+                f"file cannot be read ({exc.reason})",
+                hint="pass --board FILE with the board file the run was tested against",
+            ) from None
+    import tomllib
+
+    from harness.model.board import board_from_dict
+
+    raw = text.encode("utf-8")
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise BoardFileError(f"{path} (stored copy)", None, f"TOML syntax: {exc}") from None
+    board = board_from_dict(doc, str(path), raw)
+    if validate:
+        from harness.model import validate_board
+
+        validate_board(board)
+    return board
+
+
+def read_board_text(path: str | Path, digest: str) -> str | None:
+    """The board file's text when it still holds the bytes ``digest`` names (sha256)."""
+    import hashlib
+
+    try:
+        raw = Path(path).read_bytes()
+    except OSError:
+        return None
+    if digest and hashlib.sha256(raw).hexdigest() != digest:
+        return None
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return None

@@ -123,11 +123,11 @@ def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> B
     ranking: the board file moved, the run holds nothing to diagnose from)."""
     from harness.diagnose import diagnose_run
     from harness.errors import StageproofError
-    from harness.io.toml import load_board
+    from harness.io.toml import load_stored_board
 
     run = report.run
     try:
-        board = load_board(run.board_file, validate=False)
+        board = load_stored_board(run.board_text, run.board_file, validate=False)
         result: Any = diagnose_run(store, run.run_id, board, top=top)
     except StageproofError as exc:
         result = f"no fault diagnosis: {exc}"

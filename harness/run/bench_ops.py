@@ -25,6 +25,7 @@ import numpy as np
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
 from harness.io.fixture import ChannelConnection, FixtureConfig
+from harness.io.toml import read_board_text
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.measure.coherent import plan_coherent_within
 from harness.model.board import Board
@@ -249,6 +250,7 @@ def run_header(
         limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
+        board_text=read_board_text(board_file, board.digest),
     )
 
 

@@ -46,8 +46,25 @@ def _run(board, limits, tmp_path, faults=(), options=FAST):
 
 
 @pytest.fixture(scope="module")
-def good(board, limits, tmp_path_factory):
-    return _run(board, limits, tmp_path_factory.mktemp("good"))
+def good_folder(tmp_path_factory):
+    return tmp_path_factory.mktemp("good")
+
+
+@pytest.fixture(scope="module")
+def good(board, limits, good_folder):
+    return _run(board, limits, good_folder)
+
+
+def test_run_keeps_the_board_file_text(good, board, good_folder):
+    """The stored board text is the exact file the limits came from: its SHA-256
+    (FIPS 180-4, Python's hashlib) is the board's digest."""
+    import hashlib
+
+    res = good[0]
+    with open_store(good_folder / "r.db", readonly=True) as store:
+        text = store.get_run(res.run_id).board_text
+    assert text is not None
+    assert hashlib.sha256(text.encode("utf-8")).hexdigest() == board.digest
 
 
 def test_good_board_passes(good, board):
