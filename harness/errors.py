@@ -183,6 +183,36 @@ class IdentityMismatch(InstrumentError):
     """``*IDN?`` does not match what the station file expects at that resource."""
 
 
+class ReadbackMismatch(InstrumentError):
+    """An instrument reports a setting other than the one it was sent (beyond its resolution).
+
+    Carries the ``setting`` name, the ``requested`` and the ``read_back`` values, so the
+    operator sees which instrument ignored or rounded what.
+    """
+
+    def __init__(
+        self,
+        setting: str,
+        requested: float | str,
+        read_back: float | str,
+        *,
+        resource: str | None = None,
+        command: str | None = None,
+        role: str | None = None,
+        hint: str | None = None,
+    ) -> None:
+        self.setting = setting
+        self.requested = requested
+        self.read_back = read_back
+        super().__init__(
+            f"{setting}: sent {requested!r}, instrument reports {read_back!r}",
+            resource=resource,
+            command=command,
+            role=role,
+            hint=hint,
+        )
+
+
 # --- run ------------------------------------------------------------------------------------
 
 

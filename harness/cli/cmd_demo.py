@@ -55,11 +55,23 @@ def register(sub: argparse._SubParsersAction) -> None:
         action="store_true",
         help="keep the working folder (station file, fixture) and print where",
     )
+    p.add_argument(
+        "--dialect",
+        choices=("default", "benchtop"),
+        default="default",
+        help="which simulated instruments: the SCPI-99 digitiser and generator (default) "
+        "or the benchtop scope and generator, each driven by its shipped profile",
+    )
     p.set_defaults(func=run)
 
 
 def run_demo(
-    db: str | Path, workdir: Path, *, progress_console=None, settle_wait_s: float | None = None
+    db: str | Path,
+    workdir: Path,
+    *,
+    progress_console=None,
+    settle_wait_s: float | None = None,
+    dialect: str = "default",
 ) -> list[tuple[DemoBoard, RunResult]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
     from harness.io.board import load_board
@@ -76,7 +88,9 @@ def run_demo(
     results = []
     for demo in DEMO_BOARDS:
         station_file = workdir / f"station-{demo.serial}.toml"
-        with SimBench(board, faults=demo.faults, latency=False, host="127.0.0.1") as bench:
+        with SimBench(
+            board, faults=demo.faults, latency=False, host="127.0.0.1", dialect=dialect
+        ) as bench:
             bench.write_station(station_file)
             prep = prepare(board_file, fixture_file, station_file, limits=limits)
             progress = None
@@ -108,7 +122,9 @@ def run(args: argparse.Namespace) -> int:
     tmp = tempfile.mkdtemp(prefix="stageproof-demo-")
     workdir = Path(tmp)
     try:
-        results = run_demo(args.db, workdir, progress_console=console)
+        results = run_demo(
+            args.db, workdir, progress_console=console, dialect=getattr(args, "dialect", "default")
+        )
     finally:
         if not args.keep:
             import shutil

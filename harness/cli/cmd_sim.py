@@ -66,6 +66,14 @@ def register(subparsers: Any) -> None:
         "times (default: instant)",
     )
     serve.add_argument("--seed", type=int, default=20240601, help="noise seed")
+    serve.add_argument(
+        "--dialect",
+        choices=("default", "benchtop"),
+        default="default",
+        help="instrument dialect: SCPI-99 digitiser and generator (default), or a benchtop "
+        "scope (V/div, s/div, preamble, chunked reads) and a dBm generator; the station "
+        "file names the matching shipped profiles",
+    )
     serve.set_defaults(func=_serve)
     sim.set_defaults(func=lambda args: (sim.print_help(), 2)[1])
 
@@ -96,6 +104,7 @@ def _serve(
         host=args.host,
         port_base=args.port_base,
         seed=args.seed,
+        dialect=args.dialect,
     )
     stop = stop or threading.Event()
     try:
@@ -127,7 +136,7 @@ def _serve(
                 f"cannot write {exc.filename or args.station_out}: {exc.strerror or exc}",
                 hint="give --station-out / --fixture-out a file in a folder you can write",
             ) from None
-        print(f"simulated bench for {board.name} ({board.part_number})")
+        print(f"simulated bench for {board.name} ({board.part_number}), {args.dialect} dialect")
         for role, resource in bench.resources.items():
             print(f"  {role:<9} {resource}")
         print(f"station file: {args.station_out}")

@@ -585,8 +585,9 @@ class Sequencer(BoardRun):
             "nominal", f"gain, phase, THD at {self.plan.frequency_hz:.6g} Hz ({names})"
         )
         level = self.board.conditions.nominal_input_vrms
-        # the generator at the planned (coherent) frequency exactly, output still off
-        self.safe.configure(self.plan.frequency_hz, level)
+        # the scope's timebase read back and the plan made from it; the generator at the
+        # planned (coherent) frequency, output still off, and the frequency it reports used
+        self.plan = self.scope_ops.tune(self.plan, lambda f: self.safe.configure(f, level))
         res = self._measure_at(group, level, self.plan, "nominal")
         b = self.opt.bench
         for st in group:
@@ -932,8 +933,7 @@ class Sequencer(BoardRun):
         level = self.board.conditions.nominal_input_vrms
         self.safe.set_level(level)
         for f in extra:
-            plan = self._plan(f)
-            self.safe.set_frequency(plan.frequency_hz)
+            plan = self.scope_ops.tune(self._plan(f), self.safe.set_frequency)
             self._wait_settle()
             res = self._measure_at(group, level, plan, f"{f:g} Hz")
             for s in group:
@@ -959,7 +959,7 @@ class Sequencer(BoardRun):
                     },
                     None if a.gain_db is not None else _why(a),
                 )
-        self.safe.set_frequency(self.plan.frequency_hz)
+        self.plan = self.scope_ops.tune(self.plan, self.safe.set_frequency)
 
     # --- the whole run --------------------------------------------------------------
     def station_text(self) -> str:

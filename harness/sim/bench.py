@@ -17,6 +17,7 @@ import logging
 import math
 import time
 from collections.abc import Iterable, Mapping
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -27,6 +28,7 @@ from harness.io.packaged import PROFILE_DIR
 from harness.io.profiles import profile_from_dict
 from harness.io.toml import read_toml
 from harness.model.board import Board
+from harness.sim.benchtop import BENCHTOP_SCOPE, SimBenchtopGenerator, SimBenchtopScope
 from harness.sim.faults import InstrumentFault, is_instrument_fault, parse_instrument_fault
 from harness.sim.instruments import (
     GeneratorEvent,
@@ -43,12 +45,17 @@ from harness.sim.scpi import ScpiDevice
 from harness.sim.server import LOOPBACK, ScpiServer
 from harness.sim.world import World
 
-__all__ = ["ROLES", "SimBench", "split_faults"]
+__all__ = ["DIALECTS", "ROLES", "SimBench", "split_faults"]
 
 log = logging.getLogger("harness.sim")
 
 ROLES: tuple[str, ...] = ("generator", "scope", "switch", "dmm", "supply")
 _PROFILES = {r: f"scpi-{r}" for r in ROLES}
+#: The simulated bench's dialects: the profiles its station file names per role.
+DIALECTS: dict[str, dict[str, str]] = {
+    "default": dict(_PROFILES),
+    "benchtop": {**_PROFILES, "generator": "benchtop-generator", "scope": "benchtop-scope"},
+}
 
 
 def split_faults(
@@ -83,7 +90,16 @@ class SimBench:
         port_base: int = 0,
         seed: int = 20240601,
         scope_settings: ScopeSettings | None = None,
+        dialect: str = "default",
     ) -> None:
+        if dialect not in DIALECTS:
+            raise FaultSpecError(
+                f"dialect {dialect!r}",
+                "no such simulated dialect",
+                hint=f"use one of: {', '.join(DIALECTS)}",
+            )
+        self.dialect = dialect
+        self.profiles = DIALECTS[dialect]
         self.board = board
         component, inst = split_faults(faults, board)
         _, more = split_faults(instrument_faults, board)
@@ -94,15 +110,21 @@ class SimBench:
         self.host = host
         self.port_base = port_base
         inputs = max(4, len(board.channels) + 1)
-        settings = scope_settings or ScopeSettings(inputs=inputs)
+        base = BENCHTOP_SCOPE if dialect == "benchtop" else ScopeSettings()
+        settings = scope_settings or replace(base, inputs=inputs)
         if settings.inputs < len(board.channels) + 1:
             raise FaultSpecError(
                 f"scope inputs={settings.inputs}",
                 f"the board needs {len(board.channels) + 1} scope inputs",
             )
         kw = {"latency": latency}
-        gen = SimGenerator(self.world, serial="SIM-G001", **kw)
-        scope = SimScope(self.world, settings, serial="SIM-S001", **kw)
+        gen_cls, scope_cls = (
+            (SimBenchtopGenerator, SimBenchtopScope)
+            if dialect == "benchtop"
+            else (SimGenerator, SimScope)
+        )
+        gen = gen_cls(self.world, serial="SIM-G001", **kw)
+        scope = scope_cls(self.world, settings, serial="SIM-S001", **kw)
         switch = SimSwitch(self.world, serial="SIM-W001", **kw)
         dmm = SimDmm(self.world, switch, serial="SIM-D001", **kw)
         supply = SimSupply(self.world, serial="SIM-P001", **kw)
@@ -255,7 +277,7 @@ class SimBench:
             raise StationFileError(
                 None, None, "the simulated bench is not started", hint="call start() first"
             )
-        profiles = {**_PROFILES, **(profiles or {})}
+        profiles = {**self.profiles, **(profiles or {})}
         lines = [
             "# Station file written by `stageproof sim serve`: the simulated bench's instruments.",
             "",
@@ -283,8 +305,9 @@ class SimBench:
         profiles: dict[str, str] = {}
         inputs = self.scope.settings.inputs
         if inputs != 4:
-            prof = p.with_name(f"scpi-scope-{inputs}.toml")
-            prof.write_text(scope_profile_text(inputs))
+            name = self.profiles["scope"]
+            prof = p.with_name(f"{name}-{inputs}.toml")
+            prof.write_text(scope_profile_text(inputs, name))
             profiles["scope"] = str(prof.resolve())
         p.write_text(self.station_text(profiles=profiles))
         return p
@@ -353,15 +376,15 @@ class SimBench:
             time.sleep(0.01)
 
 
-def scope_profile_text(inputs: int) -> str:
-    """The shipped scope profile with ``inputs`` inputs, as a profile file: the default's
+def scope_profile_text(inputs: int, name: str = _PROFILES["scope"]) -> str:
+    """The shipped scope profile ``name`` with ``inputs`` inputs, as a profile file: its
     document with its name and ``settings.inputs`` changed, checked by the profile loader
     before it is written, so the station written beside it always loads."""
-    doc, _ = read_toml(PROFILE_DIR / f"{_PROFILES['scope']}.toml", ProfileError)
-    doc["profile"]["name"] = f"{_PROFILES['scope']}-{inputs}"
+    doc, _ = read_toml(PROFILE_DIR / f"{name}.toml", ProfileError)
+    doc["profile"]["name"] = f"{name}-{inputs}"
     doc["settings"]["inputs"] = inputs
     profile_from_dict(doc)
-    head = f"# Scope profile written by `stageproof sim serve`: the default, {inputs} inputs.\n"
+    head = f"# Scope profile written by `stageproof sim serve`: {name}, {inputs} inputs.\n"
     return head + "\n" + tomli_w.dumps(doc)
 
 

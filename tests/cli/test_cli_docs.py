@@ -63,7 +63,7 @@ def test_absolute_sqlite_url_documented_and_works(tmp_path):
 
 
 def test_fixture_comment_states_the_real_current_limit_factor():
-    from harness.io.toml import load_board
+    from harness.io.board import load_board
     from harness.sim.bench import SimBench
 
     bench = SimBench(load_board(BOARD_FILE))

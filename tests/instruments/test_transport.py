@@ -124,6 +124,15 @@ def test_block_not_followed_by_lf_is_malformed(fake, rm):
         s.query_block_bytes("BLK?")
 
 
+def test_binary_bytes_for_a_text_query_are_a_malformed_reply(fake, rm):
+    """Bytes that are not ASCII where a text reply is due (a late binary block read by the
+    next query) are the project's typed MalformedReply, never a UnicodeDecodeError."""
+    fake.replies["TXT?"] = b"\xfe\xff\x00\x01\n"
+    with _session(fake, rm) as s, pytest.raises(MalformedReply, match="not text") as ei:
+        s.query("TXT?", retry=False)
+    assert ei.value.command == "TXT?"
+
+
 def test_server_closes_mid_block(fake, rm):
     """pyvisa-py 0.8.1 on a socket: a closed connection shows as a timeout on read; with no answer
     to

@@ -77,9 +77,15 @@ def _write(tmp_path: Path, text: str, name: str = "p.toml") -> Path:
         ("outputs = 1", "outputs = 1\nchannels = 2", "settings.channels", "unknown setting"),
         (
             'amplitude_unit = "vpp"',
-            'amplitude_unit = "dbm"',
+            'amplitude_unit = "dbu"',
             "settings.amplitude_unit",
             "must be one of",
+        ),
+        (
+            'amplitude_unit = "vpp"',
+            'amplitude_unit = "dbm"',
+            "settings.calibrated_load",
+            "dBm needs a finite load",
         ),
         (
             'calibrated_load = "high_z"',

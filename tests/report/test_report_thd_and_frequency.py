@@ -25,7 +25,7 @@ pytestmark = pytest.mark.wire
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
-    from harness.io.toml import load_board
+    from harness.io.board import load_board
 
     tmp = tmp_path_factory.mktemp("thd")
     board = load_board(BOARD_FILE)

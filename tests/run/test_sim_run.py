@@ -18,7 +18,7 @@ import pytest
 from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.support.bench import FIXTURE_FILE, sim_bench
+from tests.support.bench import FIXTURE_FILE, ends_off, measurement, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -43,15 +43,6 @@ def _run(board, limits, tmp_path, faults=(), options=FAST):
         log = bench.generator_log
         max_on = bench.max_commanded_vpp(while_on=True)
     return res, sweep, log, max_on
-
-
-def _row(res, ch, name):
-    return next(m for m in res.measurements if m.channel == ch and m.name == name)
-
-
-def _ends_off(log) -> bool:
-    outs = [e for e in log if e.what in ("output", "reset")]
-    return not outs or outs[-1].what == "reset" or outs[-1].value == 0.0
 
 
 @pytest.fixture(scope="module")
@@ -80,7 +71,7 @@ def test_good_board_passes(good, board):
     res, _sweep, log, max_on = good
     assert res.verdict == "PASS", [(m.channel, m.name, m.decision) for m in res.failing()]
     assert res.status == "complete"
-    assert _ends_off(log)
+    assert ends_off(log)
     safe_vpp = board.conditions.safe_input_vrms * 2 * math.sqrt(2)
     assert max_on <= safe_vpp * (1 + 1e-6)
     assert res.acquisitions <= 12
@@ -95,7 +86,7 @@ def test_threshold_agrees_with_physics(good, board):
     from harness.sim.physics import BoardSim
 
     res = good[0]
-    found = _row(res, "A", "clip_input").value
+    found = measurement(res, "A", "clip_input").value
     sim = BoardSim(board)
     plan = plan_coherent(board.conditions.frequency_hz, [2e5], [8192])
     t = np.arange(plan.n_samples) / plan.sample_rate_hz
@@ -124,9 +115,9 @@ def test_open_bypass_capacitor_lowers_gain(board, limits, tmp_path):
     ≈ 16 dB less in the simple formula, less with the follower's loading; B is untouched."""
     res, *_ = _run(board, limits, tmp_path, faults=("C102:open",), options=FAULT)
     assert res.verdict == "FAIL"
-    ga = _row(res, "A", "gain")
+    ga = measurement(res, "A", "gain")
     assert ga.decision == "fail" and ga.value < ga.low - 3.0
-    assert _row(res, "B", "gain").decision == "pass"
+    assert measurement(res, "B", "gain").decision == "pass"
     # A's fault leaves B alone: its own verdict, drawn from its own rows only, is a pass
     assert res.channels["B"].verdict == "PASS"
     assert res.channels["A"].verdict == "FAIL"
@@ -138,11 +129,11 @@ def test_drifted_bias_resistor_lowers_threshold_on_one_side(board, limits, tmp_p
     threshold is low on B, every clipped record of B limits on the same half-cycle, and A
     still passes its threshold."""
     res, sweep, log, _ = _run(board, limits, tmp_path, faults=("R201:drift=1.5",), options=FAULT)
-    cb = _row(res, "B", "clip_input")
+    cb = measurement(res, "B", "clip_input")
     assert cb.decision == "fail" and cb.value < cb.low
-    assert _row(res, "A", "clip_input").decision == "pass"
+    assert measurement(res, "A", "clip_input").decision == "pass"
     sides = {p.clip_side for p in sweep if p.channel == "B" and p.clipped}
     assert len(sides) == 1 and None not in sides
-    side_row = _row(res, "B", "clip_side")
+    side_row = measurement(res, "B", "clip_side")
     assert json.loads(side_row.detail_json)["side"] in ("positive", "negative")
-    assert _ends_off(log)
+    assert ends_off(log)

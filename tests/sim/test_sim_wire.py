@@ -37,9 +37,11 @@ def bench():
 
 @pytest.fixture(scope="module")
 def rm():
-    manager = pyvisa.ResourceManager("@py")
-    yield manager
-    manager.close()
+    """The process's one pyvisa-py manager: pyvisa shares its session between managers of
+    one library, so closing a manager here would close every other test's resources."""
+    from harness.instruments.session import resource_manager
+
+    return resource_manager("@py")
 
 
 def open_res(rm, resource: str):
