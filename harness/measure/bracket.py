@@ -1,5 +1,5 @@
-"""Stepped-level analysis: THD and gain-compression curves, the clipping threshold and the
-search the sequencer runs to find it.
+"""Bracketed level search: THD and gain-compression curves over drive levels, the clipping
+threshold and the bracketing search the sequencer runs to find it.
 
 Criteria differ by about 2 dB on a hard clipper (THD 1 % at +0.27 dB over the clip level,
 1 dB compression at +2 dB), so every result names its criterion.  Crossings are

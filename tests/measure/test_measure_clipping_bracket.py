@@ -1,4 +1,4 @@
-"""Clipping evidence (flat and bending-back), over-range, and the stepped-level search."""
+"""Clipping evidence (flat and bending-back), over-range, and the bracketed level search."""
 
 from __future__ import annotations
 
@@ -111,7 +111,7 @@ def test_hard_clip_fundamental_matches_describing_function(ratio):
 
 
 def _clipper(level_vrms: float, gain: float = 10.0, clip_v: float = 1.0) -> StepPoint:
-    """One stepped-level measurement of a symmetric hard clipper (coherent, noiseless)."""
+    """One level of the ladder on a symmetric hard clipper (coherent, noiseless)."""
     n, j = 4096, 127
     x = math.sqrt(2) * level_vrms * np.sin(2 * np.pi * j * np.arange(n) / n)
     y = np.clip(gain * x, -clip_v, clip_v)
