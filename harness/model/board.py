@@ -22,6 +22,12 @@ from harness.errors import BoardFileError, ValueParseError
 from harness.files import FieldReader
 from harness.values import Toleranced, parse_quantity, parse_tolerance, split_value_tolerance
 
+#: Reverse beta when the transistor data gives none: small-signal silicon NPN parts have a
+#: beta_R of a few (from memory: SPICE models of 2N3904-class parts carry BR of about 0.7-6;
+#: Sedra & Smith, *Microelectronic Circuits*, BJT chapter, on the reverse-active mode, also
+#: from memory).  It matters only in saturation.
+BETA_R_DEFAULT = 3.0
+
 # --- value objects ------------------------------------------------------------------------------
 
 
@@ -49,7 +55,12 @@ class Spread:
 @dataclass(frozen=True)
 class Transistor:
     """A small-signal BJT.  ``is_a`` sets V_BE at any current (V_BE = V_T ln(I_C/I_S));
-    ``vbe_v``, when given, is the data-sheet V_BE range the model checks that against."""
+    ``vbe_v``, when given, is the data-sheet V_BE range the model checks that against.
+
+    ``beta_r`` is the reverse beta of the Ebers-Moll model (how hard a saturated collector is
+    pulled towards the emitter); absent, the model takes :data:`BETA_R_DEFAULT`.  The Early
+    voltage is ``early_v`` (a range, drawn in the Monte Carlo) or ``vaf_v`` (one value); either
+    way :attr:`vaf_v` is the typical value, None for no Early effect."""
 
     name: str
     polarity: Literal["npn"]
@@ -58,6 +69,8 @@ class Transistor:
     vce_sat_v: Spread
     vaf_v: float | None = None
     vbe_v: Spread | None = None
+    beta_r: Spread | None = None
+    early_v: Spread | None = None
 
 
 @dataclass(frozen=True)
@@ -416,7 +429,11 @@ _NONINV_FIELDS = _file_fields(OpAmpNonInverting)
 def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
     if not isinstance(data, Mapping):
         raise rd.fail(where, "must be a table")
-    rd.known(data, {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "vbe_v", "note"}, where)
+    rd.known(
+        data,
+        {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "early_v", "beta_r", "vbe_v", "note"},
+        where,
+    )
     polarity = rd.text(data, "polarity", where, default="npn").lower()
     if polarity != "npn":
         raise rd.fail(
@@ -425,6 +442,15 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
             hint='describe NPN stages (polarity = "npn")',
         )
     vaf = rd.quantity(data, "vaf_v", where, default=0.0, positive=False) or None
+    early = rd.spread(data, "early_v", where, required=False)
+    if early is not None:
+        if vaf is not None:
+            raise rd.fail(
+                f"{where}.early_v",
+                "both early_v and vaf_v give the Early voltage",
+                hint="keep early_v (a range) and remove vaf_v",
+            )
+        vaf = early.typ
     return Transistor(
         name=name,
         polarity="npn",
@@ -433,6 +459,8 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
         vce_sat_v=rd.spread(data, "vce_sat_v", where),  # type: ignore[arg-type]
         vaf_v=vaf,
         vbe_v=rd.spread(data, "vbe_v", where, required=False),
+        beta_r=rd.spread(data, "beta_r", where, required=False),
+        early_v=early,
     )
 
 

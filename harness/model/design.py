@@ -17,7 +17,13 @@ import numpy as np
 
 from harness.errors import BoardFileError
 from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower
-from harness.model.core import ChannelArrays, LargeSignalChain, evaluate_channel, harmonics
+from harness.model.core import (
+    ChannelArrays,
+    LargeSignalChain,
+    chain_waveform,
+    evaluate_channel,
+    harmonics,
+)
 from harness.model.params import channel_parameters, nominal_arrays
 
 #: Points per period of the large-signal solution for the nominal design (the Monte Carlo
@@ -217,7 +223,34 @@ def large_signal_harmonics(
     res = _arrays(board, ch, params, search=False)
     _raise_first(board, res)
     amp = np.array([input_vrms * math.sqrt(2.0)])
-    return harmonics(LargeSignalChain.from_arrays(res), amp, n_points)[0]
+    p = nominal_arrays(channel_parameters(board, ch), params)
+    return harmonics(LargeSignalChain.from_arrays(res, ch, p), amp, n_points)[0]
+
+
+def large_signal_bias(
+    board: Board,
+    channel_name: str,
+    input_vrms: float,
+    *,
+    params: Mapping[str, float] | None = None,
+    n_points: int = NOMINAL_POINTS,
+) -> dict[str, float]:
+    """Mean node voltages under a sine of ``input_vrms``: the operating point as the coupling
+    and bypass capacitors have recharged it (keys as :func:`operating_point`, BJT stages)."""
+    ch = _channel(board, channel_name)
+    res = _arrays(board, ch, params, search=False)
+    _raise_first(board, res)
+    p = nominal_arrays(channel_parameters(board, ch), params)
+    sol = chain_waveform(
+        LargeSignalChain.from_arrays(res, ch, p), np.array([input_vrms * math.sqrt(2.0)]), n_points
+    )
+    out: dict[str, float] = {}
+    for st, (vb, ve, vc) in zip(ch.stages, sol.means, strict=True):
+        if isinstance(st, CommonEmitter | EmitterFollower):
+            out[f"{st.name}.base_v"] = float(vb[0])
+            out[f"{st.name}.emitter_v"] = float(ve[0])
+            out[f"{st.name}.collector_v"] = float(vc[0])
+    return out
 
 
 def validate_board(board: Board) -> None:

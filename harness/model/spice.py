@@ -2,8 +2,9 @@
 
 Pure text in, text out: the tests run the netlist through ngspice (Debian package) as an
 outside reference for the model.  BJTs are Gummel-Poon ``.model NPN`` cards with the board's
-I_S (IS), beta (BF) and Early voltage (VAF, absent = infinite); op-amps are a voltage-controlled
-source with the board's open-loop gain (no rails: compare op-amp stages below clipping only).
+I_S (IS), beta (BF), reverse beta (BR) and Early voltage (VAF, absent = infinite); op-amps are
+a voltage-controlled source with the board's open-loop gain (no rails: compare op-amp stages
+below clipping only).
 """
 
 from __future__ import annotations
@@ -72,7 +73,10 @@ def channel_netlist(
 
         if isinstance(st, CommonEmitter | EmitterFollower):
             vaf = f" VAF={_v(g('vaf_v'))}" if f"{nm}.vaf_v" in p else ""
-            models.append(f".model Q{j}MOD NPN(IS={_v(g('is_a'))} BF={_v(g('beta'))}{vaf})")
+            models.append(
+                f".model Q{j}MOD NPN(IS={_v(g('is_a'))} BF={_v(g('beta'))} "
+                f"BR={_v(g('beta_r'))}{vaf})"
+            )
         if isinstance(st, CommonEmitter):
             b = cin(f"b{j}")
             if b != f"b{j}":
