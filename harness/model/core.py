@@ -464,6 +464,29 @@ def _dc(
 # --- small signal ------------------------------------------------------------------------------
 
 
+def _degenerated_ce(
+    g_m: np.ndarray, r_pi: np.ndarray, r_o: np.ndarray, r_e: np.ndarray, r_l: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Gain v_c/v_b, base input resistance and transistor output resistance of a CE stage
+    with emitter resistance ``r_e``, output resistance ``r_o`` (Early effect) and collector
+    load ``r_l``: the hybrid-pi nodal equations at collector and emitter solved exactly.
+    Emitter degeneration raises the output resistance to r_o + (r_e || r_pi)(1 + g_m r_o)
+    (Sedra & Smith, *Microelectronic Circuits*, BJT chapter, from memory), so r_o in parallel
+    with the load would understate a degenerated stage's gain."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g_o = np.where(np.isfinite(r_o), 1.0 / r_o, 0.0)
+        a11, a12, b1 = 1.0 / r_l + g_o, -(g_m + g_o), -g_m
+        a21 = -g_o * r_e  # the emitter equation times r_e: r_e = 0 stays finite
+        a22 = 1.0 + r_e * (1.0 / r_pi + g_m + g_o)
+        b2 = r_e * (1.0 / r_pi + g_m)
+        det = a11 * a22 - a12 * a21
+        v_c = (b1 * a22 - a12 * b2) / det
+        v_e = (a11 * b2 - a21 * b1) / det
+        r_par = r_e * r_pi / (r_e + r_pi)
+        r_out = np.where(np.isfinite(r_o), r_o + r_par * (1.0 + g_m * r_o), np.inf)
+    return v_c, r_pi / (1.0 - v_e), r_out
+
+
 def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> None:
     v_t = _b(p["v_t"], n)
     r_next = _b(p["load_ohm"], n)
@@ -481,11 +504,12 @@ def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> 
             rc = g("rc")
             r_ac = parallel(rc, r_next, r_o)
             re = g("re")
-            z_base = r_pi + (s.beta + 1.0) * re
-            s.gain = -s.beta * r_ac / z_base
+            s.gain, z_base, r_out_q = _degenerated_ce(
+                s.ic_a / v_t, r_pi, r_o, re, parallel(rc, r_next)
+            )
             r1, r2 = g("r1"), g("r2")
             s.input_ohm = parallel(r1, r2, z_base)
-            s.output_ohm = parallel(rc, r_o)
+            s.output_ohm = parallel(rc, r_out_q)
             s.r_ac = r_ac
             s.r_e_ac = re
         elif isinstance(st, EmitterFollower):
@@ -719,7 +743,7 @@ class LargeSignalChain:
             tuple(coef),
             tuple(dc_in),
             dc_out,
-            np.zeros(n),  # the drive is the voltage at the input connector, as the gain is
+            _b(p["source_ohm"], n),
         )
 
     def take(self, rows: slice | np.ndarray) -> LargeSignalChain:
@@ -774,10 +798,12 @@ def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
 @dataclass
 class ChainSolution:
     """The channel output over half a period (AC part about its driven mean; a load without
-    C_out sees the DC shift too) and each BJT stage's mean base, emitter and collector voltage
-    under drive (NaN for op-amp stages), shape ``(samples,)`` each."""
+    C_out sees the DC shift too), the signal at the input connector (the generator's EMF less
+    the drop on ``source_ohm``: the base current is not linear) and each BJT stage's mean
+    base, emitter and collector voltage under drive (NaN for op-amp stages), ``(samples,)``."""
 
     out: np.ndarray
+    inp: np.ndarray
     means: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
     state: ChainState
 
@@ -788,7 +814,8 @@ def chain_waveform(
     n_points: int = 64,
     state: ChainState | None = None,
 ) -> ChainSolution:
-    """Periodic steady state of the chain for a cosine of peak ``amp_vpk`` from the source.
+    """Periodic steady state of the chain for a cosine EMF of peak ``amp_vpk`` behind the
+    source resistance.
 
     Midband: coupling and bypass capacitors short for the signal but carrying no DC, so each
     BJT stage's operating point shifts under drive (:mod:`harness.model.periodic`).  A stage
@@ -823,6 +850,9 @@ def chain_waveform(
             st0 = start[j]
             assert st0 is not None
             sol = solve_periodic(v_s, col, w, st0)
+            if j == 0:  # the input connector is the base for the signal (C_in short)
+                v_base = v_s - col["r_b"] * sol.i_b
+                inp = v_base - (v_base @ w)[:, None]
             new_state.append(sol.state)
             m_b, m_c = sol.state.m_b[:, None], sol.state.m_c[:, None]
             i_e = sol.i_b + sol.i_c
@@ -846,12 +876,14 @@ def chain_waveform(
                 out = node - ref
         else:
             x_in = v_oc / (1.0 + r_out / col["z_in"])
+            if j == 0:
+                inp = x_in
             v_oc = np.clip(col["gain"] * x_in, col["lo"], col["hi"])
             r_out = np.zeros_like(r_out)
             new_state.append(None)
             means.append((nan, nan, nan))
             out = v_oc
-    return ChainSolution(out, means, new_state)
+    return ChainSolution(out, inp, means, new_state)
 
 
 def harmonics(
@@ -861,10 +893,12 @@ def harmonics(
     k_max: int = THD_HARMONICS,
     workers: int = 1,
     state: ChainState | None = None,
+    input_fundamental: np.ndarray | None = None,
 ) -> np.ndarray:
     """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift of a DC-coupled
-    load, 0 behind C_out) of the channel output for a sine of peak ``amp_vpk`` at its input,
-    shape ``(samples, k_max + 1)``.
+    load, 0 behind C_out) of the channel output for a sine EMF of peak ``amp_vpk`` behind the
+    source resistance, shape ``(samples, k_max + 1)``; ``input_fundamental`` (if given,
+    ``(samples,)``) receives the fundamental's peak at the input connector.
 
     Solved in blocks of :data:`BLOCK_ROWS` samples; ``workers`` > 1 spreads the blocks over
     threads (numpy releases the GIL inside its loops).  ``state`` (full size, see
@@ -879,6 +913,8 @@ def harmonics(
         start = None if state is None else [s.take(sl) if s else None for s in state]
         sol = chain_waveform(chain.take(sl), amp[sl], n_points, start)
         out[sl] = np.abs(sol.out @ basis)
+        if input_fundamental is not None:
+            input_fundamental[sl] = np.abs(sol.inp @ basis[:, 1])
         if state is not None:
             for s, new in zip(state, sol.state, strict=True):
                 if s is not None and new is not None:
@@ -915,8 +951,13 @@ def criterion_level(
     iterations: int = 10,
     workers: int = 1,
     tol_db: float = 0.0,
+    emf_per_input: np.ndarray | float = 1.0,
 ) -> np.ndarray:
     """Input peak level where the board's clipping criterion is met, for every sample at once.
+
+    Levels are the fundamental at the input connector; the search itself runs on the
+    generator's EMF (``emf_per_input`` times the input level for small signals) and reads the
+    input level off the solution, so the base current's drop on the source resistance counts.
 
     ``criterion`` "thd": THD reaches ``thd_percent``; "compression": the fundamental gain has
     dropped ``compression_db`` below the small-signal ``gain``.  The search works on level in dB
@@ -930,38 +971,45 @@ def criterion_level(
     """
     state = chain.rest_state(n_points)
 
-    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> np.ndarray:
+    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> tuple[np.ndarray, np.ndarray]:
+        """Criterion score (>= 0: met) and input level over EMF in dB at these EMF levels."""
         amp = 10.0 ** (level_db / 20.0)
         sub = [s.take(rows) if s else None for s in state]
-        h = harmonics(chain.take(rows), amp, n_points, workers=workers, state=sub)
+        v_in = np.empty(amp.shape[0])
+        h = harmonics(
+            chain.take(rows), amp, n_points, workers=workers, state=sub, input_fundamental=v_in
+        )
         for s, new in zip(state, sub, strict=True):
             if s is not None and new is not None:
                 s.put(rows, new)
+        with np.errstate(divide="ignore"):
+            ratio_db = 20.0 * np.log10(np.maximum(v_in, 1e-300) / amp)
         if criterion == "compression":
             with np.errstate(divide="ignore"):
-                comp = 20.0 * np.log10(np.abs(gain[rows]) * amp / np.maximum(h[:, 1], 1e-300))
-            return comp - compression_db
-        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent)
+                comp = 20.0 * np.log10(np.abs(gain[rows]) * v_in / np.maximum(h[:, 1], 1e-300))
+            return comp - compression_db, ratio_db
+        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent), ratio_db
 
     every = slice(None)
-    ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12))
+    to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
+    ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12)) + to_emf
     with np.errstate(divide="ignore"):
-        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)), ref + 0.5)
+        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
     a, b = start - 1.5, start + 1.5
-    fa = g(a, every)
-    fb = g(b, every)
+    fa, ra = g(a, every)
+    fb, rb = g(b, every)
     for _ in range(6):  # widen: 3, 6, 12 ... dB steps where the bracket misses
         lo_bad, hi_bad = np.flatnonzero(fa > 0), np.flatnonzero(fb < 0)
         if lo_bad.size == 0 and hi_bad.size == 0:
             break
         if lo_bad.size:
-            b[lo_bad], fb[lo_bad] = a[lo_bad], fa[lo_bad]
+            b[lo_bad], fb[lo_bad], rb[lo_bad] = a[lo_bad], fa[lo_bad], ra[lo_bad]
             a[lo_bad] -= 6.0
-            fa[lo_bad] = g(a[lo_bad], lo_bad)
+            fa[lo_bad], ra[lo_bad] = g(a[lo_bad], lo_bad)
         if hi_bad.size:
-            a[hi_bad], fa[hi_bad] = b[hi_bad], fb[hi_bad]
+            a[hi_bad], fa[hi_bad], ra[hi_bad] = b[hi_bad], fb[hi_bad], rb[hi_bad]
             b[hi_bad] += 6.0
-            fb[hi_bad] = g(b[hi_bad], hi_bad)
+            fb[hi_bad], rb[hi_bad] = g(b[hi_bad], hi_bad)
     side = np.zeros_like(a)  # Illinois: which end was kept last time (-1 a, +1 b)
     for it in range(iterations):
         if tol_db > 0 and np.nanmax(b - a) < tol_db:
@@ -972,10 +1020,11 @@ def criterion_level(
             c = np.where(np.isfinite(c) & (c > a) & (c < b), c, 0.5 * (a + b))
         else:
             c = 0.5 * (a + b)
-        fc = g(c, every)
+        fc, rc = g(c, every)
         right = fc > 0  # root in [a, c]
         fa_new = np.where(right, np.where(side == -1, 0.5 * fa, fa), fc)
         fb_new = np.where(right, fc, np.where(side == 1, 0.5 * fb, fb))
+        ra, rb = np.where(right, ra, rc), np.where(right, rc, rb)
         a, b = np.where(right, a, c), np.where(right, c, b)
         fa, fb = fa_new, fb_new
         side = np.where(right, -1.0, 1.0)
@@ -983,7 +1032,9 @@ def criterion_level(
         c = b - fb * (b - a) / (fb - fa)
     c = np.where(np.isfinite(c) & (c >= a) & (c <= b), c, 0.5 * (a + b))
     bad = ~(fa <= 0) | ~(fb >= 0)
-    return np.where(bad, np.nan, 10.0 ** (c / 20.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(b > a, ra + (c - a) * (rb - ra) / (b - a), ra)
+    return np.where(bad, np.nan, 10.0 ** ((c + r) / 20.0))
 
 
 # --- the whole channel -------------------------------------------------------------------------
@@ -1071,8 +1122,10 @@ def evaluate_channel(
         )
 
     chain = LargeSignalChain.from_arrays(res, channel, p)
+    # the generator's EMF that puts a small signal of 1 V on the input connector
+    emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
     if thd_points:
-        h = harmonics(chain, np.full(n, nominal_vpk), thd_points, workers=workers)
+        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers)
         res.thd_percent = thd_from_harmonics(h)
     if search_points:
         c = board.conditions
@@ -1093,5 +1146,6 @@ def evaluate_channel(
             n_points=search_points,
             iterations=search_iterations,
             workers=workers,
+            emf_per_input=emf_per_input,
         )
     return res

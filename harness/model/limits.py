@@ -47,6 +47,12 @@ MC_THD_POINTS = 32
 MC_SEARCH_POINTS = 32
 MC_SEARCH_ITERATIONS = 10
 
+#: The model's own uncertainty, per quantity: how far it may sit from the physics (ngspice's
+#: Gummel-Poon transient, settled) on any workable common-emitter or CE-into-follower board,
+#: as measured by tests/model/test_model_spice_random.py over boards drawn at random up to
+#: twice the clipping threshold.  Bias in volts, gain and THD relative, clipping in dB.
+MODEL_UNCERTAINTY = {"bias_v": 0.03, "gain_rel": 0.01, "thd_rel": 0.15, "clip_db": 0.1}
+
 DISTRIBUTIONS = (
     "resistors, capacitors, supply and load uniform within tolerance; transistor beta and "
     "V_CE(sat) uniform, I_S log-uniform between data-sheet min and max; op-amp headroom and "
