@@ -870,6 +870,9 @@ def chain_waveform(
                 v_oc = col["r_out"] * (i_e - m_e)
                 dc_oc = ve_mean
             means.append((vb_mean[:, 0], ve_mean[:, 0], np.broadcast_to(vc_mean, m_b.shape)[:, 0]))
+            if chain.dc_in[j]:  # one node: the collector before carries this base current
+                vb_prev, ve_prev, _ = means[j - 1]
+                means[j - 1] = (vb_prev, ve_prev, vb_mean[:, 0])
             r_out = col["r_out"]
             if j == last:
                 ref = col["out_rest"] if chain.dc_out else (node @ w)[:, None]
@@ -1049,6 +1052,7 @@ def evaluate_channel(
     search_points: int | None = 64,
     search_iterations: int = 10,
     workers: int = 1,
+    search_tol_db: float = 0.0,
 ) -> ChannelArrays:
     """Everything the model predicts for one channel, over the samples in ``p``.
 
@@ -1146,6 +1150,7 @@ def evaluate_channel(
             n_points=search_points,
             iterations=search_iterations,
             workers=workers,
+            tol_db=search_tol_db,
             emf_per_input=emf_per_input,
         )
     return res

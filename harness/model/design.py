@@ -31,6 +31,9 @@ from harness.model.params import channel_parameters, nominal_arrays
 #: uses fewer; 256 resolves harmonics 2..10 of a clipped wave with negligible aliasing).
 NOMINAL_POINTS = 256
 NOMINAL_SEARCH_ITERATIONS = 30
+#: The nominal search stops once its bracket is this narrow (the secant inside it is far
+#: closer still).
+NOMINAL_SEARCH_TOL_DB = 1e-3
 
 
 @dataclass(frozen=True)
@@ -91,6 +94,7 @@ def _arrays(
         thd_points=NOMINAL_POINTS,
         search_points=NOMINAL_POINTS if search else None,
         search_iterations=NOMINAL_SEARCH_ITERATIONS,
+        search_tol_db=NOMINAL_SEARCH_TOL_DB,
     )
 
 

@@ -46,6 +46,7 @@ from harness.model.params import (
 MC_THD_POINTS = 32
 MC_SEARCH_POINTS = 32
 MC_SEARCH_ITERATIONS = 10
+MC_SEARCH_TOL_DB = 0.02
 
 #: The model's own uncertainty, per quantity: how far it may sit from the physics (ngspice's
 #: Gummel-Poon transient, settled) on any workable common-emitter or CE-into-follower board,
@@ -303,6 +304,7 @@ def _evaluate(
         search_points=MC_SEARCH_POINTS,
         search_iterations=MC_SEARCH_ITERATIONS,
         workers=workers,
+        search_tol_db=MC_SEARCH_TOL_DB,
     )
 
 
