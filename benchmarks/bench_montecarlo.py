@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model.core import evaluate_channel
 from harness.model.limits import MC_SEARCH_ITERATIONS, MC_SEARCH_POINTS, MC_THD_POINTS
 from harness.model.params import channel_parameters, sample_arrays

@@ -21,9 +21,9 @@ import time
 
 import numpy as np
 
-from harness.instruments.profiles import load_profile
 from harness.instruments.scpi import encode_values
 from harness.instruments.session import Session, resource_manager
+from harness.io.profiles import load_profile
 
 
 def _server(n: int) -> socketserver.ThreadingTCPServer:

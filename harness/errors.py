@@ -99,6 +99,22 @@ class DesignError(StageproofError, ValueError):
         super().__init__(f"{location}: {reason}", hint=hint)
 
 
+class MemoryBudgetError(StageproofError, MemoryError):
+    """A request would need more memory than the machine can give (Monte Carlo boards,
+    a capture that claims gigabytes): refused before anything is allocated.
+
+    ``field`` names the option or input at fault (``--samples``, ``limits.samples``, a file).
+    """
+
+    def __init__(
+        self, field: str, reason: str, *, needed: int, available: int, hint: str | None = None
+    ) -> None:
+        self.field = field
+        self.needed = needed
+        self.available = available
+        super().__init__(f"{field}: {reason}", hint=hint)
+
+
 # --- signal analysis ------------------------------------------------------------------------
 
 
@@ -182,6 +198,10 @@ class IdentityMismatch(InstrumentError):
 
 class SafetyError(StageproofError, RuntimeError):
     """A step would break a safety rule (level above the safe input, supply fault)."""
+
+
+class StationBusy(StageproofError, RuntimeError):
+    """Another process holds the station's instruments (its lock names who)."""
 
 
 class RunAborted(StageproofError, RuntimeError):

@@ -46,17 +46,84 @@ TOLERANCE_LETTERS: dict[str, float] = {
     "M": 0.20,
 }
 
-_UNIT_SUFFIX = re.compile(r"(ohms?|Ω|F|V|A|Hz|s)$")
+#: Unit symbols of the SI (BIPM, The International System of Units, 9th ed. 2019, §2.3.4
+#: Table 4: Ω F V A Hz; Table 2: s) and the quantity each measures.  Symbols are
+#: case-sensitive (§5.2): ``Hz``, never ``hz``; ``ohm`` is the unit's name, in any case.
+#: (Clause and table numbers from memory.)
+UNITS: dict[str, str] = {
+    "Ω": "resistance",
+    "F": "capacitance",
+    "V": "voltage",
+    "A": "current",
+    "Hz": "frequency",
+    "s": "time",
+}
+#: An example of each quantity written correctly, for hints.
+_EXAMPLES: dict[str, str] = {
+    "Ω": '"6k8", "6.8k" or "6.8 kΩ"',
+    "F": '"2u2", "2.2u" or "2.2 µF"',
+    "V": '"12", "12 V" or "150 mV"',
+    "A": '"0.015", "15m" or "15 mA"',
+    "Hz": '"1000", "1k" or "1 kHz"',
+    "s": '"0.5" or "500 ms"',
+    "": "a plain number such as 100 or 1e5",
+}
+#: Multiplier letters that make no sense for a quantity (IEC 60062:2016 writes resistors
+#: with R K M G T and capacitors with p n µ m): 6.8u on a resistor is 6.8 µΩ, 4k7 on a
+#: capacitor 4700 F; both are a value meant for the other part.
+_IMPLAUSIBLE: dict[str, frozenset[str]] = {
+    "Ω": frozenset("pnuµμ"),
+    "F": frozenset("RrEkKMGT"),
+}
+_PREFIX = "pnuµμmkKMGT"
+_WITH_UNIT = re.compile(
+    rf"^(?P<num>\S*?)(?P<space> ?)(?P<prefix>[{_PREFIX}]?)"
+    r"(?P<unit>Ω|\u2126|[oO][hH][mM][sS]?|F|V|A|Hz|s)$"
+)
 _RKM = re.compile(r"^(\d*)([pnuµμmRrEkKMGT])(\d*)$")
 _PLAIN = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
-_PREFIXED = re.compile(r"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*([pnuµμmkKMGT])$")
+_PREFIXED = re.compile(rf"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)([{_PREFIX}])$")
+_WRONG_CASE = re.compile(r"(?:\d|[pnuµμmkKMGT])(hz|HZ|hZ|v|a|f)$")
 
 
-def parse_quantity(text: str | float | int) -> float:
+def _unit_symbol(text: str) -> str:
+    return "Ω" if text in ("Ω", "\u2126") or text.lower().startswith("ohm") else text
+
+
+def _number(s: str, raw: str) -> tuple[float, str | None]:
+    """A number without unit: (value, multiplier letter or None)."""
+    if _PLAIN.match(s):
+        return float(s), None
+    m = _PREFIXED.match(s)
+    if m:
+        return float(f"{m.group(1)}e{_EXPONENTS[m.group(2)]}"), m.group(2)
+    sign = ""
+    if s[:1] in "+-":
+        sign, s = s[0], s[1:]
+    m = _RKM.match(s)
+    if m and (m.group(1) or m.group(3)):
+        whole, letter, frac = m.groups()
+        return float(f"{sign}{whole or '0'}.{frac or '0'}e{_EXPONENTS[letter]}"), letter
+    hint = "write e.g. 4700, 4.7k, 4k7, R47, 2M2, 100n or 4u7"
+    if _WRONG_CASE.search(raw):
+        hint = "unit symbols are case-sensitive (SI Brochure): write Hz, V, A or F"
+    raise ValueParseError(
+        raw, "not a number, an SI-prefixed number or an IEC 60062 code", hint=hint
+    )
+
+
+def parse_quantity(text: str | float | int, unit: str | None = None) -> float:
     """Read a value written as a number, an SI-prefixed number (``4.7k``) or an RKM code.
 
     ``4k7`` = 4700, ``R47`` = 0.47, ``2M2`` = 2.2e6, ``4n7`` = 4.7e-9, ``470R`` = 470,
-    ``10u`` = 1e-5.  A trailing unit (``ohm``, ``Ω``, ``F``, ``V``, ``A``, ``Hz``) is ignored.
+    ``10u`` = 1e-5.  A unit symbol may follow (``6.8uF``, ``4.7 kΩ``, ``15 mA``, ``1kohm``),
+    separated by at most one space as the SI writes it (SI Brochure §5.4.3); no other space
+    is allowed inside a value (``"6k8 5"`` is refused, not read as 6850).
+
+    ``unit`` is what the value measures: ``"Ω"``, ``"F"``, ``"V"``, ``"A"``, ``"Hz"``,
+    ``"s"``, or ``""`` for a plain number.  A unit symbol of another quantity is refused
+    (``6.8uF`` for a resistor), and so is a multiplier that belongs to the other kind of
+    part (``6.8u`` for a resistor, ``4k7`` for a capacitor).  None checks nothing.
     """
     if isinstance(text, bool):
         raise ValueParseError(str(text), "a value must be a number, not true/false")
@@ -68,28 +135,45 @@ def parse_quantity(text: str | float | int) -> float:
     if not isinstance(text, str):
         raise ValueParseError(repr(text), "expected a number or a text such as '4k7'")
     raw = text.strip()
-    s = raw.replace(" ", "").replace("_", "")
+    s = re.sub(r"(?<=\d)_(?=\d)", "", raw)  # digit grouping, 4_700
     if not s:
         raise ValueParseError(raw, "empty value", hint="write a number such as 4k7 or 4700")
-    if s not in {"F", "V", "A", "s"}:
-        s = _UNIT_SUFFIX.sub("", s) or s
-    if _PLAIN.match(s):
-        return float(s)
-    m = _PREFIXED.match(s)
-    if m:
-        return float(f"{m.group(1)}e{_EXPONENTS[m.group(2)]}")
-    sign = ""
-    if s[:1] in "+-":
-        sign, s = s[0], s[1:]
-    m = _RKM.match(s)
-    if m and (m.group(1) or m.group(3)):
-        whole, letter, frac = m.groups()
-        return float(f"{sign}{whole or '0'}.{frac or '0'}e{_EXPONENTS[letter]}")
-    raise ValueParseError(
-        raw,
-        "not a number, an SI-prefixed number or an IEC 60062 code",
-        hint="write e.g. 4700, 4.7k, 4k7, R47, 2M2, 100n or 4u7",
-    )
+    written: str | None = None
+    m = _WITH_UNIT.match(s)
+    if m and m.group("num") and (m.group("num")[-1:].isdigit() or not m.group("prefix")):
+        num, prefix, written = m.group("num"), m.group("prefix"), _unit_symbol(m.group("unit"))
+        if prefix and not _PLAIN.match(num):
+            raise ValueParseError(
+                raw, "a multiplier is written twice", hint=f"write e.g. {_EXAMPLES[written]}"
+            )
+        s = num + prefix
+    if any(ch.isspace() for ch in s):
+        raise ValueParseError(
+            raw,
+            "has a space inside the value",
+            hint="write the value without spaces (a tolerance goes after one space: "
+            '"6k8 5%"); one space may only separate a number from its unit: "6.8 kΩ"',
+        )
+    value, letter = _number(s, raw)
+    if unit is None:
+        return value
+    example = _EXAMPLES.get(unit, "")
+    if written is not None and written != unit:
+        expected = f"a {UNITS[unit]} in {unit}" if unit else "a plain number (no unit)"
+        raise ValueParseError(
+            raw,
+            f"unit {written} is a {UNITS[written]}, where {expected} is expected",
+            hint=f"write e.g. {example}",
+        )
+    if letter is not None and letter in _IMPLAUSIBLE.get(unit, frozenset()):
+        shown = f"{format_si(value)}{unit}".replace("u", "µ")
+        raise ValueParseError(
+            raw,
+            f"would be {shown}: {letter!r} does not make a {UNITS[unit]} of a real part "
+            "(is it the value of another component?)",
+            hint=f"write e.g. {example}",
+        )
+    return value
 
 
 _TOL_SYM = re.compile(r"^(?:±|\+/-|\+-)?(\d+\.?\d*|\.\d+)%$")
@@ -138,8 +222,13 @@ def split_value_tolerance(text: str) -> tuple[str, str | None]:
     """Split ``"4k7 1%"``, ``"4k7 ±1%"`` or the IEC form ``"4K7J"`` into value and tolerance."""
     s = text.strip()
     parts = s.split()
+    if len(parts) >= 2 and _is_tolerance(parts[-1]):
+        # "4k7 1%", "4.7 kΩ 1%": the last word is the tolerance, the rest the value
+        return " ".join(parts[:-1]), parts[-1]
+    if len(parts) == 2 and not _WITH_UNIT.match(s):
+        return parts[0], parts[1]  # "6k8 5": a tolerance without %, refused as such
     if len(parts) == 2:
-        return parts[0], parts[1]
+        return s, None  # "4.7 kΩ": a value with its unit
     if len(parts) == 1:
         # IEC 60062 code with trailing tolerance letter: 4K7J, 470RF, 2M2K
         m = re.match(r"^(\d*[RKMG]\d*)([BCDFGJKM])$", s)
@@ -147,6 +236,14 @@ def split_value_tolerance(text: str) -> tuple[str, str | None]:
             return m.group(1), m.group(2)
         return s, None
     raise ValueParseError(text, "expected a value and an optional tolerance, e.g. '4k7 1%'")
+
+
+def _is_tolerance(word: str) -> bool:
+    try:
+        parse_tolerance(word)
+    except ValueParseError:
+        return "%" in word  # a malformed percentage is still meant as the tolerance
+    return not word.replace(".", "").isdigit()  # a bare 0.05 is a value, not a tolerance
 
 
 @dataclass(frozen=True)

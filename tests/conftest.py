@@ -12,11 +12,10 @@ import shutil
 from pathlib import Path
 
 import pytest
-from spice_runner import run_ngspice
 
-REPO = Path(__file__).resolve().parent.parent
-LIMITS_DIR = REPO / "limits"
-FIXTURES_DIR = REPO / "fixtures"
+from harness.io.toml import load_board
+from tests.support.bench import BOARD_FILE
+from tests.support.spice import run_ngspice
 
 
 def _require_tool(name: str, package: str) -> str:
@@ -49,3 +48,16 @@ def spice(ngspice: str, tmp_path: Path):
         return run_ngspice(ngspice, netlist, tmp_path, timeout_s)
 
     return _run
+
+
+@pytest.fixture(scope="session")
+def board():
+    """The demo twin preamp (limits/demo-twin-preamp.toml), loaded once."""
+    return load_board(BOARD_FILE)
+
+
+@pytest.fixture(scope="session")
+def limits(board):
+    from harness.model import compute_limits
+
+    return compute_limits(board)

@@ -3,10 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import json
 
-from harness.cli.capture import read_capture
+from harness import jsontext
 from harness.errors import AnalysisError
+from harness.io.capture import read_capture
 from harness.measure import analyze_record
 
 
@@ -70,15 +70,17 @@ def run(args: argparse.Namespace) -> int:
     )
     d = res.to_dict()
     if args.json:
-        print(json.dumps({"capture": cap.path, **d}, indent=2))
+        print(jsontext.dumps({"capture": cap.path, **d}, indent=2))
         return 0
-    from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
+
+    from harness.cli.term import make_console
 
     def fmt(v: float | None, spec: str, unit: str = "") -> str:
         return "—" if v is None else f"{v:{spec}}{unit}"
 
-    t = Table(title=f"{cap.path}: {cap.n_samples} samples", show_header=False)
+    t = Table(title=Text(f"{cap.path}: {cap.n_samples} samples"), show_header=False)
     t.add_column("quantity", style="bold")
     t.add_column("value")
     t.add_row(
@@ -98,6 +100,6 @@ def run(args: argparse.Namespace) -> int:
     t.add_row("clipping", f"yes, {res.clip_side} half-cycle" if res.clipped else "no")
     t.add_row("floor", f"THD {res.floor.thd_percent:.2g} %, THD+N {res.floor.thdn_percent:.2g} %")
     if res.over_range:
-        t.add_row("[red]over-range[/red]", str(res.reason))
-    Console().print(t)
+        t.add_row(Text("over-range", style="red"), str(res.reason))
+    make_console().print(t)
     return 0

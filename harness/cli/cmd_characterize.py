@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.cli.run_args import RichProgress, add_bench_files, add_db, add_settle_wait
+from harness.cli.term import make_console
 from harness.run.characterize import CharacterizationResult, CharacterizeOptions
 
 
@@ -49,11 +50,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
+    from rich.text import Text
 
-    from harness.instruments.bench import connect
     from harness.run.characterize import characterize
-    from harness.run.runner import prepare, validate_serial
+    from harness.run.runner import ensure_limits, prepare, validate_serial
+    from harness.run.safety import safe_station
     from harness.store import DEFAULT_DB, open_store
 
     serial = validate_serial(args.serial)
@@ -69,18 +70,22 @@ def run(args: argparse.Namespace) -> int:
         settle_wait_s=args.settle_wait,
         max_points=args.max_points,
     )
-    prep = prepare(args.board, args.fixture, args.station)
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
     from dataclasses import replace
 
     opts = replace(opts, station_name=getattr(prep.station, "name", "") or args.station)
-    console = Console(highlight=False)
+    console = make_console()
     console.print(
-        f"[bold]{prep.board.name}[/bold] ({prep.board.part_number}), prototype "
-        f"{serial}: characterisation"
+        Text.assemble(
+            (prep.board.name, "bold"),
+            f" ({prep.board.part_number}), prototype {serial}: characterisation",
+        )
     )
-    with open_store(args.db or DEFAULT_DB) as store:
-        store.recover_aborted()
-        with connect(prep.station) as inst:
+    # lock and make the station safe first; then the limits, the store and the sweeps
+    with safe_station(prep.station) as inst:
+        prep = ensure_limits(prep)
+        with open_store(args.db or DEFAULT_DB) as store:
+            store.recover_aborted()
             result = characterize(
                 inst,
                 prep.board,

@@ -10,6 +10,7 @@ to 1.5x (channel B clips early on one half-cycle), and prints the verdicts.
 from __future__ import annotations
 
 import argparse
+import shlex
 import tempfile
 import time
 from dataclasses import dataclass
@@ -55,7 +56,7 @@ def run_demo(
     db: str | Path, workdir: Path, *, progress_console=None, settle_wait_s: float | None = None
 ) -> list[tuple[DemoBoard, object]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
-    from harness.files import load_board
+    from harness.io.toml import load_board
     from harness.model import compute_limits
     from harness.run.runner import execute, packaged, prepare
     from harness.run.sequence import RunOptions
@@ -90,10 +91,12 @@ def run_demo(
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
-    console = Console()
+    from harness.cli.term import make_console
+
+    console = make_console()
     t0 = time.perf_counter()
     tmp = tempfile.mkdtemp(prefix="stageproof-demo-")
     workdir = Path(tmp)
@@ -119,14 +122,32 @@ def run(args: argparse.Namespace) -> int:
         table.add_row(
             demo.serial,
             demo.story,
-            f"[{colour}]{res.verdict}[/{colour}]",
+            Text(str(res.verdict), style=colour),
             ", ".join(failing) or "-",
         )
     console.print(table)
-    console.print(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s", highlight=False)
+    console.print(
+        Text(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s"), highlight=False
+    )
     if args.keep:
-        console.print(f"working folder kept: {workdir}", highlight=False)
+        console.print(Text(f"working folder kept: {workdir}"), highlight=False)
+    console.print("next, on the demo's results:", highlight=False)
+    for line in follow_up_commands(args.db):
+        console.print(Text(f"  {line}"), highlight=False, soft_wrap=True)
     return 0
+
+
+def follow_up_commands(db: str | Path) -> list[str]:
+    """The commands to look at the demo's results, each with ``--db`` of the demo's database:
+    without it they would look for the default results file and find none."""
+    q = shlex.quote(str(db))
+    _good, gain_fault, bias_fault = (d.serial for d in DEMO_BOARDS)
+    return [
+        f"stageproof results --db {q}",
+        f"stageproof report board --db {q} --serial {gain_fault}",
+        f"stageproof diagnose {bias_fault} --db {q}",
+        f"stageproof report summary --db {q}",
+    ]
 
 
 def _accepted(decision: str) -> bool:

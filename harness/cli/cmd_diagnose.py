@@ -8,14 +8,14 @@ prints the top candidates with the evidence for each.  ``--json`` for other prog
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 from typing import Any
 
+from harness import jsontext
 from harness.diagnose import Candidate, Diagnosis, diagnose_run
 from harness.errors import StoreError
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.store import DEFAULT_DB, open_store
 
 
@@ -62,7 +62,7 @@ def run(args: argparse.Namespace) -> int:
     for w in diag.warnings:
         print(f"warning: {w}", file=sys.stderr)
     if args.json:
-        print(json.dumps(diag.to_dict(top=args.top), indent=2, default=_json))
+        print(jsontext.dumps(diag.to_dict(top=args.top), indent=2, default=_json))
         return 0
     _print(diag, args.top)
     return 0
@@ -85,12 +85,16 @@ def _fmt(x: Any) -> str:
 
 
 def _print(diag: Diagnosis, top: int) -> None:
-    from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
-    console = Console(width=120) if not sys.stdout.isatty() else Console()
+    from harness.cli.term import make_console
+
+    console = make_console(width=120) if not sys.stdout.isatty() else make_console()
     console.print(
-        f"[bold]Diagnosis[/bold] serial {diag.serial}, run {diag.run_id}, {diag.board_name}"
+        Text.assemble(
+            ("Diagnosis", "bold"), f" serial {diag.serial}, run {diag.run_id}, {diag.board_name}"
+        )
     )
     if diag.screened_out:
         console.print(
@@ -111,7 +115,7 @@ def _print(diag: Diagnosis, top: int) -> None:
         )
     console.print(t)
     for i, c in enumerate(diag.top(min(top, 3)), start=1):
-        e = Table(title=f"#{i} {_label(c)}: evidence", title_justify="left")
+        e = Table(title=Text(f"#{i} {_label(c)}: evidence"), title_justify="left")
         for col in ("measurement", "measured", "predicted", "sigma", "z"):
             e.add_column(col)
         for ev in c.evidence:

@@ -8,13 +8,14 @@ the output; polarity) or, with ``--json``, the full limits with their provenance
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 
-from harness.files import load_board
+from harness import jsontext
+from harness.io.toml import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
+from harness.run.runner import check_limits_memory
 
 #: 0 dBu is the voltage that dissipates 1 mW in 600 ohm: sqrt(0.6) = 0.7746 V rms.
 DBU_REF_VRMS = math.sqrt(0.6)
@@ -69,6 +70,37 @@ def _f(x: float | None, fmt: str) -> str:
     return "-" if x is None or not math.isfinite(x) else format(x, fmt)
 
 
+#: The share of Monte Carlo boards below which the majority clipping side is no better
+#: than a coin toss: between 40/60 and 60/40 the side depends on where each board's parts
+#: fall within tolerance, and a measured side says little about a fault.
+COIN_TOSS_SHARE = 0.6
+
+#: Headers of the two worst-case columns: what was evaluated, not a claimed bracket.
+CORNER_COLUMNS = ("corner pushed low", "corner pushed high")
+CORNER_NOTE = (
+    "low/high: Monte Carlo limits (central interval of the boards).  corner pushed low/high: "
+    "the quantity with every part at a tolerance end, each the way that alone lowers/raises "
+    "it; where the quantity is not monotonic in a part (the swing-limited threshold is the "
+    "lesser of two swings) boards can fall outside them: not a worst-case bracket."
+)
+
+
+def side_text(fractions: dict[str, float], nominal: str) -> str:
+    """Which half-cycle of the output clips first, as the Monte Carlo boards say: the
+    majority side with its share, or "a coin toss" where neither side has a clear
+    majority (the nominal design's side then named as such)."""
+    pos = float(fractions.get("positive", 0.0))
+    neg = float(fractions.get("negative", 0.0))
+    major, share, other = ("positive", pos, neg) if pos >= neg else ("negative", neg, pos)
+    if share < COIN_TOSS_SHARE:
+        return (
+            f"either half-cycle of the output, a coin toss (positive {pos:.1%} / negative "
+            f"{neg:.1%} of boards; the nominal design: {nominal})"
+        )
+    minority = "negative" if major == "positive" else "positive"
+    return f"{major} half-cycle of the output on {share:.1%} of boards ({minority} on {other:.1%})"
+
+
 _WC_KEYS = {
     "gain": "gain_db",
     "clipping threshold": "clip_input_vrms",
@@ -92,12 +124,16 @@ def _row(table, ch, lim: Limit, fmt: str, unit: str, scale: float = 1.0) -> None
 
 def run(args: argparse.Namespace) -> int:
     board = load_board(args.board)
+    if args.samples is not None:
+        check_limits_memory(board, args.samples, "--samples")
+    else:
+        check_limits_memory(board, board.policy.samples, "board file limits.samples")
     limits = compute_limits(board, samples=args.samples, seed=args.seed)
     if args.json:
         doc = limits.to_dict()
         doc["digest"] = limits.digest
         doc["board"]["file"] = board.source
-        json.dump(doc, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write(jsontext.dumps(doc, indent=2, sort_keys=True))
         sys.stdout.write("\n")
         return 0
     _print_tables(board, limits)
@@ -105,13 +141,18 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _print_tables(board, limits: BoardLimits) -> None:
-    from rich.console import Console
     from rich.table import Table
+    from rich.text import Text
 
-    console = Console()
+    from harness.cli.term import make_console
+
+    console = make_console()
     prov = limits.provenance
     console.print(
-        f"[bold]{limits.board}[/bold]  {limits.part_number} rev {limits.revision}  ({board.source})"
+        Text.assemble(
+            (limits.board, "bold"),
+            f"  {limits.part_number} rev {limits.revision}  ({board.source})",
+        )
     )
     console.print(
         f"Monte Carlo: {prov.samples} boards, coverage {prov.coverage:g}, seed "
@@ -122,12 +163,16 @@ def _print_tables(board, limits: BoardLimits) -> None:
     for name, ch in limits.channels.items():
         design = design_channel(board, name)
         table = Table(
-            title=f"channel {name}  ({'inverting' if ch.inverting else 'non-inverting'}"
-            f", phase {ch.phase_deg:g}°)",
+            title=Text(
+                f"channel {name}  ({'inverting' if ch.inverting else 'non-inverting'}"
+                f", phase {ch.phase_deg:g}°)"
+            ),
             title_justify="left",
         )
-        for col in ("quantity", "nominal", "low", "high", "corner low", "corner high", "unit"):
+        for col in ("quantity", "nominal", "low", "high", *CORNER_COLUMNS, "unit"):
             table.add_column(col, justify="left" if col in ("quantity", "unit") else "right")
+        table.caption = CORNER_NOTE
+        table.caption_justify = "left"
 
         def row(lim: Limit, fmt: str, unit: str, scale: float = 1.0, _t=table, _c=ch) -> None:
             _row(_t, _c, lim, fmt, unit, scale)
@@ -141,13 +186,14 @@ def _print_tables(board, limits: BoardLimits) -> None:
         row(ch.supply_current_a, ".3f", "mA", 1e3)
         row(ch.low_corner_hz, ".2f", "Hz")
         console.print(table)
-        side = ch.clip_side_fraction
         console.print(
-            f"  clips first: stage [bold]{ch.clip_stage}[/bold], {ch.clip_side} half-cycle of the"
-            f" output (positive {side['positive']:.1%} / negative {side['negative']:.1%} of "
-            f"boards); output at nominal {ch.output_vrms_nominal:.4g} V rms; wait "
-            f"{ch.settle_time_s:.3g} s after a level change; workable boards "
-            f"{ch.workable_fraction:.2%}"
+            Text.assemble(
+                "  clips first: stage ",
+                (ch.clip_stage, "bold"),
+                f", {side_text(ch.clip_side_fraction, ch.clip_side)}; output at nominal "
+                f"{ch.output_vrms_nominal:.4g} V rms; wait {ch.settle_time_s:.3g} s after a "
+                f"level change; workable boards {ch.workable_fraction:.2%}",
+            )
         )
         for s in design.stages:
             if s.vc_v is not None:
@@ -164,7 +210,7 @@ def _print_tables(board, limits: BoardLimits) -> None:
         if ch.worst_case:
             missed = [k for k, w in ch.worst_case.items() if not w.covered]
             console.print(
-                "  worst-case corners: "
+                "  corners pushed low/high: "
                 + (
                     "inside the Monte Carlo limits"
                     if not missed

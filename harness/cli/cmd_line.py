@@ -13,15 +13,17 @@ reconnected).
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import unicodedata
 from typing import Any, Literal, TextIO
 
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
+from harness.cli.term import make_console
 from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
-from harness.run.runner import prepare
+from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
@@ -71,6 +73,35 @@ def read_line(stream: TextIO, limit: int = MAX_LINE) -> str | None:
     return line.rstrip("\r\n")
 
 
+def discard_typeahead(stream: TextIO) -> bool:
+    """Throw away whatever was typed on the terminal ``stream`` and not read yet; True when
+    something could be discarded this way (``stream`` is a terminal).
+
+    A line typed or scanned while a board is under test would otherwise become the answer
+    to the next prompt at once: the next board's serial before anyone could change the
+    board, so one physical board would be stored under two serials.  termios.tcflush with
+    TCIFLUSH drops data received but not read (POSIX termios, tcflush()).  Input that is
+    not a terminal (a pipe, a file) is a script written beforehand: its lines are taken in
+    order and nothing is discarded.  In canonical mode a terminal read returns at most one
+    line, so Python's own buffer holds nothing beyond the line already returned.
+    """
+    try:
+        fd = stream.fileno()
+    except (AttributeError, OSError, ValueError):
+        return False  # an in-memory stream: a script
+    if not os.isatty(fd):
+        return False
+    try:
+        import termios
+    except ImportError:  # not a POSIX system
+        return False
+    try:
+        termios.tcflush(fd, termios.TCIFLUSH)
+    except (termios.error, OSError):
+        return False
+    return True
+
+
 def check_operator(name: str) -> str:
     """An operator name: printable, at most 64 characters."""
     s = name.strip()
@@ -98,7 +129,9 @@ class StepProgress:
         if self.inner is not None:
             self.inner.step(name, text)
         else:
-            self.console.print(f"[dim]  {name}: {text}[/dim]", highlight=False)
+            from rich.text import Text
+
+            self.console.print(Text(f"  {name}: {text}", style="dim"))
 
     def measurement(self, row: Any) -> None:
         if self.inner is not None:
@@ -120,6 +153,9 @@ class TerminalUI:
         self.ink = "█" if "utf" in enc else "#"
 
     def prompt(self, text: str) -> str | None:
+        """Ask on a fresh line of input: anything typed on the terminal before the prompt
+        appears (while a board was under test) is discarded, see :func:`discard_typeahead`."""
+        discard_typeahead(self.stdin)
         self.console.print(text, end="", highlight=False, markup=False, soft_wrap=True)
         self.console.file.flush()
         return read_line(self.stdin)
@@ -175,8 +211,10 @@ class TerminalUI:
         )
 
     def testing(self, serial: str, retest: int) -> None:
+        from rich.text import Text
+
         flag = f"  RETEST #{retest}" if retest else ""
-        self.console.rule(f"testing {serial}{flag}")
+        self.console.rule(Text(f"testing {serial}{flag}"))
 
     def verdict(self, outcome: BoardOutcome, result: RunResult | None) -> None:
         from rich.align import Align
@@ -188,7 +226,7 @@ class TerminalUI:
         if outcome.outcome == "ABORTED":
             body = Text(f"ABORTED — {outcome.reason or 'no verdict'}", style="bold")
             self.console.print(
-                Panel(body, title=f"{serial} · {retest}", border_style="yellow", expand=False)
+                Panel(body, title=Text(f"{serial} · {retest}"), border_style="yellow", expand=False)
             )
             self.console.print(
                 f"VERDICT {serial}: ABORTED ({retest})", highlight=False, soft_wrap=True
@@ -207,8 +245,8 @@ class TerminalUI:
         self.console.print(
             Panel(
                 Group(*lines),
-                title=f"{serial} · {retest}",
-                subtitle=f"run {outcome.run_id}",
+                title=Text(f"{serial} · {retest}"),
+                subtitle=Text(f"run {outcome.run_id}"),
                 border_style="green" if ok else "red",
                 padding=(1, 2),
             )
@@ -292,46 +330,62 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any = None) -> int:
-    from rich.console import Console
-
     from harness.store import DEFAULT_DB
 
     stdin = stdin if stdin is not None else sys.stdin
-    console = console or Console(highlight=False)
+    console = console or make_console()
     if args.max_points is not None and args.max_points < 1:
         raise ValueParseError(str(args.max_points), "--max-points must be a positive count")
-    # Everything is read and the limits computed before the operator is asked anything.
-    prep = prepare(args.board, args.fixture, args.station)
-    ui = TerminalUI(console, stdin, details=args.details)
-    if args.operator is not None:
-        operator = check_operator(args.operator)
-    else:
-        operator = ""
-        while not operator:
-            try:
-                name = ui.prompt("operator> ")
-            except KeyboardInterrupt:
-                console.print("")
-                return 0
-            if name is None:
+    # Every file is read, the station locked and made safe (a crashed session may have left
+    # it driving a board) and the limits computed before the operator is asked anything.
+    from harness.run.safety import connect_safe
+    from harness.run.station_lock import station_lock
+
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
+    with station_lock(prep.station):
+        instruments = connect_safe(prep.station)
+        try:
+            prep = ensure_limits(prep)
+            ui = TerminalUI(console, stdin, details=args.details)
+            operator = _operator(args, ui, console)
+            if operator is None:
                 return 0  # nobody there: nothing tested
-            try:
-                operator = check_operator(name)
-            except ValueParseError as exc:
-                ui.message(str(exc), "error")
-    kw: dict[str, Any] = {}
-    if args.max_points is not None:
-        kw["max_points"] = args.max_points
-    options = run_args.run_options(
-        args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
-    )
-    summary = run_line(
-        prep,
-        args.db or DEFAULT_DB,
-        ui,
-        operator=operator,
-        options=options,
-        scanner_prefix=args.scanner_prefix,
-        scanner_suffix=args.scanner_suffix,
-    )
+            kw: dict[str, Any] = {}
+            if args.max_points is not None:
+                kw["max_points"] = args.max_points
+            options = run_args.run_options(
+                args, operator=operator, extra_frequencies=not args.no_extra_frequencies, **kw
+            )
+            handed, instruments = instruments, None  # the session closes it from here
+            summary = run_line(
+                prep,
+                args.db or DEFAULT_DB,
+                ui,
+                operator=operator,
+                options=options,
+                scanner_prefix=args.scanner_prefix,
+                scanner_suffix=args.scanner_suffix,
+                instruments=handed,
+            )
+        finally:
+            if instruments is not None:
+                instruments.close()
     return 2 if summary.error else 0
+
+
+def _operator(args: argparse.Namespace, ui: TerminalUI, console: Any) -> str | None:
+    """The operator's name from --operator, else asked once; None when nobody answers."""
+    if args.operator is not None:
+        return check_operator(args.operator)
+    while True:
+        try:
+            name = ui.prompt("operator> ")
+        except KeyboardInterrupt:
+            console.print("")
+            return None
+        if name is None:
+            return None
+        try:
+            return check_operator(name)
+        except ValueParseError as exc:
+            ui.message(str(exc), "error")

@@ -13,6 +13,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from harness import jsontext
 from harness.store import DEFAULT_DB
 
 
@@ -46,8 +47,8 @@ def _db(p: argparse.ArgumentParser) -> None:
 
 
 def _range(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--since", metavar="DATE", help="first day (YYYY-MM-DD, local) or date-time")
-    p.add_argument("--until", metavar="DATE", help="last day, included, or date-time")
+    p.add_argument("--since", metavar="DATE", help="first day (YYYY-MM-DD, UTC) or date-time")
+    p.add_argument("--until", metavar="DATE", help="last day, included, or date-time (UTC)")
     p.add_argument("--board", metavar="PN", help="only this part number or board name")
 
 
@@ -89,6 +90,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         help="output file (default: summary.html)",
     )
     summ.add_argument("--png", metavar="DIR", help="also write each histogram as PNG")
+    summ.add_argument(
+        "--json",
+        action="store_true",
+        help="print yield and each measurement's capability as JSON (the HTML is still written)",
+    )
     summ.set_defaults(func=_cmd_summary)
 
     exp = sub.add_parser(
@@ -143,15 +149,39 @@ def _cmd_summary(args: argparse.Namespace) -> int:
     path, s = write_summary_report(
         args.db, args.output, since=args.since, until=args.until, board=args.board, png_dir=args.png
     )
+    from harness.report.stats import CPK_MIN_BOARDS, CPK_THRESHOLD
+
     flagged = sum(m.capability.flagged for m in s.measurements)
+    few = sum(not m.capability.enough for m in s.measurements)
+    if getattr(args, "json", False):
+        doc = {
+            "db": s.db,
+            "output": str(path),
+            "runs_in_range": s.runs_in_range,
+            "serials": s.overall.serials,
+            "first_pass_yield": s.overall.first_pass,
+            "final_yield": s.overall.final,
+            "cpk_threshold": CPK_THRESHOLD,
+            "measurements": [
+                {"channel": m.channel, "name": m.name, "unit": m.unit, **m.capability.to_dict()}
+                for m in s.measurements
+            ],
+        }
+        sys.stdout.write(jsontext.dumps(doc, indent=2) + "\n")
+        return 0
 
     def pct(x: float) -> str:
         return "—" if x != x else f"{100 * x:.1f} %"  # NaN: no finished test in the range
 
+    cpk = f"{flagged} measurement(s) with Cpk under {CPK_THRESHOLD}"
+    if few:
+        cpk += (
+            f", {few} with too few boards for Cpk (n < {CPK_MIN_BOARDS}, common practice: "
+            "NIST/SEMATECH e-Handbook ch. 6)"
+        )
     print(
         f"summary: {s.runs_in_range} runs, {s.overall.serials} serials, first-pass yield "
-        f"{pct(s.overall.first_pass)}, final {pct(s.overall.final)}, "
-        f"{flagged} measurement(s) with Cpk under 1.33 -> {path}"
+        f"{pct(s.overall.first_pass)}, final {pct(s.overall.final)}, {cpk} -> {path}"
     )
     return 0
 

@@ -13,6 +13,8 @@ import sys
 from dataclasses import asdict
 from typing import TYPE_CHECKING, Any
 
+from harness import jsontext
+from harness.cli.run_args import value_text
 from harness.errors import ValueParseError
 from harness.store import (
     DEFAULT_DB,
@@ -75,7 +77,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         help="list and filter stored runs, or show one run's measurements",
         description="List runs stored in the results database (newest first), filtered by "
         "serial, status, verdict, date and board; --run ID shows that run's measurements "
-        "with their limits and decisions.",
+        "with their limits and decisions.  Times are UTC, shown and read alike.",
     )
     p.add_argument(
         "--db",
@@ -90,13 +92,14 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         "--since",
         type=_date,
         metavar="DATE",
-        help="started on or after (YYYY-MM-DD or ISO date-time, local time)",
+        help="started on or after (YYYY-MM-DD or ISO date-time; UTC, as listed, unless "
+        "an offset such as +02:00 is given)",
     )
     p.add_argument(
         "--until",
         type=_date,
         metavar="DATE",
-        help="started on or before (a bare date includes that whole day)",
+        help="started on or before (UTC; a bare date includes that whole day)",
     )
     p.add_argument("--board", metavar="PN", help="only this part number (or board name)")
     p.add_argument("--limit", type=_positive, metavar="N", help="at most N runs")
@@ -128,7 +131,7 @@ def run(args: argparse.Namespace) -> int:
         )
     rows = [{**r.summary(), "board_name": r.board_name} for r in runs]
     if args.json:
-        json.dump(rows, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(rows, indent=2))
         sys.stdout.write("\n")
     elif args.csv:
         _write_csv(rows, _LIST_FIELDS)
@@ -176,11 +179,11 @@ def _when(text: str | None) -> str:
 def _console() -> Console:
     """A console for the terminal's width; 160 columns when piped, so a file keeps
     whole rows instead of 80-column folds."""
-    from rich.console import Console
+    from harness.cli.term import make_console
 
-    console = Console()
+    console = make_console()
     if not console.is_terminal:
-        console = Console(width=160)
+        console = make_console(width=160)
     return console
 
 
@@ -192,7 +195,7 @@ def _list_table(db: str, rows: list[dict[str, Any]]) -> None:
     if not rows:
         console.print(f"no runs in {db} match")
         return
-    table = Table(title=f"runs in {db} (UTC)")
+    table = Table(title=Text(f"runs in {db} (UTC)"))
     for col in (
         "run",
         "serial",
@@ -236,10 +239,10 @@ def _show_run(
         head["limits_provenance"] = json.loads(prov) if prov else None
         doc = {
             "run": head,
-            "measurements": [asdict(m) for m in meas],
+            "measurements": [{**asdict(m), "reason": m.reason} for m in meas],
             "sweep_points": [asdict(p) for p in points],
         }
-        json.dump(doc, sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(doc, indent=2))
         sys.stdout.write("\n")
         return
     if args.csv:
@@ -297,10 +300,11 @@ def _show_run(
     ):
         table.add_column(col, overflow="fold")
     for m in meas:
+        words = m.name == "clip_side" or m.value is None
         cells = (
             m.channel,
             m.name,
-            _fmt(m.value),
+            value_text(m, unit=False) if words else _fmt(m.value),
             m.unit,
             _fmt(m.low),
             _fmt(m.high),

@@ -7,14 +7,17 @@ unwritable database, aborted run).
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from typing import Any
 
+from harness import jsontext
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
+from harness.cli.term import make_console, styled
+from harness.errors import RunAborted
 from harness.run.runner import execute, prepare, validate_serial
 from harness.run.sequence import RunResult
+from harness.store import utc_now
 
 __all__ = ["RichProgress", "print_verdict", "register", "run"]
 
@@ -23,22 +26,47 @@ def print_verdict(console: Any, result: RunResult, title: str | None = None) -> 
     """The final table: one line per channel, with the failing measurements named."""
     from rich.table import Table
 
-    table = Table(title=title or f"{result.serial}: {result.verdict or result.status}")
+    table = Table(title=styled(title or f"{result.serial}: {result.verdict or result.status}"))
     table.add_column("channel")
     table.add_column("verdict")
     table.add_column("not accepted")
     for ch, v in result.channels.items():
         colour = "green" if v.verdict == "PASS" else "red"
-        table.add_row(ch, f"[{colour}]{v.verdict}[/{colour}]", ", ".join(v.failing) or "-")
+        table.add_row(styled(ch), styled(v.verdict, colour), styled(", ".join(v.failing) or "-"))
     console.print(table)
     if result.reason:
-        console.print(f"reason: {result.reason}")
+        console.print(styled(f"reason: {result.reason}"))
     console.print(
         f"run {result.run_id}, retest {result.retest}, {result.acquisitions} "
         f"acquisitions ({result.search_acquisitions} in the clipping search), "
         f"{result.elapsed_s:.1f} s; {result.settle_note}",
         highlight=False,
     )
+
+
+def interrupted_words(db: str, serial: str, since: str, *, supply: bool = True) -> str:
+    """What Ctrl-C left behind, in the words ``line`` uses: the sources' state and the run
+    stored as aborted (read back from the store, never assumed)."""
+    from harness.errors import StageproofError
+    from harness.store import open_store
+
+    what = "interrupted by the operator (Ctrl-C)"
+    try:
+        with open_store(db, readonly=True) as store:
+            runs = store.list_runs(serial=serial, since=since, limit=1)
+    except StageproofError:
+        runs = []
+    if not runs:
+        return f"{what} before the run began: nothing stored"
+    run = runs[0]
+    sources = "generator and supply" if supply else "generator"
+    if "output state unknown" in (run.reason or ""):
+        state = "generator output state UNKNOWN: check the generator" + (
+            "; supply switched off" if supply else ""
+        )
+    else:
+        state = f"{sources} switched off"
+    return f"{what}: {state}, run {run.run_id} stored as {run.status}"
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -58,24 +86,32 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from rich.console import Console
+    from rich.text import Text
 
     from harness.store import DEFAULT_DB
 
     serial = validate_serial(args.serial)  # before anything touches an instrument
-    prep = prepare(args.board, args.fixture, args.station)
-    console = Console(stderr=args.json)
+    # limits deferred: the station is made safe before the Monte Carlo runs
+    prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
+    console = make_console(stderr=args.json)
     progress = None if args.json else RichProgress(console)
     options = run_args.run_options(args, operator=args.operator)
     if not args.json:
         console.print(
-            f"[bold]{prep.board.name}[/bold] ({prep.board.part_number} rev "
-            f"{prep.board.revision}), serial {serial}",
-            highlight=False,
+            Text.assemble(
+                (prep.board.name, "bold"),
+                f" ({prep.board.part_number} rev {prep.board.revision}), serial {serial}",
+            )
         )
-    result = execute(prep, serial, args.db or DEFAULT_DB, options=options, progress=progress)
+    db = args.db or DEFAULT_DB
+    started = utc_now()
+    try:
+        result = execute(prep, serial, db, options=options, progress=progress)
+    except KeyboardInterrupt:
+        has_supply = prep.station.get("supply") is not None
+        raise RunAborted(interrupted_words(db, serial, started, supply=has_supply)) from None
     if args.json:
-        json.dump(result.to_dict(), sys.stdout, indent=2)
+        sys.stdout.write(jsontext.dumps(result.to_dict(), indent=2))
         sys.stdout.write("\n")
     else:
         print_verdict(console, result)

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import StageproofError
-from harness.files import load_board
+from harness.io.toml import load_board
 
 LOOPBACK = "127.0.0.1"
 
@@ -80,6 +80,8 @@ def _serve(
     if not 0 <= args.port_base <= 65535 - 5:
         raise _UsageError(f"--port-base {args.port_base} is not a TCP port (0-65530)")
     board = load_board(args.board)
+    for option, path in (("--station-out", args.station_out), ("--fixture-out", args.fixture_out)):
+        _check_out(option, path)
     if args.host != LOOPBACK:
         print(
             f"stageproof: warning: listening on {args.host}, not loopback: anyone who can "
@@ -107,8 +109,14 @@ def _serve(
         for sig in (signal.SIGINT, signal.SIGTERM):
             old[sig] = signal.signal(sig, lambda *_: stop.set())
     try:
-        bench.write_station(args.station_out)
-        bench.write_fixture(args.fixture_out)
+        try:
+            bench.write_station(args.station_out)
+            bench.write_fixture(args.fixture_out)
+        except OSError as exc:
+            raise _UsageError(
+                f"cannot write {exc.filename or args.station_out}: {exc.strerror or exc}",
+                hint="give --station-out / --fixture-out a file in a folder you can write",
+            ) from None
         print(f"simulated bench for {board.name} ({board.part_number})")
         for role, resource in bench.resources.items():
             print(f"  {role:<9} {resource}")
@@ -130,6 +138,21 @@ def _serve(
             signal.signal(sig, handler)
     print("stopped", flush=True)
     return 0
+
+
+def _check_out(option: str, path: Path) -> None:
+    """An output file the bench can write: before any port is opened, so a wrong path never
+    leaves a bench serving that nobody can find."""
+    if path.is_dir():
+        raise _UsageError(
+            f"{option} {path} is a folder", hint=f"give a file name, e.g. {path / 'station.toml'}"
+        )
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise _UsageError(
+            f"{option} {path}: folder {parent} does not exist",
+            hint=f"create it (mkdir -p {parent}) or choose another path",
+        )
 
 
 class _UsageError(StageproofError, ValueError):

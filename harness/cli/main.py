@@ -56,23 +56,36 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if getattr(args, "func", None) is None:
-        parser.print_help()
-        return 2
-    if args.verbose:
-        import logging
+    """Run one sub-command; its exit status (0 PASS or done, 1 FAIL, 2 error or aborted).
 
-        logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
+    Ctrl-C anywhere, start-up included (reading files, computing limits, connecting), ends
+    in one line and status 2 like any other abort: 1 would read as FAIL to a script, and a
+    command that tests boards reports what it switched off and stored itself."""
     try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if getattr(args, "func", None) is None:
+            parser.print_help()
+            return 2
+        if args.verbose:
+            import logging
+
+            logging.basicConfig(level=logging.DEBUG, format="%(name)s: %(message)s")
         return int(args.func(args) or 0)
     except StageproofError as exc:
         print(f"stageproof: error: {exc}", file=sys.stderr)
         return exc.exit_status
     except KeyboardInterrupt:
-        print("stageproof: interrupted", file=sys.stderr)
-        return 130
+        print("stageproof: error: interrupted by the operator (Ctrl-C)", file=sys.stderr)
+        return 2
+    except RecursionError:
+        # Only a pathological input gets here (the file readers refuse deep nesting first).
+        print(
+            "stageproof: error: input nested too deeply to process (fix: check the file "
+            "for runaway brackets)",
+            file=sys.stderr,
+        )
+        return 2
     except BrokenPipeError:
         return 0
 

@@ -214,6 +214,19 @@ class Generator(_SwitchedOutputs):
         """The amplitude the instrument reports (profile unit), if the profile can ask."""
         return self._ask(parse_number, "query_amplitude", output=self._output_no(output))
 
+    def level_readback_vrms(self, *, load_ohm: float = math.inf, output: int = 1) -> float | None:
+        """The level the instrument reports, as rms volts across ``load_ohm`` (the inverse
+        of :meth:`set_level`); None when the profile has no ``query_amplitude``."""
+        if not self.profile.has("query_amplitude"):
+            return None
+        return level_at_load(
+            self.amplitude_setting(output),
+            load_ohm=load_ohm,
+            unit=self.settings["amplitude_unit"],
+            calibrated_load_ohm=self.settings["calibrated_load"],
+            output_ohm=self.output_ohm,
+        )
+
     def safe_off(self) -> bool:
         """Best effort: every output off and read back.  Never raises; True when all are off."""
         return self._outputs_off(int(self.settings.get("outputs", 1)))
@@ -429,7 +442,9 @@ class Scope(_Driver):
         limits: dict[int, tuple[float, float]] = {}
         for n in wanted:
             cmd = self.profile.render("fetch", input=n)
-            data = self.session.query_block(cmd, fmt, big_endian=big, timeout_ms=tmo, retry=False)
+            data = self.session.query_block(
+                cmd, fmt, big_endian=big, timeout_ms=tmo, retry=False, max_points=self._points
+            )
             if len(data) != self._points:
                 self.session.check_errors(cmd)  # an instrument refusal explains it best
                 raise MalformedReply(

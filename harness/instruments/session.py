@@ -13,6 +13,9 @@ Everything the drivers send goes through :class:`Session`, which
   connection is taken as lost;
 - on a lost connection (instrument power-cycled, cable pulled) closes, reopens,
   re-identifies, runs the drivers' re-configure hooks and retries, a bounded number of times;
+- before any recovery (the resynchronisation after a timeout, every reconnect attempt) runs
+  its recovery hooks first: the run layer switches the generator off there, so a board is
+  never driven while an instrument is lost;
 - refuses an instrument whose ``*IDN?`` is not the one the station expects.
 
 Every I/O is logged at DEBUG on ``harness.instruments`` with the resource name.
@@ -39,8 +42,8 @@ from harness.errors import (
     MalformedReply,
     ScpiError,
 )
-from harness.instruments.profiles import Profile
 from harness.instruments.scpi import (
+    DATATYPES,
     NO_ERROR,
     Identity,
     decode_values,
@@ -48,6 +51,7 @@ from harness.instruments.scpi import (
     parse_error_reply,
     parse_idn,
 )
+from harness.io.profiles import Profile
 
 __all__ = ["Session", "resource_manager"]
 
@@ -119,6 +123,9 @@ class Session:
         self._broken = False
         self._in_reconnect = False
         self._hooks: list[Callable[[], None]] = []
+        self._recovery_hooks: list[Callable[[], None]] = []
+        #: How often this session had to recover (a timeout or a lost connection).
+        self.troubles = 0
 
     # --- life cycle -----------------------------------------------------------------------
 
@@ -136,6 +143,19 @@ class Session:
     def add_reconfigure_hook(self, hook: Callable[[], None]) -> None:
         """``hook()`` runs after every reconnect to restore the instrument's settings."""
         self._hooks.append(hook)
+
+    def add_recovery_hook(self, hook: Callable[[], None]) -> None:
+        """``hook()`` runs before every recovery attempt (resynchronise or reconnect); it
+        must not raise (an exception is logged and the recovery goes on)."""
+        self._recovery_hooks.append(hook)
+
+    def _before_recovery(self) -> None:
+        self.troubles += 1
+        for hook in self._recovery_hooks:
+            try:
+                hook()
+            except Exception as exc:  # a hook must never stop the recovery
+                log.error("%s recovery hook failed: %s", self.resource, exc)
 
     def open(self) -> Identity:
         """Open the resource, clear its status and check its identity (bounded retries)."""
@@ -180,6 +200,20 @@ class Session:
                 hint="check the instrument is on and the resource string; for USB/GPIB "
                 "the VISA backend needs its driver",
             ) from exc
+        except Exception as exc:
+            # pyvisa-py's TCPIP SOCKET session raises a bare Exception("could not connect:
+            # <status>") when the connection is not made within open_timeout (a host that
+            # drops the handshake, a listener with a full queue); other backends may do
+            # likewise.  Anything more specific is a defect and is not hidden.
+            if type(exc) is not Exception:
+                raise
+            raise ConnectionLost(
+                f"cannot open: {_backend_words(exc, self.timeout_ms)}",
+                resource=self.resource,
+                role=self.role,
+                hint="check the instrument is on, answers on the network and is not "
+                "serving another client; raise timeout_ms if it is slow to accept",
+            ) from exc
         res.timeout = self.timeout_ms
         res.write_termination = "\n"
         if _is_socket(self.resource) or _is_serial(self.resource):
@@ -220,6 +254,7 @@ class Session:
         with self._lock:
             self.reconnects += 1
             log.warning("%s (%s) reconnecting", self.resource, self.role)
+            self._before_recovery()
             self._open_resource()
             ident = self._identify()
             self._in_reconnect = True
@@ -291,11 +326,15 @@ class Session:
         log.debug("%s << %s", self.resource, reply if len(reply) < 200 else reply[:200] + "...")
         return reply
 
-    def _read_block_raw(self, command: str, timeout_ms: int | None) -> bytes:
+    def _read_block_raw(
+        self, command: str, timeout_ms: int | None, max_bytes: int | None = None
+    ) -> bytes:
         """Write ``command``, then read one definite-length block and its LF exactly.
 
         The termination character is switched off while the payload is read, so LF bytes
-        inside binary data do not split it.
+        inside binary data do not split it.  A header promising more than ``max_bytes`` (what
+        the caller expects) is refused before the payload is read: a corrupt or hostile
+        count of up to 999,999,999 bytes must not become an allocation of that size.
         """
         res = self._res
 
@@ -311,6 +350,11 @@ class Session:
                     parse_block_header(head + b"0" * 9)  # raises with the reason
                 head += res.read_bytes(int(head[1:2]))
                 _hlen, count = parse_block_header(head)
+                if max_bytes is not None and count > max_bytes:
+                    raise MalformedReply(
+                        f"block header promises {count} bytes, {max_bytes} expected",
+                        hint="check the scope's record length and data format settings",
+                    )
                 body = res.read_bytes(count + 1)
             finally:
                 res.set_visa_attribute(
@@ -395,7 +439,10 @@ class Session:
                         self.reconnect()
                     return fn()
                 except InstrumentTimeout as exc:
-                    if self._in_reconnect or self._alive():
+                    if self._in_reconnect:
+                        raise
+                    self._before_recovery()
+                    if self._alive():
                         raise
                     self._broken = True
                     last = self._typed(
@@ -408,6 +455,8 @@ class Session:
                 except ConnectionLost as exc:
                     self._broken = True
                     last = exc
+                    if not self._in_reconnect:
+                        self._before_recovery()
                 if attempt < attempts - 1:
                     log.warning("%s %s failed (%s); retrying", self.resource, command, last)
             assert last is not None
@@ -424,10 +473,18 @@ class Session:
         return self._run(command, lambda: self._query_raw(command, timeout_ms), retry=retry)
 
     def query_block_bytes(
-        self, command: str, *, timeout_ms: int | None = None, retry: bool = True
+        self,
+        command: str,
+        *,
+        timeout_ms: int | None = None,
+        retry: bool = True,
+        max_bytes: int | None = None,
     ) -> bytes:
-        """Send ``command`` and return the payload of its definite-length block reply."""
-        return self._run(command, lambda: self._read_block_raw(command, timeout_ms), retry=retry)
+        """Send ``command`` and return the payload of its definite-length block reply; a
+        block longer than ``max_bytes`` is refused unread (MalformedReply)."""
+        return self._run(
+            command, lambda: self._read_block_raw(command, timeout_ms, max_bytes), retry=retry
+        )
 
     def query_block(
         self,
@@ -437,9 +494,18 @@ class Session:
         big_endian: bool = True,
         timeout_ms: int | None = None,
         retry: bool = True,
+        max_points: int | None = None,
     ) -> np.ndarray:
-        """A binary block reply as a numpy array of ``datatype`` (int8, int16, float32)."""
-        payload = self.query_block_bytes(command, timeout_ms=timeout_ms, retry=retry)
+        """A binary block reply as a numpy array of ``datatype`` (int8, int16, float32); a
+        block of more than ``max_points`` elements is refused before it is read."""
+        cap = None
+        if max_points is not None:
+            cap = (
+                max_points * np.dtype(DATATYPES[datatype]).itemsize
+                if datatype in DATATYPES
+                else None
+            )
+        payload = self.query_block_bytes(command, timeout_ms=timeout_ms, retry=retry, max_bytes=cap)
         try:
             return decode_values(payload, datatype, big_endian=big_endian)
         except MalformedReply as exc:
@@ -509,6 +575,20 @@ class Session:
         if reply.strip() not in ("1", "+1"):
             raise self._typed(MalformedReply, f"*OPC? answered {reply!r}, expected 1", cmd)
         log.debug("%s operation complete after %.3f s", self.resource, time.perf_counter() - t0)
+
+
+def _backend_words(exc: Exception, timeout_ms: int) -> str:
+    """A VISA backend's bare exception in words: its text, with a numeric VISA status
+    code named (``-1073807339`` is ``VI_ERROR_TMO``, VPP-4.3 completion and error codes)."""
+    text = str(exc).strip() or "the VISA backend gave no reason"
+    head, _, code = text.rpartition(" ")
+    try:
+        status = constants.StatusCode(int(code))
+    except ValueError:
+        return text
+    if status == constants.StatusCode.error_timeout:
+        return f"{head} no connection within {timeout_ms} ms (timeout)"
+    return f"{head} {status.name}"
 
 
 def _connection_words(exc: OSError) -> str:

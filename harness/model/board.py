@@ -6,7 +6,7 @@ designator); transistor and op-amp parameters are :class:`Spread` ranges
 (min / typ / max) as data sheets give them.
 
 ``board_from_dict`` validates a parsed TOML document (no file I/O here: the reader is
-``harness.files.load_board``) and raises :class:`~harness.errors.BoardFileError`
+``harness.io.toml.load_board``) and raises :class:`~harness.errors.BoardFileError`
 naming the channel, stage and field of any mistake.
 """
 
@@ -19,7 +19,7 @@ from dataclasses import dataclass, field, fields
 from typing import Any, Literal
 
 from harness.errors import BoardFileError, ValueParseError
-from harness.files import FieldReader
+from harness.io.toml import FieldReader
 from harness.values import Toleranced, parse_quantity, parse_tolerance, split_value_tolerance
 
 #: Reverse beta when the transistor data gives none: small-signal silicon NPN parts have a
@@ -246,6 +246,13 @@ class Conditions:
     thd_limit_percent: float | None = None
 
 
+#: Most Monte Carlo boards a board file may ask for.  The model keeps every board's
+#: figures in memory (about 1 kB each, see harness.model.limits.limits_memory_bytes) and
+#: takes about 60 µs per board on a two-core machine (benchmarks/bench_memory.py), so a
+#: million is about a gigabyte and a minute; 1e7 was 8.7 GB and over 300 s.
+MAX_SAMPLES = 1_000_000
+
+
 @dataclass(frozen=True)
 class LimitPolicy:
     """How limits are made from tolerances, so a line can freeze and trace them."""
@@ -294,8 +301,8 @@ class _Reader(FieldReader):
 
     allowed_hint = "allowed fields here"
 
-    def __init__(self, path: str) -> None:
-        super().__init__(path, BoardFileError)
+    def __init__(self, path: str, doc: Any = None, raw: bytes | None = None) -> None:
+        super().__init__(path, BoardFileError, doc=doc, raw=raw)
 
     def quantity(
         self,
@@ -304,17 +311,22 @@ class _Reader(FieldReader):
         where: str,
         default: float | None = None,
         *,
+        unit: str,
         positive: bool = True,
+        line_at: tuple[Any, str] | None = None,
     ) -> float:
-        """A number, an SI-prefixed number or an RKM code (``4k7``), see harness.values."""
+        """A number, an SI-prefixed number or an RKM code (``4k7``) of the quantity ``unit``
+        measures ("" for a plain number), see harness.values.parse_quantity.  ``line_at``
+        (table, key) says where the value is written when ``data`` is not the file's own."""
         if key not in data:
             return self.absent(key, where, default, "<number>")
+        loc = self.located(f"{where}.{key}", *(line_at or (data, key)))
         try:
-            value = parse_quantity(data[key])
+            value = parse_quantity(data[key], unit)
         except ValueParseError as exc:
-            raise self.fail(f"{where}.{key}", exc.reason, exc.hint) from None
+            raise self.fail(loc, f"{exc.reason} ({data[key]!r})", exc.hint) from None
         if positive and not value > 0:
-            raise self.fail(f"{where}.{key}", f"must be greater than zero (got {value:g})")
+            raise self.fail(loc, f"must be greater than zero (got {value:g})")
         return value
 
     def spread(
@@ -323,6 +335,7 @@ class _Reader(FieldReader):
         key: str,
         where: str,
         *,
+        unit: str,
         required: bool = True,
         positive: bool = True,
     ) -> Spread | None:
@@ -335,13 +348,13 @@ class _Reader(FieldReader):
             )
         value = data[key]
         if not isinstance(value, Mapping):
-            v = self.quantity(data, key, where, positive=positive)
+            v = self.quantity(data, key, where, unit=unit, positive=positive)
             return Spread(v, v, v)
         self.known(value, {"min", "typ", "max"}, loc)
         nums = {}
         for k in ("min", "typ", "max"):
             if k in value:
-                nums[k] = self.quantity(value, k, loc, positive=positive)
+                nums[k] = self.quantity(value, k, loc, unit=unit, positive=positive)
         if "typ" not in nums:
             if "min" in nums and "max" in nums:
                 nums["typ"] = (
@@ -373,6 +386,8 @@ class _Reader(FieldReader):
                 raise self.fail(loc, "missing component", hint=f'add {key} = "<value> <tolerance>"')
             return None
         raw = data[key]
+        at = self.located(loc, data, key)  # where complaints about the value point
+        unit = _PART_UNITS[kind]
         ref = ""
         tol_text: Any = None
         if isinstance(raw, Mapping):
@@ -386,17 +401,18 @@ class _Reader(FieldReader):
             try:
                 value_text, tol_text = split_value_tolerance(raw)
             except ValueParseError as exc:
-                raise self.fail(loc, exc.reason, exc.hint) from None
+                raise self.fail(at, f"{exc.reason} ({raw!r})", exc.hint) from None
         else:
             value_text = raw
         try:
-            value = parse_quantity(value_text)
+            value = parse_quantity(value_text, unit)
         except ValueParseError as exc:
-            raise self.fail(loc, f"{exc.reason} ({value_text!r})", exc.hint) from None
+            what = f"{key} is a {kind}: " if exc.reason.startswith(("unit ", "would be")) else ""
+            raise self.fail(at, f"{what}{exc.reason} ({value_text!r})", exc.hint) from None
         if value < 0 or (value == 0 and not allow_zero):
             what = "resistance" if kind == "resistor" else "value"
             raise self.fail(
-                loc,
+                at,
                 f"{what} must be greater than zero (got {value:g})",
                 hint="remove the component if it is not fitted",
             )
@@ -404,15 +420,24 @@ class _Reader(FieldReader):
             tol_text = default_tol
         if tol_text is None:
             raise self.fail(
-                loc,
+                at,
                 "no tolerance given",
                 hint=f'write e.g. {key} = "{value_text} 1%" or set a default in [tolerances]',
             )
         try:
             minus, plus = parse_tolerance(tol_text)
         except ValueParseError as exc:
-            raise self.fail(loc, exc.reason, exc.hint) from None
+            raise self.fail(at, f"{exc.reason} ({tol_text!r})", exc.hint) from None
         return Part(nominal=value, tol_minus=minus, tol_plus=plus, ref=ref or loc, kind=kind)
+
+
+#: The unit each kind of part is written in (SI symbols, see harness.values.UNITS).
+_PART_UNITS: dict[str, str | None] = {
+    "resistor": "Ω",
+    "capacitor": "F",
+    "voltage": "V",
+    "other": None,
+}
 
 
 def _file_fields(cls: type) -> set[str]:
@@ -441,8 +466,8 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
             f"polarity {polarity!r} is not supported",
             hint='describe NPN stages (polarity = "npn")',
         )
-    vaf = rd.quantity(data, "vaf_v", where, default=0.0, positive=False) or None
-    early = rd.spread(data, "early_v", where, required=False)
+    vaf = rd.quantity(data, "vaf_v", where, default=0.0, unit="V", positive=False) or None
+    early = rd.spread(data, "early_v", where, unit="V", required=False)
     if early is not None:
         if vaf is not None:
             raise rd.fail(
@@ -454,12 +479,12 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
     return Transistor(
         name=name,
         polarity="npn",
-        beta=rd.spread(data, "beta", where),  # type: ignore[arg-type]
-        is_a=rd.spread(data, "is_a", where),  # type: ignore[arg-type]
-        vce_sat_v=rd.spread(data, "vce_sat_v", where),  # type: ignore[arg-type]
+        beta=rd.spread(data, "beta", where, unit=""),  # type: ignore[arg-type]
+        is_a=rd.spread(data, "is_a", where, unit="A"),  # type: ignore[arg-type]
+        vce_sat_v=rd.spread(data, "vce_sat_v", where, unit="V"),  # type: ignore[arg-type]
         vaf_v=vaf,
-        vbe_v=rd.spread(data, "vbe_v", where, required=False),
-        beta_r=rd.spread(data, "beta_r", where, required=False),
+        vbe_v=rd.spread(data, "vbe_v", where, unit="V", required=False),
+        beta_r=rd.spread(data, "beta_r", where, unit="", required=False),
         early_v=early,
     )
 
@@ -472,13 +497,13 @@ def _opamp(rd: _Reader, name: str, data: Any, where: str) -> OpAmp:
         {"headroom_v", "gbw_hz", "open_loop_gain", "output_current_a", "quiescent_a", "note"},
         where,
     )
-    q = rd.spread(data, "quiescent_a", where, required=False)
+    q = rd.spread(data, "quiescent_a", where, unit="A", required=False)
     return OpAmp(
         name=name,
-        headroom_v=rd.spread(data, "headroom_v", where),  # type: ignore[arg-type]
-        gbw_hz=rd.quantity(data, "gbw_hz", where, default=1e6),
-        open_loop_gain=rd.quantity(data, "open_loop_gain", where, default=1e5),
-        output_current_a=rd.quantity(data, "output_current_a", where, default=0.02),
+        headroom_v=rd.spread(data, "headroom_v", where, unit="V"),  # type: ignore[arg-type]
+        gbw_hz=rd.quantity(data, "gbw_hz", where, default=1e6, unit="Hz"),
+        open_loop_gain=rd.quantity(data, "open_loop_gain", where, default=1e5, unit=""),
+        output_current_a=rd.quantity(data, "output_current_a", where, default=0.02, unit="A"),
         quiescent_a=q or Spread(0.5e-3, 1e-3, 2e-3),
     )
 
@@ -620,7 +645,7 @@ def board_from_dict(
     ``raw`` is the file's bytes, hashed into ``Board.digest`` so every limit and result can
     name the exact board file it came from.
     """
-    rd = _Reader(path)
+    rd = _Reader(path, data, raw)
     rd.known(data, _TOP_FIELDS, "")
     head = rd.table(data, "board", missing_at="", wrong_hint="")
     rd.known(head, {"name", "part_number", "revision", "note"}, "board")
@@ -643,10 +668,11 @@ def board_from_dict(
     if "negative_v" in sup:
         try:
             neg_value, neg_tol = split_value_tolerance(str(sup["negative_v"]))
-            neg = parse_quantity(neg_value)
+            neg = parse_quantity(neg_value, "V")
             minus, plus = parse_tolerance(neg_tol or "0%")
         except ValueParseError as exc:
-            raise rd.fail("supply.negative_v", exc.reason, exc.hint) from None
+            loc = rd.located("supply.negative_v", sup, "negative_v")
+            raise rd.fail(loc, f"{exc.reason} ({sup['negative_v']!r})", exc.hint) from None
         if not neg < 0:
             raise rd.fail("supply.negative_v", "the negative rail must be below zero")
         negative = Part(
@@ -675,7 +701,13 @@ def board_from_dict(
     if not isinstance(extra, list):
         raise rd.fail("conditions.extra_frequencies_hz", "must be a list of frequencies")
     extra_hz = tuple(
-        rd.quantity({"f": f}, "f", f"conditions.extra_frequencies_hz[{i}]")
+        rd.quantity(
+            {f"extra_frequencies_hz[{i}]": f},
+            f"extra_frequencies_hz[{i}]",
+            "conditions",
+            unit="Hz",
+            line_at=(cond, "extra_frequencies_hz"),
+        )
         for i, f in enumerate(extra)
     )
     criterion = rd.text(cond, "clip_criterion", "conditions", default="thd").lower()
@@ -686,16 +718,20 @@ def board_from_dict(
             hint='use "thd" or "compression"',
         )
     conditions = Conditions(
-        frequency_hz=rd.quantity(cond, "frequency_hz", "conditions"),
-        nominal_input_vrms=rd.quantity(cond, "nominal_input_vrms", "conditions"),
-        safe_input_vrms=rd.quantity(cond, "safe_input_vrms", "conditions"),
-        source_ohm=rd.quantity(cond, "source_ohm", "conditions", default=50.0, positive=False),
+        frequency_hz=rd.quantity(cond, "frequency_hz", "conditions", unit="Hz"),
+        nominal_input_vrms=rd.quantity(cond, "nominal_input_vrms", "conditions", unit="V"),
+        safe_input_vrms=rd.quantity(cond, "safe_input_vrms", "conditions", unit="V"),
+        source_ohm=rd.quantity(
+            cond, "source_ohm", "conditions", default=50.0, unit="Ω", positive=False
+        ),
         extra_frequencies_hz=extra_hz,
         clip_criterion=criterion,  # type: ignore[arg-type]
-        clip_thd_percent=rd.quantity(cond, "clip_thd_percent", "conditions", default=1.0),
-        clip_compression_db=rd.quantity(cond, "clip_compression_db", "conditions", default=1.0),
+        clip_thd_percent=rd.quantity(cond, "clip_thd_percent", "conditions", default=1.0, unit=""),
+        clip_compression_db=rd.quantity(
+            cond, "clip_compression_db", "conditions", default=1.0, unit=""
+        ),
         thd_limit_percent=(
-            rd.quantity(cond, "thd_limit_percent", "conditions")
+            rd.quantity(cond, "thd_limit_percent", "conditions", unit="")
             if "thd_limit_percent" in cond
             else None
         ),
@@ -721,10 +757,14 @@ def board_from_dict(
     if (
         not isinstance(samples, int)
         or isinstance(samples, bool)
-        or not 100 <= samples <= 10_000_000
+        or not 100 <= samples <= MAX_SAMPLES
     ):
-        raise rd.fail("limits.samples", "must be a whole number from 100 to 10000000")
-    coverage = rd.quantity(lim, "coverage", "limits", default=0.9973)
+        raise rd.fail(
+            rd.located("limits.samples", lim, "samples"),
+            f"must be a whole number from 100 to {MAX_SAMPLES}",
+            hint="20000 boards give limits to a few parts in a thousand; more only costs time",
+        )
+    coverage = rd.quantity(lim, "coverage", "limits", default=0.9973, unit="")
     if not 0.5 <= coverage < 1.0:
         raise rd.fail("limits.coverage", "must be a fraction from 0.5 to below 1 (e.g. 0.9973)")
     seed = lim.get("seed", 1)

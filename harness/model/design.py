@@ -16,7 +16,7 @@ from typing import Literal
 import numpy as np
 
 from harness.errors import BoardFileError
-from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower
+from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower, stage_parts
 from harness.model.core import (
     THD_HARMONICS,
     ChannelArrays,
@@ -274,6 +274,35 @@ def large_signal_bias(
             out[f"{st.name}.emitter_v"] = float(ve[0])
             out[f"{st.name}.collector_v"] = float(vc[0])
     return out
+
+
+#: Longest wait after a level change the model may ask of a run.  The sequence waits the
+#: settle time after every level step (about ten per board), so a minute already makes a
+#: board take ten; a longer one means a capacitor whose value or unit is wrong (1000 F for
+#: 1 kΩ), not a board to wait for.
+MAX_SETTLE_S = 60.0
+
+
+def check_settle_time(board: Board, ch: Channel, settle_s: float) -> None:
+    """Refuse a derived wait over :data:`MAX_SETTLE_S` with a BoardFileError that names the
+    channel and its largest capacitor (the usual culprit).  The run layer calls it before it
+    waits the model's settle time (an operator's explicit wait is the operator's)."""
+    if math.isfinite(settle_s) and settle_s <= MAX_SETTLE_S:
+        return
+    caps = [
+        (part.nominal, f"stage {st.name} {name} = {part.nominal:g} F ({part.ref})")
+        for st in ch.stages
+        for name, part in stage_parts(st)
+        if part.kind == "capacitor"
+    ]
+    largest = f"; largest capacitor: {max(caps)[1]}" if caps else ""
+    raise BoardFileError(
+        board.source,
+        f"channel.{ch.name}",
+        f"settling time {settle_s:.3g} s after a level change (5 × the longest coupling time "
+        f"constant) is longer than the {MAX_SETTLE_S:g} s a run may wait{largest}",
+        hint="check the capacitors' values and units (farads: 2u2, 100n)",
+    )
 
 
 def validate_board(board: Board) -> None:

@@ -438,6 +438,24 @@ def _channel_limits(
     )
 
 
+#: Peak memory of the Monte Carlo per board drawn: a fixed part and a part per stage of the
+#: longest channel (the channels are evaluated one after the other).  Measured with
+#: tracemalloc on the demo boards (benchmarks/bench_memory.py): 817 B per board for
+#: one-stage channels, 1267 B for two-stage ones at 80,000 boards; the figures here carry a
+#: margin of about a third, and a fixed part for the worst-case corners and the nominal
+#: design (2.1 kB per board at 5,000 boards).
+MC_BYTES_PER_BOARD = 500
+MC_BYTES_PER_BOARD_STAGE = 600
+MC_BYTES_FIXED = 16 << 20
+
+
+def limits_memory_bytes(board: Board, samples: int) -> int:
+    """Estimated peak memory of :func:`compute_limits` with ``samples`` boards (bytes)."""
+    stages = max((len(ch.stages) for ch in board.channels), default=1)
+    per_board = MC_BYTES_PER_BOARD + MC_BYTES_PER_BOARD_STAGE * stages
+    return MC_BYTES_FIXED + int(samples) * per_board
+
+
 def compute_limits(
     board: Board, *, samples: int | None = None, seed: int | None = None, workers: int = 2
 ) -> BoardLimits:

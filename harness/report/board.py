@@ -123,7 +123,7 @@ def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> B
     ranking: the board file moved, the run holds nothing to diagnose from)."""
     from harness.diagnose import diagnose_run
     from harness.errors import StageproofError
-    from harness.files import load_board
+    from harness.io.toml import load_board
 
     run = report.run
     try:

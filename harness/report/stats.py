@@ -17,6 +17,13 @@ import pandas as pd
 #: outside on that side for a normal process) is common practice for an established process.
 CPK_THRESHOLD = 1.33
 
+#: Fewest boards (values) for which Cp and Cpk are shown.  With a handful of boards the
+#: sample s can be tiny by chance and the index absurd (two or three near-identical boards
+#: give Cpk in the millions); 25 or more subgroups/values before judging capability is the
+#: usual rule of thumb (common practice, e.g. the control-chart guidance of the
+#: NIST/SEMATECH e-Handbook of Statistical Methods, ch. 6).
+CPK_MIN_BOARDS = 25
+
 
 @dataclass(frozen=True)
 class Capability:
@@ -25,7 +32,9 @@ class Capability:
     ``sigma`` is the sample standard deviation s (n - 1 in the denominator), the estimate
     the handbook substitutes for σ.  ``cp`` needs both limits; ``cpk`` is the one-sided
     index (Cpu or Cpl) when only one limit exists.  None where it cannot be computed
-    (fewer than two values, no limit, or no spread at all).
+    (fewer than two values, no limit, or no spread at all).  Below :data:`CPK_MIN_BOARDS`
+    values the indices are computed but not to be shown: :attr:`enough` is False, nothing
+    is flagged, and :meth:`to_dict` and the reports say "too few boards".
     """
 
     n: int
@@ -39,9 +48,39 @@ class Capability:
     cpk: float | None
 
     @property
+    def enough(self) -> bool:
+        """True when there are enough values for the indices to mean anything."""
+        return self.n >= CPK_MIN_BOARDS
+
+    @property
+    def too_few_text(self) -> str | None:
+        """ "too few boards (n = 3, Cpk needs 25)" below :data:`CPK_MIN_BOARDS`, else None."""
+        if self.enough:
+            return None
+        return f"too few boards (n = {self.n}, Cpk needs {CPK_MIN_BOARDS})"
+
+    @property
     def flagged(self) -> bool:
-        """True when Cpk is known and under :data:`CPK_THRESHOLD`."""
-        return self.cpk is not None and self.cpk < CPK_THRESHOLD
+        """True when Cpk is known from enough boards and under :data:`CPK_THRESHOLD`."""
+        return self.enough and self.cpk is not None and self.cpk < CPK_THRESHOLD
+
+    def to_dict(self) -> dict[str, object]:
+        """The figures as shown: cp/cpk/cpu/cpl null (with ``note``) below the minimum n."""
+        shown = self.enough
+        return {
+            "n": self.n,
+            "mean": self.mean if self.n else None,
+            "s": self.sigma if self.n >= 2 else None,
+            "low": self.low,
+            "high": self.high,
+            "cp": self.cp if shown else None,
+            "cpk": self.cpk if shown else None,
+            "cpu": self.cpu if shown else None,
+            "cpl": self.cpl if shown else None,
+            "min_boards": CPK_MIN_BOARDS,
+            "flagged": self.flagged,
+            "note": self.too_few_text,
+        }
 
 
 def capability(

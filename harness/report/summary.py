@@ -27,7 +27,14 @@ from harness.errors import ValueParseError
 from harness.report import html as h
 from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Bars, Plot, Rule, histogram, render_svg
-from harness.report.stats import CPK_THRESHOLD, Capability, Yield, capability, yields
+from harness.report.stats import (
+    CPK_MIN_BOARDS,
+    CPK_THRESHOLD,
+    Capability,
+    Yield,
+    capability,
+    yields,
+)
 from harness.store import load_frame, parse_when
 
 
@@ -72,7 +79,7 @@ class Window:
 
 
 def date_window(since: str | None, until: str | None) -> Window:
-    """Parse ``--since``/``--until`` the way the store does (bare date = whole local day)."""
+    """Parse ``--since``/``--until`` the way the store does (bare date = whole UTC day)."""
 
     def parse(value: str | None, option: str, end: bool) -> pd.Timestamp | None:
         if value is None:
@@ -168,7 +175,7 @@ def summarise(
         raise ReportError(
             "--since/--until",
             f"no runs {span}" + (f" for board {board}" if board else ""),
-            hint="widen the date range (dates are YYYY-MM-DD, local time)",
+            hint="widen the date range (dates are YYYY-MM-DD, UTC)",
         )
     done = in_range[(in_range["status"] == "complete") & in_range["verdict"].notna()]
     keys = done[["part_number", "serial"]].drop_duplicates()
@@ -260,6 +267,8 @@ def _index(x: float | None) -> str:
 
 
 def _cpk_cell(cap: Capability) -> str:
+    if cap.cpk is not None and not cap.enough:
+        return f'<span class="muted">too few boards (n = {cap.n})</span>'
     if cap.cpk is None:
         return "—"
     if cap.flagged:
@@ -276,6 +285,8 @@ def _cap_note(m: MeasurementSummary) -> str:
         notes.append("one-sided: Cpk = " + ("Cpu" if cap.low is None else "Cpl"))
     if cap.n < 2:
         notes.append("too few values")
+    elif not cap.enough:
+        notes.append(f"too few boards for Cp/Cpk (n = {cap.n}, fewer than {CPK_MIN_BOARDS})")
     elif not cap.sigma > 0:
         notes.append("no spread")
     if m.limit_sets > 1:
@@ -339,7 +350,7 @@ def render_summary_html(s: SummaryReport, plots: list[Plot] | None = None) -> st
                 h.num(c.sigma),
                 h.num(c.low),
                 h.num(c.high),
-                _index(c.cp),
+                _index(c.cp) if c.enough else "—",
                 _cpk_cell(c),
                 str(m.not_pass),
                 _cap_note(m),
@@ -369,7 +380,9 @@ def render_summary_html(s: SummaryReport, plots: list[Plot] | None = None) -> st
         '<p class="muted">Cp = (USL − LSL)/(6s), Cpk = min(USL − mean, mean − LSL)/(3s), with '
         "s the sample standard deviation; with one limit, Cpk is that side's index "
         "(NIST/SEMATECH e-Handbook of Statistical Methods, §6.1.6). "
-        f"Cpk under {CPK_THRESHOLD} is flagged (common practice). One value per serial: its "
+        f"Cpk under {CPK_THRESHOLD} is flagged (common practice). Cp and Cpk are shown only "
+        f"from {CPK_MIN_BOARDS} boards on (fewer: too few boards; common practice, after the "
+        "control-chart guidance of the NIST/SEMATECH e-Handbook, ch. 6). One value per serial: its "
         "first finished test in the range. The indices assume a stable, roughly normal "
         "process; read them with the histograms.</p>"
     )

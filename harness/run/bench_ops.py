@@ -13,20 +13,21 @@ Only driver calls here, no SCPI text.
 from __future__ import annotations
 
 import contextlib
-import json
 import logging
 import math
+import time
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import asdict, replace
 from typing import Any, Literal, NoReturn
 
 import numpy as np
 
-from harness import __version__
+from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
-from harness.run.fixture import ChannelConnection, FixtureConfig
+from harness.model.design import check_settle_time
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
 from harness.store import MeasurementRow, RunHeader, SweepPointRow
 
@@ -34,6 +35,11 @@ from harness.store import MeasurementRow, RunHeader, SweepPointRow
 RANGE_FILL = 0.8
 #: A record using less than this fraction of its target fill is re-ranged down.
 RANGE_UNDERUSE = 0.35
+#: The input probe may read this much above the safe level before the run stops: the
+#: margin for the scope's gain accuracy (about 2-3 % for an 8-bit scope, common practice).
+MEASURED_SAFE_MARGIN = 0.05
+#: Acquisitions in a row that may be spoilt by an instrument recovering before giving up.
+MAX_RESTORES = 3
 
 log = logging.getLogger("harness.run")
 
@@ -139,25 +145,60 @@ def clip_criterion(board: Board) -> ClipCriterion:
     )
 
 
-def settle_time_s(limits: Any, fixture: FixtureConfig, override_s: float | None) -> float:
-    """The operator's settle time, else the longest the model gives a tested channel."""
+def settle_time_s(
+    limits: Any, fixture: FixtureConfig, override_s: float | None, board: Board | None = None
+) -> float:
+    """The operator's settle time, else the longest the model gives a tested channel; a
+    model wait over MAX_SETTLE_S (a capacitor's value or unit wrong) is refused with a
+    BoardFileError naming the channel when ``board`` is given, before anything waits."""
     if override_s is not None:
         return override_s
-    return max(float(limits.channels[c.board_channel].settle_time_s) for c in fixture.channels)
+    waits = {
+        c.board_channel: float(limits.channels[c.board_channel].settle_time_s)
+        for c in fixture.channels
+    }
+    if board is not None:
+        for name, wait in waits.items():
+            check_settle_time(board, board.channel(name), wait)
+    return max(waits.values())
 
 
 def safe_generator(
-    generator: Any, board: Board, fixture: FixtureConfig, max_step_up_db: float
+    generator: Any,
+    board: Board,
+    fixture: FixtureConfig,
+    max_step_up_db: float,
+    *,
+    on_alarm: Callable[[str], None] | None = None,
+    disturbances: Callable[[], int] | None = None,
 ) -> SafeGenerator:
-    """The generator behind the board's safe input level (rises above nominal ramp)."""
+    """The generator behind the board's safe input level: it switches on at no more than
+    the nominal level and every rise while on ramps."""
     cond = board.conditions
     return SafeGenerator(
         generator,
         cond.safe_input_vrms,
         direct_vrms=cond.nominal_input_vrms,
         max_step_up_db=max_step_up_db,
+        on_alarm=on_alarm,
+        disturbances=disturbances,
         output=fixture.generator_output,
     )
+
+
+def station_disturbances(instruments: Any) -> Callable[[], int] | None:
+    """A counter of every recovery on the station's sessions (None without sessions)."""
+    sessions = getattr(instruments, "sessions", None)
+    if not isinstance(sessions, dict) or not sessions:
+        return None
+
+    def count() -> int:
+        return sum(
+            int(getattr(s, "reconnects", 0) or 0) + int(getattr(s, "troubles", 0) or 0)
+            for s in sessions.values()
+        )
+
+    return count
 
 
 def supply_guard(fixture: FixtureConfig, supply: Any) -> SupplyGuard | None:
@@ -196,7 +237,7 @@ def run_header(
         board_name=board.name,
         board_file=board_file,
         board_digest=board.digest,
-        limits_json=json.dumps(limits_dict, sort_keys=True, default=json_default),
+        limits_json=jsontext.dumps(limits_dict, sort_keys=True, default=json_default),
         limits_digest=str(limits.digest),
         station=station,
         fixture=f"{fixture.name} ({fixture.path}, sha256 {fixture.digest}){fixture_note}",
@@ -204,7 +245,7 @@ def run_header(
         instruments={role: identity_text(i) for role, i in identities.items()},
         software_version=__version__,
         settle_note=settle_note,
-        limits_provenance=json.dumps(prov, sort_keys=True, default=json_default)
+        limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
     )
@@ -237,7 +278,20 @@ class RunLog:
         decision: str,
         step: str,
         detail: dict | None = None,
+        reason: str | None = None,
     ) -> MeasurementRow:
+        """Store, keep and show one decided measurement.  A value that could not be measured
+        (None or not finite) is stored as null with no uncertainty and always with a reason
+        in its detail (``reason``, the detail's own, or "not measured"), never silently."""
+        if value is not None and not math.isfinite(value):
+            reason = reason or f"reading not finite ({value})"
+            value = None
+        if value is None:
+            uncertainty = None
+            detail = dict(detail or {})
+            detail["reason"] = reason or detail.get("reason") or "not measured"
+        elif reason:
+            detail = {**(detail or {}), "reason": reason}
         row = MeasurementRow(
             channel=channel,
             name=name,
@@ -248,7 +302,7 @@ class RunLog:
             uncertainty=uncertainty,
             decision=decision,
             step=step,
-            detail_json=json.dumps(detail, default=json_default) if detail else None,
+            detail_json=jsontext.dumps(detail, default=json_default) if detail else None,
         )
         self.store.add_measurement(self.run_id, row)
         self.rows.append(row)
@@ -268,7 +322,7 @@ class RunLog:
                 thdn_percent=a.thdn_percent,
                 clipped=a.clipped,
                 clip_side=a.clip_side,
-                extra_json=json.dumps(extra, default=json_default),
+                extra_json=jsontext.dumps(extra, default=json_default),
             ),
         )
 
@@ -328,11 +382,12 @@ def run_guarded(
     shutdown: Callable[[], None],
     step: Callable[[], str],
     safe: SafeGenerator,
+    supply: SupplyGuard | None = None,
 ) -> tuple[Literal["complete", "aborted"], str | None, BaseException | None]:
     """Run ``steps`` (which may return a reason for stopping early) with SIGTERM raising and
     ``shutdown`` on every exit; any exception, Ctrl-C included, makes the run aborted with
     its reason at the current ``step()``.  Returns (status, reason, exception or None); an
-    unknown generator state is added to the reason."""
+    unknown generator or supply state (not read back off) is added to the reason."""
     status: Literal["complete", "aborted"] = "complete"
     reason: str | None = None
     error: BaseException | None = None
@@ -347,6 +402,8 @@ def run_guarded(
         reason = abort_reason(exc, step())
     if safe.output_state == "unknown":
         reason = (reason + "; " if reason else "") + "generator output state unknown"
+    if supply is not None and supply.output_state == "unknown":
+        reason = (reason + "; " if reason else "") + "supply output state unknown"
     return status, reason, error
 
 
@@ -425,7 +482,14 @@ def scope_inputs(channels: Iterable[ChannelConnection]) -> list[int]:
 
 class GroupScope:
     """The scope as both runs use it: ranges, timebase and trigger set only on change, a
-    group of channels acquired at once and analysed.  ``note`` hears every re-range."""
+    group of channels acquired at once and analysed.  ``note`` hears every re-range.
+
+    With ``safe`` every acquisition checks the level the input probes measure against the
+    board's safe input level (a wrong profile or probe factor makes the real level differ
+    from the commanded one): above it, the generator is switched off and the run stops
+    with a SafetyError.  ``restore()`` is asked after every acquisition whether the
+    station had to recover an instrument meanwhile (the generator was then switched off
+    and is brought back): the record is then taken again."""
 
     def __init__(
         self,
@@ -434,8 +498,12 @@ class GroupScope:
         *,
         max_rerange: int,
         note: Callable[[str], None] | None = None,
+        safe: SafeGenerator | None = None,
+        restore: Callable[[], bool] | None = None,
     ) -> None:
         self.scope = scope
+        self.safe = safe
+        self.restore = restore
         self.span_v = board.supply.v_pos - board.supply.v_neg
         self.max_rerange = max_rerange
         self.note = note
@@ -510,8 +578,7 @@ class GroupScope:
             self.scope.configure_trigger(inputs[0], 0.0)
             self.trigger = inputs[0]
         for attempt in range(self.max_rerange + 1):
-            acq = self.scope.acquire(inputs)
-            self.acquisitions += 1
+            acq = self._acquire_sound(inputs, [c.input_scope for c in channels])
             changed = False
             for n in inputs:
                 v = np.asarray(acq.volts[n], dtype=float)
@@ -566,6 +633,34 @@ class GroupScope:
                     a = replace(a, thd_percent=corr)
             out[c.board_channel] = a
         return out, acq
+
+    def _acquire_sound(self, inputs: list[int], input_probes: list[int]) -> Any:
+        """One acquisition taken with the generator as the run set it, its input levels
+        checked against the safe level."""
+        for _ in range(MAX_RESTORES):
+            acq = self.scope.acquire(inputs)
+            self.acquisitions += 1
+            if self.restore is None or not self.restore():
+                break
+        else:
+            raise RunAborted(
+                f"instruments recovered during {MAX_RESTORES} acquisitions in a row: "
+                "no record was taken with the signal on"
+            )
+        if self.safe is not None:
+            limit = self.safe.safe_input_vrms
+            for n in dict.fromkeys(input_probes):
+                v = np.asarray(acq.volts[n], dtype=float)
+                vrms = float(np.std(v))
+                if vrms > limit * (1 + MEASURED_SAFE_MARGIN):
+                    raise self.safe.stop(
+                        f"the input probe (scope input {n}) measures {vrms:.4g} V rms, above "
+                        f"the board's safe input level {limit:.4g} V rms (commanded "
+                        f"{self.safe.level_vrms:.4g} V rms)",
+                        hint="check the generator profile's amplitude_unit and "
+                        "calibrated_load and the fixture's input_probe factor",
+                    )
+        return acq
 
 
 def _fills_match(
@@ -625,10 +720,24 @@ class BoardRun:
         self.progress = progress
         self.board_file = board_file
         self.criterion = clip_criterion(board)
-        self.scope_ops = GroupScope(scope, board, max_rerange=options.max_rerange, note=note)
-        self.safe = safe_generator(generator, board, fixture, options.max_step_up_db)
+        self.safe = safe_generator(
+            generator,
+            board,
+            fixture,
+            options.max_step_up_db,
+            on_alarm=note,
+            disturbances=station_disturbances(instruments),
+        )
+        self.scope_ops = GroupScope(
+            scope,
+            board,
+            max_rerange=options.max_rerange,
+            note=note,
+            safe=self.safe,
+            restore=self._restore_signal,
+        )
         self.supply: SupplyGuard | None = supply_guard(fixture, supply)
-        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s)
+        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s, board)
         self.settle_note = ""
         self.run_log = RunLog(store, progress)
         self.rows: list[MeasurementRow] = self.run_log.rows
@@ -636,6 +745,16 @@ class BoardRun:
 
     def station_text(self) -> str:
         return self.opt.station_name
+
+    def _restore_signal(self) -> bool:
+        """After an instrument recovery: the generator back on (ramped) and settled; True
+        when the last record was taken without the signal."""
+        if not self.safe.resync():
+            return False
+        if self.settle_s > 0:
+            sleep = getattr(self.opt, "sleep", None) or time.sleep
+            sleep(self.settle_s)
+        return True
 
     def header(self) -> RunHeader:
         return run_header(

@@ -40,6 +40,7 @@ from typing import Any, Literal
 import numpy as np
 
 from harness.errors import AnalysisError, RunAborted, SafetyError
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import RecordAnalysis, clip_threshold
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
@@ -50,7 +51,6 @@ from harness.run.bench_ops import (
     routed,
     run_guarded,
 )
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 
@@ -570,7 +570,7 @@ class Characterizer(BoardRun):
         t0 = time.perf_counter()
         self.run_id = self.run_log.begin(self.header())
         status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step, self.safe
+            self._steps, self._shutdown, lambda: self.step, self.safe, self.supply
         )
         verdict: Literal["PASS", "FAIL"] | None = None
         if status == "complete":

@@ -1,9 +1,10 @@
 """The production loop: one operator, one station, board after board.
 
 Everything that costs time or can fail is done once, before the first board: the board,
-station and fixture are read and cross-checked, the limits are computed (their digest is
-shown in the header, so a line can prove every board of a shift was judged against the same
-limits), the store is opened and recovered, the instruments are connected.  Then, per board:
+station and fixture are read and cross-checked, the station is locked for the session and
+connected with every source put in its safe state (before anything else), the limits are
+computed (their digest is shown in the header, so a line can prove every board of a shift
+was judged against the same limits), the store is opened and recovered.  Then, per board:
 read a serial number (typed, or a barcode scanner acting as a keyboard), refuse bad input
 before it reaches an instrument or the store, ask before testing a serial again, run the
 sequence, show the verdict, wait for the next board.
@@ -21,6 +22,7 @@ operator is then asked whether to reconnect and go on or to end.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
@@ -28,8 +30,8 @@ from typing import Any, Literal, Protocol
 
 from harness.errors import InstrumentError, RunAborted, StageproofError, StoreError, ValueParseError
 from harness.run.progress import Progress
-from harness.run.runner import Prepared, validate_serial
-from harness.run.safety import Terminated
+from harness.run.runner import Prepared, ensure_limits, validate_serial
+from harness.run.safety import Terminated, unsafe_text
 from harness.run.sequence import RunOptions, RunResult, run_board
 
 log = logging.getLogger("harness.run.line")
@@ -178,8 +180,10 @@ def _identity_text(identity: Any) -> str:
 class ProductionLine:
     """The loop over boards; :meth:`run` returns the summary when the session ends.
 
-    ``connect`` opens the station (``harness.instruments.bench.connect`` by default;
-    tests pass their own); ``open_store`` likewise."""
+    ``connect`` opens the station (:func:`harness.run.safety.connect_safe` by default:
+    every source safe first; tests pass their own); ``open_store`` likewise.  The station
+    lock is held for the whole session; ``instruments`` hands over a station the caller
+    already connected (and whose lock it holds), for the first board."""
 
     def __init__(
         self,
@@ -193,8 +197,9 @@ class ProductionLine:
         scanner_suffix: str = "",
         connect: Callable[[Any], Any] | None = None,
         open_store: Callable[[str], Any] | None = None,
+        instruments: Any = None,
     ) -> None:
-        from harness.instruments.bench import connect as connect_station
+        from harness.run.safety import connect_safe
         from harness.store import open_store as open_results
 
         self.prep = prep
@@ -209,9 +214,10 @@ class ProductionLine:
         )
         self.prefix = scanner_prefix
         self.suffix = scanner_suffix
-        self._connect = connect or connect_station
+        self._connect = connect or connect_safe
         self._open_store = open_store or open_results
         self.summary = SessionSummary()
+        self._handed = instruments
         self.instruments: Any = None
         self.store: Any = None
 
@@ -238,31 +244,47 @@ class ProductionLine:
         )
 
     def run(self) -> SessionSummary:
-        """Open the store, connect once, loop until quit / EOF / Ctrl-C / a fatal error."""
-        with self._open_store(self.db) as store:
+        """Lock and connect once (sources safe first), open the store, loop until quit /
+        EOF / Ctrl-C / a fatal error; every source is made safe again at the end."""
+        from harness.run.station_lock import station_lock
+
+        with contextlib.ExitStack() as stack:
+            if self._handed is not None:
+                self.instruments, self._handed = self._handed, None
+            else:
+                stack.enter_context(station_lock(self.prep.station))
+            stack.callback(self._close_instruments)  # runs before the lock is released
+            if self.instruments is None:
+                self.instruments = self._connect(self.prep.station)
+            self.prep = ensure_limits(self.prep)
+            store = stack.enter_context(self._open_store(self.db))
             self.store = store
             recovered = store.recover_aborted()
-            self.instruments = self._connect(self.prep.station)
-            try:
-                self.ui.header(self.header())
-                if recovered:
-                    self.ui.message(
-                        f"{len(recovered)} run(s) left 'running' by a process that is gone "
-                        "were marked aborted",
-                        "warning",
-                    )
-                self._loop()
-            finally:
-                self._close_instruments()
+            self.ui.header(self.header())
+            if recovered:
+                self.ui.message(
+                    f"{len(recovered)} run(s) left 'running' by a process that is gone "
+                    "were marked aborted",
+                    "warning",
+                )
+            self._loop()
         self.ui.summary(self.summary)
         return self.summary
 
     def _close_instruments(self) -> None:
+        """Every source safe and the sessions closed; a source that does not read back off
+        is said on screen (quit, end of input and every reconnect pass here)."""
         if self.instruments is not None:
             try:
                 self.instruments.close()
             except BaseException as exc:  # never hide the session's own outcome
                 log.error("closing the instruments failed: %s", exc)
+            states = getattr(self.instruments, "closing_states", None)
+            bad = unsafe_text(states) if isinstance(states, dict) else ""
+            if bad:
+                self.ui.message(
+                    f"{bad} not confirmed off (read back): switch it off by hand", "error"
+                )
             self.instruments = None
 
     def _loop(self) -> None:
@@ -427,6 +449,7 @@ def run_line(
     scanner_prefix: str = "",
     scanner_suffix: str = "",
     connect: Callable[[Any], Any] | None = None,
+    instruments: Any = None,
 ) -> SessionSummary:
     """Run a production session (see the module doc); returns its summary."""
     return ProductionLine(
@@ -438,4 +461,5 @@ def run_line(
         scanner_prefix=scanner_prefix,
         scanner_suffix=scanner_suffix,
         connect=connect,
+        instruments=instruments,
     ).run()

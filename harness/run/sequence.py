@@ -34,6 +34,7 @@ from typing import Any, Literal
 import numpy as np
 
 from harness.errors import FixtureFileError, StageproofError
+from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import (
     RecordAnalysis,
     SearchStep,
@@ -65,7 +66,6 @@ from harness.run.decisions import (
     thd_uncertainty_percent,
     threshold_uncertainty_db,
 )
-from harness.run.fixture import ChannelConnection, FixtureConfig
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 
@@ -186,10 +186,19 @@ class RunResult:
                     "decision": m.decision,
                     "step": m.step,
                     "detail": json.loads(m.detail_json) if m.detail_json else None,
+                    "reason": m.reason,
                 }
                 for m in self.measurements
             ],
         }
+
+
+def _why(a: RecordAnalysis) -> str:
+    """Why a record gave no reading, as stored beside the null: "over-range: ..." when the
+    scope's ADC limits were touched, otherwise the analysis's own reason."""
+    if a.over_range:
+        return f"over-range: {a.reason}" if a.reason else "over-range"
+    return a.reason or "no valid reading in the record"
 
 
 class _Clock:
@@ -324,9 +333,10 @@ class Sequencer(BoardRun):
         u: float | None,
         decision: str,
         detail: dict | None = None,
+        reason: str | None = None,
     ) -> MeasurementRow:
         return self.run_log.row(
-            channel, name, value, unit, low, high, u, decision, self.step_name, detail
+            channel, name, value, unit, low, high, u, decision, self.step_name, detail, reason
         )
 
     def _decide_row(
@@ -338,6 +348,7 @@ class Sequencer(BoardRun):
         limit: Any,
         u: float,
         detail: dict | None = None,
+        reason: str | None = None,
     ) -> MeasurementRow:
         low, high = limit_get(limit, "low"), limit_get(limit, "high")
         if value is None or not math.isfinite(value):
@@ -347,7 +358,7 @@ class Sequencer(BoardRun):
             decision = decide(value, low, high, u)
         if self._unresolvable(channel, name):
             decision = "not resolvable"
-        return self._row(channel, name, value, unit, low, high, u, decision, detail)
+        return self._row(channel, name, value, unit, low, high, u, decision, detail, reason)
 
     def _unresolvable(self, channel: str, name: str) -> bool:
         return any(
@@ -596,7 +607,7 @@ class Sequencer(BoardRun):
                     ("gain", "dB", lim.gain_db),
                     ("thd", "%", lim.thd_percent),
                 ):
-                    self._decide_row(ch, name, None, unit, limit, 0.0, detail)
+                    self._decide_row(ch, name, None, unit, limit, 0.0, detail, _why(a))
                 continue
             u_in = amplitude_rel_u(_resid_ratio(a, "in"), a.n_samples)
             u_out = amplitude_rel_u((a.thdn_percent or 0.0) / 100, a.n_samples)
@@ -876,7 +887,9 @@ class Sequencer(BoardRun):
                 decision = "not resolvable"
             else:
                 decision = decide(top, low, None, 0.0)
-            self._row(ch, "clip_input", None, "V rms", low, high, None, decision, detail)
+            self._row(
+                ch, "clip_input", None, "V rms", low, high, None, decision, detail, detail["result"]
+            )
             self.progress.note(f"channel {ch}: threshold above safe level {safe:g} V rms")
             return
         if th is not None and th.above_vrms is not None and not th.bracketed:
@@ -896,10 +909,13 @@ class Sequencer(BoardRun):
                 None,
                 "fail" if low is not None and th.above_vrms < low else "not resolvable",
                 detail,
+                detail["result"],
             )
             return
         detail["result"] = "search did not converge"
-        self._row(ch, "clip_input", None, "V rms", low, high, None, "fail", detail)
+        self._row(
+            ch, "clip_input", None, "V rms", low, high, None, "fail", detail, detail["result"]
+        )
 
     def frequencies(self, group: list[_ChannelState]) -> None:
         extra = self.board.conditions.extra_frequencies_hz
@@ -935,6 +951,7 @@ class Sequencer(BoardRun):
                         "relative_db": rel,
                         "phase_deg": a.phase_deg,
                     },
+                    None if a.gain_db is not None else _why(a),
                 )
         self.safe.set_frequency(self.plan.frequency_hz)
 
@@ -963,7 +980,7 @@ class Sequencer(BoardRun):
         with contextlib.suppress(AttributeError, StageproofError):  # a store without get_run
             retest = int(self.store.get_run(self.run_id).retest)
         status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step_name, self.safe
+            self._steps, self._shutdown, lambda: self.step_name, self.safe, self.supply
         )
         verdicts = self.verdicts()
         verdict: Literal["PASS", "FAIL"] | None = None

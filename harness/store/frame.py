@@ -69,12 +69,40 @@ def load_frame(path: str | Path, what: str = "measurements") -> pd.DataFrame:
     with SQLiteStore(path, readonly=True) as store, store._read(f"loading {what}") as conn:
         frame = pd.read_sql_query(_QUERIES[what], conn)
     for col in frame.columns:
-        if col in _TIMES:
-            frame[col] = pd.to_datetime(frame[col], utc=True, format="ISO8601")
-        elif col in _FLOATS:
-            frame[col] = frame[col].astype("float64")
-        elif col in _INTS:
-            frame[col] = frame[col].astype("int64")
-        elif col == "clipped":
-            frame[col] = frame[col].astype(bool)
+        try:
+            if col in _TIMES:
+                frame[col] = pd.to_datetime(frame[col], utc=True, format="ISO8601")
+            elif col in _FLOATS:
+                frame[col] = frame[col].astype("float64")
+            elif col in _INTS:
+                frame[col] = frame[col].astype("int64")
+            elif col == "clipped":
+                frame[col] = frame[col].astype(bool)
+        except (TypeError, ValueError, OverflowError) as exc:
+            raise _damaged(path, frame, col, exc) from None
     return frame
+
+
+def _damaged(path: str | Path, frame: pd.DataFrame, col: str, exc: Exception) -> StoreError:
+    """A column holding what stageproof never writes there (a row edited by hand): the
+    first such row named, so it can be found."""
+    import pandas as pd
+
+    kind = "time" if col in _TIMES else "number" if col in _FLOATS + _INTS else "flag"
+    values = frame[col]
+    if kind == "time":
+        parsed = pd.to_datetime(values, utc=True, format="ISO8601", errors="coerce")
+    else:
+        parsed = pd.to_numeric(values, errors="coerce")
+    bad = values[parsed.isna() & values.notna()]
+    if col in _INTS:
+        bad = values[values.isna() | parsed.isna()] if bad.empty else bad
+    where = ""
+    if not bad.empty and "run_id" in frame.columns:
+        where = f"run {frame['run_id'][bad.index[0]]}: "
+    shown = repr(bad.iloc[0]) if not bad.empty else str(exc)
+    return StoreError(
+        f"results database {path}: {where}column {col} holds {shown}, not a {kind}",
+        hint="the row was changed outside stageproof: restore the database from a backup, "
+        "or delete that run",
+    )

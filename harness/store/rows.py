@@ -41,12 +41,14 @@ def format_time(when: datetime) -> str:
 def parse_when(value: str | date | datetime, *, end_of_day: bool = False) -> str:
     """Turn a user's date or date-time into the store's UTC text form.
 
-    A bare date (``2024-05-01``) means local midnight; with ``end_of_day`` it means the
-    following local midnight, so ``--until 2024-05-01`` includes that whole day.  Naive
-    date-times are local time, as an operator at the bench reads the clock.
+    Dates and times without a zone are UTC, the zone every stored stamp and every listing
+    is in, so what the table shows can be typed back as a filter.  A bare date
+    (``2024-05-01``) means 00:00 UTC; with ``end_of_day`` the following 00:00 UTC, so
+    ``--until 2024-05-01`` includes that whole day.  A date-time with an offset
+    (``2024-05-01T08:00+02:00``) is taken as written.
     """
     if isinstance(value, datetime):
-        return format_time(value)
+        return format_time(value if value.tzinfo else value.replace(tzinfo=UTC))
     if isinstance(value, date):
         day = value
     else:
@@ -55,14 +57,15 @@ def parse_when(value: str | date | datetime, *, end_of_day: bool = False) -> str
             if len(text) == 10:
                 day = date.fromisoformat(text)
             else:
-                return format_time(datetime.fromisoformat(text))
+                return parse_when(datetime.fromisoformat(text))
         except ValueError:
             raise ValueParseError(
                 text,
                 "not a date or date-time",
-                hint="write YYYY-MM-DD or YYYY-MM-DDTHH:MM[:SS][+HH:MM]",
+                hint="write YYYY-MM-DD or YYYY-MM-DDTHH:MM[:SS][+HH:MM] (UTC unless an "
+                "offset is given)",
             ) from None
-    start = datetime(day.year, day.month, day.day)
+    start = datetime(day.year, day.month, day.day, tzinfo=UTC)
     if end_of_day:
         start += timedelta(days=1)
     return format_time(start)
@@ -177,7 +180,9 @@ class MeasurementRow:
 
     ``value`` None (or NaN, which SQLite keeps as NULL) means not measurable; ``decision``
     is the decision rule's text ("pass", "conditional fail", "info"...), stored verbatim.
-    ``measured_at`` defaults to now.
+    ``measured_at`` defaults to now.  Nothing infinite is kept (JSON has no Infinity): an
+    infinite limit is no limit (None), an infinite uncertainty is unknown (None) and an
+    infinite value is no value, whose ``reason`` (in the detail) says so.
     """
 
     channel: str
@@ -198,13 +203,38 @@ class MeasurementRow:
         _text(self.unit, "unit", allow_empty=True)
         _text(self.decision, "decision")
         _text(self.step, "step", allow_empty=True)
+        raw_value = _number(self.value, "value")
         for name in ("value", "low", "high", "uncertainty"):
             v = _number(getattr(self, name), name)
-            if v is not None and math.isnan(v):
+            if v is not None and not math.isfinite(v):
                 v = None
             object.__setattr__(self, name, v)
         object.__setattr__(self, "measured_at", _stamp(self.measured_at))
         _json_text(self.detail_json, "detail_json")
+        if raw_value is not None and math.isinf(raw_value) and self.reason is None:
+            detail = json.loads(self.detail_json) if self.detail_json else {}
+            if not isinstance(detail, dict):
+                detail = {"detail": detail}
+            detail["reason"] = f"reading not finite ({raw_value})"
+            object.__setattr__(self, "detail_json", json.dumps(detail))
+
+    @property
+    def reason(self) -> str | None:
+        """Why the value is missing (stored in the detail), e.g. ``"over-range: ..."``."""
+        if not self.detail_json:
+            return None
+        try:
+            detail = json.loads(self.detail_json)
+        except json.JSONDecodeError:
+            return None
+        why = detail.get("reason") if isinstance(detail, dict) else None
+        return why if isinstance(why, str) and why else None
+
+    @property
+    def reason_label(self) -> str | None:
+        """The reason's first words, for a table cell: ``"over-range"``."""
+        why = self.reason
+        return why.split(":", 1)[0].strip() if why else None
 
 
 @dataclass(frozen=True)
@@ -233,7 +263,7 @@ class SweepPointRow:
             )
         for name in ("level_vrms", "gain_db", "thd_percent", "thdn_percent"):
             v = _number(getattr(self, name), name)
-            if v is not None and math.isnan(v):
+            if v is not None and not math.isfinite(v):
                 v = None
             object.__setattr__(self, name, v)
         object.__setattr__(self, "clipped", bool(self.clipped))

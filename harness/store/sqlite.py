@@ -251,7 +251,8 @@ class SQLiteStore:
             if not p.exists():
                 raise StoreError(
                     f"no results database at {p}",
-                    hint="run a test first, or pass --db PATH of an existing database",
+                    hint="run a test first, or pass --db PATH of an existing database "
+                    "(stageproof demo writes stageproof-demo.db: --db stageproof-demo.db)",
                 )
             return
         parent = p.parent if str(p.parent) else Path(".")
@@ -503,7 +504,9 @@ class SQLiteStore:
             cutoff = format_time(datetime.now(UTC) - timedelta(seconds=float(stale_after_s)))
         dead: list[tuple[int, Owner, str, str]] = []
         for run_id, host, pid, token, heartbeat_at in rows:
-            owner = Owner(host, int(pid), token)
+            if isinstance(pid, bool) or not isinstance(pid, int):
+                raise self._damaged(run_id, "pid", f"{pid!r} is not a process id")
+            owner = Owner(host, pid, token)
             alive = owner_alive(owner)
             if alive is False:
                 why = (
@@ -668,10 +671,37 @@ class SQLiteStore:
 
     # --- reading --------------------------------------------------------------------------
 
-    @staticmethod
-    def _run_row(row: tuple[Any, ...]) -> RunRow:
+    def _damaged(self, run_id: Any, column: str, why: str) -> StoreError:
+        """A row changed outside stageproof (hand edit, another tool, a bad restore): named
+        so it can be found, never read as if it were right."""
+        return StoreError(
+            f"results database {self.path}: run {run_id} has a damaged {column} ({why})",
+            hint="the row was changed outside stageproof: restore the database from a "
+            "backup, or delete that run",
+        )
+
+    def _json_column(self, run_id: Any, column: str, text: Any, *, empty: bool = False) -> Any:
+        if text is None and empty:
+            return None
+        try:
+            return json.loads(text)
+        except (TypeError, ValueError) as exc:
+            raise self._damaged(run_id, column, f"not JSON: {exc}") from None
+
+    def _run_row(self, row: tuple[Any, ...], *, full: bool = False) -> RunRow:
+        """A run row, its owner and JSON columns checked (``full``: the limits too)."""
         values = list(row)
-        values[18] = json.loads(values[18])  # instruments_json -> dict
+        run_id = values[0]
+        instruments = self._json_column(run_id, "instruments_json", values[18])
+        if not isinstance(instruments, dict):
+            raise self._damaged(run_id, "instruments_json", "not a table of roles")
+        values[18] = instruments
+        for i, column in ((7, "retest"), (22, "pid")):
+            if isinstance(values[i], bool) or not isinstance(values[i], int):
+                raise self._damaged(run_id, column, f"{values[i]!r} is not a whole number")
+        if full:
+            self._json_column(run_id, "limits_json", values[15])
+            self._json_column(run_id, "limits_provenance", values[17], empty=True)
         return RunRow(*values)
 
     def get_run(self, run_id: int) -> RunRow:
@@ -684,7 +714,7 @@ class SQLiteStore:
                 f"no run {run_id} in {self.path}",
                 hint="list runs with `stageproof results` to find its id",
             )
-        return self._run_row(row)
+        return self._run_row(row, full=True)
 
     def list_runs(
         self,
@@ -749,10 +779,14 @@ class SQLiteStore:
 
     def measurements(self, run_id: int) -> list[MeasurementRow]:
         rows = self._child_rows(run_id, "reading measurements", "measurements", _MEAS_COLUMNS)
+        for r in rows:
+            self._json_column(run_id, f"measurement {r[1]!r} detail_json", r[-1], empty=True)
         return [MeasurementRow(*r) for r in rows]
 
     def sweep_points(self, run_id: int) -> list[SweepPointRow]:
         rows = self._child_rows(run_id, "reading sweep points", "sweep_points", _SWEEP_COLUMNS)
+        for r in rows:
+            self._json_column(run_id, "sweep point extra_json", r[8], empty=True)
         return [SweepPointRow(*r) for r in rows]
 
     def records(self, run_id: int) -> list[RecordRow]:

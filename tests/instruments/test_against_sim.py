@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 
 from harness.errors import IdentityMismatch, ScpiError
-from harness.files import load_board
 from harness.instruments.bench import connect
-from harness.instruments.station import load_station
+from harness.io.station import load_station
+from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire

@@ -24,10 +24,10 @@ from harness.instruments.drivers import (
     amplitude_setting,
     level_at_load,
 )
-from harness.instruments.profiles import load_profile
 from harness.instruments.scpi import encode_values
 from harness.instruments.session import Session
-from harness.instruments.station import station_from_dict
+from harness.io.profiles import load_profile
+from harness.io.station import station_from_dict
 from tests.instruments.fakeinst import FakeInstrument
 
 REPO = Path(__file__).resolve().parents[2]

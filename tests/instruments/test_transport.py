@@ -21,9 +21,9 @@ from harness.errors import (
     ScpiError,
 )
 from harness.instruments.drivers import Generator
-from harness.instruments.profiles import load_profile
 from harness.instruments.scpi import encode_block, encode_values
 from harness.instruments.session import Session
+from harness.io.profiles import load_profile
 from tests.instruments.fakeinst import Cut, FakeInstrument, free_port
 
 TMO_MS = 300

@@ -8,9 +8,9 @@ import json
 import numpy as np
 import pytest
 
-from harness.cli.capture import read_capture, write_capture_csv
 from harness.cli.main import main
 from harness.errors import AnalysisError, CaptureFileError
+from harness.io.capture import read_capture, write_capture_csv
 from harness.measure import analyze_record, fit_sine4, harmonic_analysis, transfer
 
 FS, N, F = 100e3, 4096, 1000.37

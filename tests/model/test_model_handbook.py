@@ -12,11 +12,10 @@ import pytest
 import scipy.constants as const
 from scipy.special import iv
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point, thermal_voltage
 from harness.model.core import solve_junction
-
-from .boards import board_text, make_board, write_board
+from tests.support.boards import board_text, make_board, write_board
 
 V_T = thermal_voltage(300.0)
 
@@ -71,7 +70,7 @@ def test_boylestad_exact_analysis_gain(tmp_path) -> None:
         beta=90,
         is_a=_is_for_vbe(0.7, 1.3219e-3),
     )
-    d = design_channel(board, "X", params={"gain.re": 0.0})
+    d = design_channel(board, "X", params={"gain.re": 0.0, "source_ohm": 0.0})
     stage = d.stages[0]
     assert stage.gain * 91 / 90 == pytest.approx(-351.6, rel=2e-3)
     assert abs(stage.gain * 91 / 90 - -368.8) > 10  # and it is not the approximate analysis
@@ -104,8 +103,9 @@ def test_vbe_and_vce_sat_are_trade_values() -> None:
 def test_exponential_stage_harmonics_are_bessel_ratios(tmp_path, x) -> None:
     """Abramowitz & Stegun 9.6.34 (generating function exp(x cos t) = I_0(x) + 2 sum I_n(x) cos nt):
     an undegenerated exponential stage driven by a sine of peak x·V_T has HD_n = I_n(x)/I_1(x)
-    (scipy.special.iv).  The model's large-signal engine is run with R_E = 0 and a load light
-    enough that the collector stays out of saturation.  (The textbook treatment of this result,
+    (scipy.special.iv).  The model's large-signal engine is run with R_E = 0, an ideal voltage
+    source (source_ohm 0: the base current drops nothing) and a load light enough that the
+    collector stays out of saturation.  (The textbook treatment of this result,
     e.g. in Gray & Meyer's chapter on large-signal behaviour, is from memory.)"""
     board = make_board(
         tmp_path,
@@ -116,7 +116,9 @@ def test_exponential_stage_harmonics_are_bessel_ratios(tmp_path, x) -> None:
         bypass='re_bypassed = "1k2"\n  c_e = "1000u"',
         load="1G",
     )
-    h = large_signal_harmonics(board, "X", x * V_T / math.sqrt(2.0), params={"gain.re": 0.0})
+    h = large_signal_harmonics(
+        board, "X", x * V_T / math.sqrt(2.0), params={"gain.re": 0.0, "source_ohm": 0.0}
+    )
     for n in (2, 3, 4):
         assert h[n] / h[1] == pytest.approx(iv(n, x) / iv(1, x), rel=1e-6)
     thd = math.sqrt(sum((iv(n, x) / iv(1, x)) ** 2 for n in range(2, 11)))

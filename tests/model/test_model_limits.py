@@ -12,15 +12,14 @@ from scipy.integrate import quad
 from scipy.optimize import brentq
 
 from harness.cli.main import main
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.core import evaluate_channel
 from harness.model.design import to_design
 from harness.model.limits import MC_SEARCH_ITERATIONS, MC_SEARCH_POINTS, MC_THD_POINTS
 from harness.model.params import channel_parameters, nominal_arrays, sample_arrays
 from harness.model.spice import channel_netlist
-
-from .boards import board_text, make_board, write_board
+from tests.support.boards import board_text, make_board, write_board
 
 TWIN = "limits/demo-twin-preamp.toml"
 OPAMP = "limits/demo-opamp-line.toml"

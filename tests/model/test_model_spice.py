@@ -14,11 +14,10 @@ import math
 
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point
 from harness.model.spice import channel_netlist, parse_fourier, parse_values
-
-from .boards import make_board
+from tests.support.boards import make_board
 
 pytestmark = pytest.mark.ngspice
 

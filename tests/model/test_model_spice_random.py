@@ -30,14 +30,13 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point
 from harness.model.board import Board
 from harness.model.design import large_signal_bias
 from harness.model.limits import MODEL_UNCERTAINTY
 from harness.model.spice import SpiceCopy, batch_netlist, parse_fourier_all, parse_values
-
-from .boards import write_board
+from tests.support.boards import write_board
 
 pytestmark = pytest.mark.ngspice
 

@@ -37,11 +37,11 @@ def _header(serial: str, worker: int) -> object:
 
 
 def main(argv: list[str]) -> int:
-    from harness.files import load_board
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.fixture import load_fixture
+    from harness.io.station import load_station
+    from harness.io.toml import load_board
     from harness.model import compute_limits
-    from harness.run.fixture import load_fixture
     from harness.run.sequence import RunOptions, run_board
     from harness.store import MeasurementRow, SweepPointRow, open_store
     from tests.reliability.rig import started_bench, write_rig

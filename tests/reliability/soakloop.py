@@ -88,11 +88,11 @@ def served_bench(board_file: Path, folder: Path, *, timeout_ms: int = 2000) -> I
 def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) -> SoakResult:
     import psutil
 
-    from harness.files import load_board
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.fixture import load_fixture
+    from harness.io.station import load_station
+    from harness.io.toml import load_board
     from harness.model import compute_limits
-    from harness.run.fixture import load_fixture
     from harness.run.sequence import RunOptions, run_board
     from harness.store import open_store
     from tests.reliability.rig import write_rig

@@ -36,7 +36,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from tests.reliability.rig import (
     REPO,
     integrity,

@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from harness.errors import BoardFileError, StageproofError
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model.board import Board, board_from_dict
 
 LIMITS = Path(__file__).resolve().parents[2] / "limits"

@@ -221,8 +221,8 @@ def _load_or_error(path: Path, loader: Any, *args: Any) -> Any:
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_fixture_file(rig_files: Any, tmp_path: Path, data: st.DataObject) -> None:
-    from harness.files import load_board
-    from harness.run.fixture import load_fixture
+    from harness.io.fixture import load_fixture
+    from harness.io.toml import load_board
 
     board = load_board(rig_files.board)
     doc = tomllib.loads(rig_files.fixture.read_text())
@@ -234,7 +234,7 @@ def test_mutated_fixture_file(rig_files: Any, tmp_path: Path, data: st.DataObjec
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_station_file(tmp_path: Path, data: st.DataObject) -> None:
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
 
     doc = tomllib.loads((REPO / "fixtures" / "station-sim.toml").read_text())
     path = tmp_path / "station.toml"
@@ -246,7 +246,7 @@ def test_mutated_station_file(tmp_path: Path, data: st.DataObject) -> None:
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_profile(role: str, tmp_path: Path, data: st.DataObject) -> None:
-    from harness.instruments.profiles import load_profile
+    from harness.io.profiles import load_profile
 
     src = REPO / "fixtures" / "instruments" / f"scpi-{role}.toml"
     doc = tomllib.loads(src.read_text())
@@ -259,10 +259,10 @@ def test_mutated_profile(role: str, tmp_path: Path, data: st.DataObject) -> None
 @_SETTINGS
 @given(raw=st.binary(max_size=300))
 def test_random_bytes_as_config(name: str, rig_files: Any, tmp_path: Path, raw: bytes) -> None:
-    from harness.files import load_board
-    from harness.instruments.profiles import load_profile
-    from harness.instruments.station import load_station
-    from harness.run.fixture import load_fixture
+    from harness.io.fixture import load_fixture
+    from harness.io.profiles import load_profile
+    from harness.io.station import load_station
+    from harness.io.toml import load_board
 
     path = tmp_path / name
     path.write_bytes(raw)
@@ -299,7 +299,7 @@ _csv_lines = st.lists(
 @_SETTINGS
 @given(header=st.booleans(), lines=_csv_lines)
 def test_capture_csv(tmp_path: Path, header: bool, lines: list[str]) -> None:
-    from harness.cli.capture import read_capture
+    from harness.io.capture import read_capture
 
     path = tmp_path / "cap.csv"
     body = ("time_s,input_v,output_v\n" if header else "") + "\n".join(lines)
@@ -326,7 +326,7 @@ def _npz_bytes(arrays: dict[str, np.ndarray]) -> bytes:
     seed=st.integers(0, 2**32 - 1),
 )
 def test_capture_npz(tmp_path: Path, kind: str, n: int, cut: int, seed: int) -> None:
-    from harness.cli.capture import read_capture
+    from harness.io.capture import read_capture
 
     rng = np.random.default_rng(seed)
     arrays = {c: rng.normal(size=n) for c in ("time_s", "input_v", "output_v")}

@@ -25,8 +25,8 @@ from typing import Any
 import pytest
 
 from harness.errors import RunAborted
-from harness.files import load_board
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
+from harness.io.toml import load_board
 from harness.run.progress import NullProgress
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.faults import FAULT_KINDS
@@ -87,7 +87,7 @@ class _Arm(NullProgress):
 
 @pytest.fixture(scope="module")
 def rig(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]:
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
     from harness.model import compute_limits
 
     folder = tmp_path_factory.mktemp("faults")

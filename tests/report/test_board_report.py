@@ -11,7 +11,7 @@ from harness.report import ReportError, load_board_report, write_board_report
 from harness.report.board import channel_plots
 from harness.report.spectrum import spectrum_view
 from harness.store import open_store
-from tests.report.builders import FS_HZ, N, clipped_sine
+from tests.support.builders import FS_HZ, N, clipped_sine
 
 
 def test_header_and_measurements_on_the_page(db_path, tmp_path) -> None:
@@ -60,7 +60,7 @@ def test_failing_board_without_records_says_so(db_path, tmp_path) -> None:
 
 
 def test_by_run_id_and_history(tmp_path) -> None:
-    from tests.report.builders import add_run
+    from tests.support.builders import add_run
 
     db = tmp_path / "h.db"
     with open_store(db) as s:

@@ -8,14 +8,16 @@ sample mean and the sample standard deviation s (divisor n − 1).
 
 from __future__ import annotations
 
+import json
 import math
 
 import pytest
 
+from harness.cli.main import main
 from harness.report import capability, load_summary, render_summary_html
-from harness.report.stats import CPK_THRESHOLD
+from harness.report.stats import CPK_MIN_BOARDS, CPK_THRESHOLD
 from harness.store import open_store
-from tests.report.builders import add_run
+from tests.support.builders import add_run
 
 DATA = (9.8, 10.0, 10.2, 10.1, 9.9)
 
@@ -48,7 +50,11 @@ def test_one_sided_upper_limit_and_flag() -> None:
     assert c.cpk == pytest.approx(1.054092553, rel=1e-8)
     assert c.cpk == c.cpu
     assert CPK_THRESHOLD == 1.33
-    assert c.flagged
+    assert not c.flagged  # five boards are too few to flag (fewer than CPK_MIN_BOARDS)
+    # thirty: Cpu = 0.5/(3·√(0.6/29)) = 1.1587 < 1.33, flagged
+    many = capability(DATA * 6, None, 10.5)
+    assert many.cpk == pytest.approx(0.5 / (3 * math.sqrt(0.6 / 29)), rel=1e-8)
+    assert many.flagged
 
 
 def test_one_sided_lower_limit() -> None:
@@ -83,5 +89,66 @@ def test_summary_computes_the_same_from_a_store(tmp_path) -> None:
     assert gain.capability.n == 5
     assert gain.capability.cp == pytest.approx(2.108185107, rel=1e-8)
     assert gain.capability.cpk == pytest.approx(2.108185107, rel=1e-8)
+    # five boards: the indices are computed but not shown (fewer than 25 boards)
+    assert not gain.capability.enough and not gain.capability.flagged
     page = render_summary_html(s)
-    assert "✓ 2.108</span>" in page and "2.108</td>" in page  # Cpk badge and Cp cell
+    assert "too few boards (n = 5)" in page and "2.108" not in page
+
+
+def _strict(text: str):
+    """json.loads refusing NaN/Infinity (RFC 8259 §6)."""
+
+    def refuse(name: str):
+        raise AssertionError(f"{name} in JSON")
+
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_three_near_identical_boards_show_too_few_boards(tmp_path, capsys) -> None:
+    """Three boards a hair apart give s ≈ 1e-13 dB and Cpk ≈ 1e12: not a capability.
+    Below 25 boards (common practice, the control-chart guidance of the NIST/SEMATECH
+    e-Handbook of Statistical Methods, ch. 6) the page, the CLI and the JSON say
+    "too few boards" and state n; nothing is flagged."""
+    assert CPK_MIN_BOARDS == 25
+    db = tmp_path / "few.db"
+    with open_store(db) as store:
+        for i in range(3):
+            add_run(store, f"F{i}", gain_db=20.0 + i * 1e-13, records=False, sweep=False)
+    s = load_summary(db)
+    gain = next(m for m in s.measurements if m.channel == "left" and m.name == "gain")
+    assert gain.capability.n == 3 and gain.capability.cpk > 1e9  # the absurd raw figure
+    page = render_summary_html(s)
+    assert "too few boards (n = 3)" in page
+    assert f"{gain.capability.cpk:.3f}" not in page
+    out = tmp_path / "few.html"
+    code = main(["report", "summary", "--db", str(db), "-o", str(out)])
+    line = capsys.readouterr().out
+    assert code == 0 and "too few boards for Cpk (n < 25" in line
+    assert "0 measurement(s) with Cpk under 1.33" in line
+    code = main(["report", "summary", "--db", str(db), "-o", str(out), "--json"])
+    doc = _strict(capsys.readouterr().out)
+    assert code == 0
+    g = next(m for m in doc["measurements"] if m["channel"] == "left" and m["name"] == "gain")
+    assert g["n"] == 3 and g["cpk"] is None and g["cp"] is None and g["flagged"] is False
+    assert g["note"] == "too few boards (n = 3, Cpk needs 25)"
+
+
+def test_thirty_boards_show_cpk_against_hand_computation(tmp_path, capsys) -> None:
+    """DATA six times over (30 boards, +10 dB): mean 20.0; the squared deviations sum to
+    6 × 0.1 = 0.6, so s = √(0.6/29); limits 19..21 dB give Cp = Cpk = 2/(6s) = 1/(3s)
+    (NIST/SEMATECH e-Handbook §6.1.6 definitions) = 2.317399..., shown and in the JSON."""
+    db = tmp_path / "many.db"
+    with open_store(db) as store:
+        for i, g in enumerate(DATA * 6):
+            add_run(store, f"M{i}", gain_db=g + 10.0, records=False, sweep=False)
+    expected = 1.0 / (3.0 * math.sqrt(0.6 / 29))
+    s = load_summary(db)
+    gain = next(m for m in s.measurements if m.channel == "left" and m.name == "gain")
+    assert gain.capability.enough and gain.capability.n == 30
+    assert gain.capability.cpk == pytest.approx(expected, rel=1e-8)
+    assert f"✓ {expected:.3f}</span>" in render_summary_html(s)
+    out = tmp_path / "many.html"
+    assert main(["report", "summary", "--db", str(db), "-o", str(out), "--json"]) == 0
+    doc = _strict(capsys.readouterr().out)
+    g = next(m for m in doc["measurements"] if m["channel"] == "left" and m["name"] == "gain")
+    assert g["cpk"] == pytest.approx(expected, rel=1e-8) and g["note"] is None

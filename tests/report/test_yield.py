@@ -12,7 +12,7 @@ import pytest
 from harness.report import load_summary
 from harness.report.summary import summarise
 from harness.store import open_store
-from tests.report.builders import add_run
+from tests.support.builders import add_run
 
 
 @pytest.fixture

@@ -193,6 +193,9 @@ class FakeBench:
             def output(self, on: bool, output: int = 1) -> None:
                 bench.supply_on = on
 
+            def is_on(self, output: int = 1) -> bool:
+                return bench.supply_on
+
             def current_a(self, output: int = 1) -> float:
                 return bench.supply_a if bench.supply_on else 0.0
 

@@ -6,10 +6,10 @@ from __future__ import annotations
 import pytest
 
 from harness.cli.cmd_demo import DEMO_BOARD, DEMO_BOARDS, DEMO_FIXTURE
-from harness.files import load_board
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
+from harness.io.toml import load_board
 from harness.run.runner import packaged
-from tests.run.conftest import REPO
+from tests.support.bench import REPO
 
 
 @pytest.mark.parametrize(

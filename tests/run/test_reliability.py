@@ -18,10 +18,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from harness.errors import StageproofError
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = [pytest.mark.wire, pytest.mark.reliability]
 
@@ -115,7 +115,7 @@ def test_safety_under_instrument_faults(board, limits, tmp_path_factory, fault):
     """Whatever instrument fails and when: the simulated generator's output ends off and no
     level above the board's safe input level is ever applied (the sim's own log)."""
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
 
     role, kind, after = fault
     tmp = tmp_path_factory.mktemp("fault")

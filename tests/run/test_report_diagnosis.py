@@ -13,12 +13,12 @@ import re
 import pytest
 
 from harness.instruments.bench import connect
-from harness.instruments.station import load_station
+from harness.io.fixture import load_fixture
+from harness.io.station import load_station
 from harness.report import write_board_report
-from harness.run.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, sim_bench
 
 pytestmark = pytest.mark.wire
 

@@ -163,6 +163,9 @@ class FakeSupply:
     def output(self, on: bool, output: int = 1) -> None:
         self.on[output] = on
 
+    def is_on(self, output: int = 1) -> bool:
+        return self.on.get(output, False)
+
     def current_a(self, output: int = 1) -> float:
         return 0.01
 
@@ -181,3 +184,155 @@ def test_supply_guard_limits_and_off():
         assert s.on == {1: True, 2: True}
         raise RuntimeError("x")
     assert s.on == {1: False, 2: False}
+
+
+# --- every rise ramps; every switch-off is read back; the level is read back ----------------
+
+
+def test_every_rise_while_on_ramps_from_the_present_level():
+    """A rise below the nominal level is ramped too: 5 mV -> 50 mV (20 dB) goes in <= 6 dB
+    steps, not in one jump (the README's promise: every rise while on)."""
+    g = FakeGenerator()
+    with SafeGenerator(g, 0.6, direct_vrms=0.05) as sg:
+        sg.configure(1000.0, 0.005)
+        sg.on()
+        start = len(g.levels)
+        sg.set_level(0.05)
+        seq = [0.005, *g.levels[start:]]
+        assert seq[-1] == pytest.approx(0.05)
+        assert len(seq) >= 5  # 20 dB in 6 dB steps: 4 steps
+        for a, b in itertools.pairwise(seq):
+            assert 20 * math.log10(b / a) <= 6.0 + 1e-9
+
+
+def test_switch_on_never_above_direct_level():
+    g = FakeGenerator()
+    with SafeGenerator(g, 0.6, direct_vrms=0.05) as sg:
+        sg.configure(1000.0, 0.5)
+        sg.on()
+        i_on = g.trace.index(("on", 0.0))
+        assert g.trace[i_on - 1] == ("level", 0.05)
+
+
+def test_ramp_step_above_6_db_refused():
+    with pytest.raises(SafetyError, match="6 dB"):
+        SafeGenerator(FakeGenerator(), 0.6, max_step_up_db=10.0)
+
+
+class IgnoresOff(FakeGenerator):
+    """A generator whose profile's output_off does nothing; its state reads back true."""
+
+    def output(self, on: bool, output: int = 1) -> None:
+        if on:
+            self.on = True
+        self.trace.append(("on" if on else "off", 0.0))
+
+    def safe_off(self) -> None:  # the driver's safe_off uses the same output_off
+        pass
+
+
+def test_ignored_off_is_unknown_never_off_and_stops():
+    """Off is read back: an output that still reads on is 'unknown' (and said), and a
+    switch-off inside the run raises SafetyError instead of going on."""
+    g = IgnoresOff()
+    alarms: list[str] = []
+    sg = SafeGenerator(g, 1.0, on_alarm=alarms.append)
+    with sg:
+        sg.configure(1000.0, 0.1)
+        sg.on()
+        with pytest.raises(SafetyError, match="not confirmed off"):
+            sg.off()
+        assert sg.output_state == "unknown"
+    assert sg.output_state == "unknown"
+    assert g.on  # what the instrument really does
+    assert any("still reads ON" in a for a in alarms)
+
+
+def test_safe_off_confirmed_by_read_back():
+    g = FakeGenerator()
+    sg = SafeGenerator(g, 1.0)
+    with sg:
+        sg.configure(1000.0, 0.1)
+        sg.on()
+    assert sg.output_state == "off" and not g.on
+
+
+class ReadsBack(FakeGenerator):
+    """A generator that reports its level; ``extra`` V rms come on top (a profile that
+    smuggles a second setting past the wrapper)."""
+
+    def __init__(self, extra: float = 0.0) -> None:
+        super().__init__()
+        self.extra = extra
+        self.level = 0.0
+
+    def set_level(self, vrms: float, *, load_ohm: float = math.inf, output: int = 1) -> None:
+        super().set_level(vrms, load_ohm=load_ohm, output=output)
+        self.level = vrms + self.extra
+
+    def level_readback_vrms(self, *, load_ohm: float = math.inf, output: int = 1) -> float:
+        return self.level
+
+
+def test_level_read_back_mismatch_stops_before_the_output_is_on():
+    g = ReadsBack(extra=1.7)  # 1.75 V rms where 0.05 was asked: 2.9 x the safe level
+    sg = SafeGenerator(g, 0.6, direct_vrms=0.05)
+    with sg, pytest.raises(SafetyError, match=r"reports 1\.75 V rms after 0\.05"):
+        sg.configure(1000.0, 0.05)
+    assert not g.on and sg.output_state == "off"
+    assert ("on", 0.0) not in g.trace
+
+
+def test_level_read_back_within_resolution_passes():
+    g = ReadsBack(extra=0.0004)  # under the 0.5 mV rms allowance for setting resolution
+    with SafeGenerator(g, 0.6, direct_vrms=0.05) as sg:
+        sg.configure(1000.0, 0.05)
+        sg.on()
+    assert not g.on
+
+
+def test_resync_after_a_station_recovery_ramps_back_on():
+    """A lost instrument switches the generator off first (connect_safe's recovery hook);
+    the wrapper sees the station's recovery count move and brings the output back, ramped
+    from the switch-on level."""
+    g = FakeGenerator()
+    count = [0]
+    with SafeGenerator(g, 0.6, direct_vrms=0.05, disturbances=lambda: count[0]) as sg:
+        sg.configure(1000.0, 0.05)
+        sg.on()
+        sg.set_level(0.4)
+        g.on = False  # the recovery hook switched it off
+        count[0] += 1
+        n = len(g.levels)
+        assert sg.resync() is True
+        assert g.on and g.levels[n] == pytest.approx(0.05) and g.levels[-1] == pytest.approx(0.4)
+        assert sg.resync() is False
+
+
+class ReadBackSupply(FakeSupply):
+    def __init__(self, ignore_off: bool = False) -> None:
+        super().__init__()
+        self.ignore_off = ignore_off
+
+    def output(self, on: bool, output: int = 1) -> None:
+        if on or not self.ignore_off:
+            self.on[output] = on
+
+    def safe_off(self) -> bool:
+        if not self.ignore_off:
+            self.on = dict.fromkeys(self.on, False)
+        return not any(self.on.values())
+
+
+def test_supply_off_is_read_back():
+    s = ReadBackSupply(ignore_off=True)
+    sup = SupplyGuard(s, 12.0, 0.05, 1)
+    sup.on()
+    with pytest.raises(SafetyError, match="not confirmed off"):
+        sup.off()
+    assert sup.output_state == "unknown"
+    assert sup.safe_off() == "unknown"
+    ok = ReadBackSupply()
+    good = SupplyGuard(ok, 12.0, 0.05, 1)
+    good.on()
+    assert good.safe_off() == "off"

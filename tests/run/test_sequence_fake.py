@@ -8,7 +8,7 @@ import math
 import pytest
 
 from harness.errors import RunAborted
-from harness.run.fixture import ChannelConnection, FixtureConfig, SupplyConnection, TestPoint
+from harness.io.fixture import ChannelConnection, FixtureConfig, SupplyConnection, TestPoint
 from harness.run.progress import RecordingProgress
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
@@ -125,9 +125,21 @@ def test_unresolvable_thd_limit_reported_before_signal(tmp_path):
 
 
 def _clean_calls(tmp_path) -> int:
+    """Instrument calls of a clean run up to its last scope call (the shutdown's read-backs
+    after it talk to the generator and supply only)."""
     bench = FakeBench(2, GAIN, CLIP_V)
+    last_scope = 0
+    tick = bench._tick
+
+    def counting(role: str) -> None:
+        nonlocal last_scope
+        tick(role)
+        if role == "scope":
+            last_scope = bench.calls
+
+    bench._tick = counting  # type: ignore[method-assign]
     _run(tmp_path, bench, FakeLimits(["A", "B"], GAIN, CLIP_V))
-    return bench.calls
+    return last_scope
 
 
 @pytest.mark.parametrize("fraction", [0.05, 0.3, 0.6, 0.9])

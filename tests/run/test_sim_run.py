@@ -15,10 +15,10 @@ import math
 import numpy as np
 import pytest
 
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.run.conftest import FIXTURE_FILE, sim_bench
+from tests.support.bench import FIXTURE_FILE, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -31,7 +31,7 @@ FAULT = RunOptions(settle_wait_s=0.0, extra_frequencies=False)
 
 def _run(board, limits, tmp_path, faults=(), options=FAST):
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.station import load_station
 
     with sim_bench(board, tmp_path, faults) as (bench, station_file):
         station = load_station(station_file)

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from harness.errors import FaultSpecError, StageproofError
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.sim.physics import BoardSim, Fault, component_refs, parse_fault
 
 REPO = Path(__file__).resolve().parents[2]

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model.board import board_from_dict
 from harness.sim.physics import BETA_R_DEFAULT, BoardSim
 
@@ -88,7 +88,7 @@ LEVELS_VPK = (0.05, 0.3, 1.0, 2.0, 3.0)
 def ngspice_tran(board, ngspice, tmp_path_factory):
     """One ngspice run per level: 0.9 s of settling (over 7 time constants C_e·R_e), then the
     last 0.1 s written out; returns {level: (stdout, data array)}."""
-    from spice_runner import run_ngspice  # same binary as the ngspice fixture
+    from tests.support.spice import run_ngspice  # same binary as the ngspice fixture
 
     out = {}
     for level in LEVELS_VPK:

@@ -19,10 +19,10 @@ from pathlib import Path
 import pytest
 
 from harness.errors import FaultSpecError
-from harness.files import load_board, read_toml
-from harness.instruments.profiles import load_profile
-from harness.instruments.station import load_station
-from harness.run.fixture import load_fixture
+from harness.io.fixture import load_fixture
+from harness.io.profiles import load_profile
+from harness.io.station import load_station
+from harness.io.toml import load_board, read_toml
 from harness.sim.bench import ROLES, SimBench
 from harness.sim.faults import InstrumentFault, parse_instrument_fault
 

@@ -14,8 +14,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.files import load_board
 from harness.instruments.scpi import parse_block
+from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 from harness.sim.physics import BoardSim
 

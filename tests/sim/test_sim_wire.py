@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 import pyvisa
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire

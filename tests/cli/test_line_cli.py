@@ -19,13 +19,21 @@ import time
 import pytest
 
 from harness.store import RunHeader, open_store
-from tests.line.conftest import BOARD_FILE, REPO, connections
+from tests.support.bench import BOARD_FILE, REPO, connections
+from tests.support.line import line_bench
 
 pytestmark = pytest.mark.wire
 
 FAST = ["--settle-wait", "0", "--max-points", "1000", "--no-extra-frequencies"]
 LONG = "X" * 100
 BEL = "\x07"
+
+
+@pytest.fixture(scope="module")
+def bench(board, tmp_path_factory):
+    """One simulated bench per module: (bench, station file, fixture file)."""
+    with line_bench(board, tmp_path_factory.mktemp("line")) as b:
+        yield b
 
 
 def _cmd(station, fixture, db, *extra):
@@ -200,6 +208,19 @@ class _Reader(threading.Thread):
         raise AssertionError(f"{what!r} x{count} not seen; output so far:\n{self.text}")
 
 
+def stop(proc, reader) -> str:
+    """End the child if it still runs, join the reader, close the pipes; its stderr."""
+    if proc.poll() is None:
+        proc.kill()
+        proc.wait(timeout=10)
+    reader.join(timeout=5)
+    err = proc.stderr.read()
+    for stream in (proc.stdin, proc.stdout, proc.stderr):
+        if stream is not None:
+            stream.close()
+    return err
+
+
 def test_ctrl_c_during_a_board_then_at_the_prompt(bench, tmp_path):
     """SIGINT while a board is under test aborts that board (stored aborted, generator off)
     and returns to the prompt; SIGINT at the prompt ends with the summary and status 0."""
@@ -228,13 +249,7 @@ def test_ctrl_c_during_a_board_then_at_the_prompt(bench, tmp_path):
         proc.send_signal(signal.SIGINT)
         rc = proc.wait(timeout=60)
     finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait(timeout=10)
-        reader.join(timeout=5)
-        err = proc.stderr.read()
-        for stream in (proc.stdin, proc.stdout, proc.stderr):
-            stream.close()
+        err = stop(proc, reader)
     assert rc == 0, err
     assert "VERDICT SN-C1: ABORTED" in reader.text
     assert "ended by Ctrl-C" in reader.text

@@ -199,7 +199,7 @@ def test_hostile_text_is_escaped(tmp_path) -> None:
     """Text from the store (serial, operator, measurement detail) is HTML-escaped."""
     from harness.report import write_board_report
     from harness.store import open_store
-    from tests.report.builders import add_run
+    from tests.support.builders import add_run
 
     db = tmp_path / "x.db"
     with open_store(db) as s:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model.board import Board
 
 HEAD = """

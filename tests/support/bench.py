@@ -1,4 +1,5 @@
-"""Shared fixtures of the run-layer tests: the demo board, its limits, a bench factory."""
+"""Shared helpers of the tests that drive a simulated bench: the demo files and a bench
+factory (127.0.0.1, ephemeral ports, short timeouts)."""
 
 from __future__ import annotations
 
@@ -8,25 +9,9 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
-import pytest
-
-from harness.files import load_board
-
 REPO = Path(__file__).resolve().parents[2]
 BOARD_FILE = REPO / "limits" / "demo-twin-preamp.toml"
 FIXTURE_FILE = REPO / "fixtures" / "fixture-twin-preamp.toml"
-
-
-@pytest.fixture(scope="session")
-def board():
-    return load_board(BOARD_FILE)
-
-
-@pytest.fixture(scope="session")
-def limits(board):
-    from harness.model import compute_limits
-
-    return compute_limits(board)
 
 
 def fast_station(path: Path, timeout_ms: int = 1000) -> Path:
@@ -51,3 +36,8 @@ def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
+
+
+def connections(bench) -> dict[str, int]:
+    """TCP connections each simulated instrument has accepted so far."""
+    return {role: srv.connections_served for role, srv in bench.servers.items()}

@@ -9,13 +9,13 @@ from pathlib import Path
 import pytest
 
 from harness.errors import ProfileError, StationFileError
-from harness.instruments.profiles import (
+from harness.io.profiles import (
     DEFAULT_PROFILE_DIRS,
     ROLE_OPS,
     ROLES,
     load_profile,
 )
-from harness.instruments.station import load_station, validate_resource
+from harness.io.station import load_station, validate_resource
 
 REPO = Path(__file__).resolve().parents[2]
 FIXTURE_PROFILES = REPO / "fixtures" / "instruments"
@@ -223,3 +223,89 @@ def test_station_profile_by_relative_path(tmp_path):
         "station.toml",
     )
     assert load_station(p).instruments["generator"].profile.settings["output_ohm"] == 600.0
+
+
+# --- command text: one line per operation ------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("op", "text"),
+    [
+        # a second command smuggled behind a line feed: 5 Vpp past the level cap
+        (
+            "set_amplitude",
+            r"SOURce{output}:VOLTage:LEVel:IMMediate:AMPLitude {amplitude}"
+            r"\nSOURce{output}:VOLTage 5",
+        ),
+        # the output switched on while the harness believes it is off
+        (
+            "set_frequency",
+            r"SOURce{output}:FREQuency:CW {frequency_hz}\rOUTPut{output}:STATe ON",
+        ),
+        ("output_off", r"OUTPut{output}:STATe OFF\u0000"),
+        ("set_offset", r"SOURce{output}:VOLTage:LEVel:IMMediate:OFFSet {offset_v}\u007f"),
+        ("set_function", r"SOURce{output}:FUNCtion:SHAPe\tSINusoid"),
+        ("query_output", r"OUTPut{output}:STATe?\u0085"),
+    ],
+)
+def test_control_characters_in_command_text_are_refused(tmp_path, op, text):
+    """IEEE 488.2 §7.5: LF ends a program message, so a line break inside an operation's
+    text would start a command the harness never checked.  Refused at load time, naming
+    file, field and line; the same for every command-text field."""
+    line_text = next(ln for ln in GEN.splitlines() if ln.startswith(f"{op} = "))
+    p = _write(tmp_path, GEN.replace(line_text, f'{op} = "{text}"'))
+    line = next(i for i, t in enumerate(p.read_text().splitlines(), 1) if t.startswith(f"{op} ="))
+    with pytest.raises(ProfileError) as ei:
+        load_profile(p)
+    e = ei.value
+    assert e.path == str(p)
+    assert e.location == f"commands.{op} (line {line})"
+    assert "control character" in e.reason
+    assert e.hint
+
+
+def test_control_character_in_trigger_source_template_is_refused(tmp_path):
+    text = (FIXTURE_PROFILES / "scpi-scope.toml").read_text()
+    old = 'trigger_input_source = "INTernal{input}"'
+    assert old in text
+    p = _write(tmp_path, text.replace(old, r'trigger_input_source = "INTernal{input}\n*RST"'))
+    with pytest.raises(ProfileError, match="control character") as ei:
+        load_profile(p)
+    assert (ei.value.location or "").startswith("settings.trigger_input_source")
+
+
+def test_multi_line_toml_string_is_refused(tmp_path):
+    """A TOML multi-line string puts a real line feed in the text (TOML 1.0, "String")."""
+    line_text = next(ln for ln in GEN.splitlines() if ln.startswith("set_amplitude = "))
+    smuggled = 'set_amplitude = """SOURce{output}:VOLTage {amplitude}\nSOURce{output}:VOLTage 5"""'
+    p = _write(tmp_path, GEN.replace(line_text, smuggled))
+    with pytest.raises(ProfileError, match=r"commands\.set_amplitude \(line \d+\).*U\+000A"):
+        load_profile(p)
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "field"),
+    [
+        ("retries = 1 ", "retries = 1000000 ", "station.retries"),
+        ("timeout_ms = 5000", "timeout_ms = 600000", "station.timeout_ms"),
+    ],
+)
+def test_station_waits_are_bounded(tmp_path, old, new, field):
+    """An unbounded retry count or timeout keeps a board driven while a lost instrument
+    says nothing: both are capped, the error names file, field and the allowed range."""
+    assert old in STATION
+    p = _write(tmp_path, STATION.replace(old, new, 1), "station.toml")
+    with pytest.raises(StationFileError) as ei:
+        load_station(p)
+    e = ei.value
+    assert e.path == str(p) and e.location == field
+    assert "above the maximum" in e.reason
+    assert e.hint and re.search(r"\d+-\d+", e.hint)
+
+
+def test_instrument_waits_are_bounded_too(tmp_path):
+    text = STATION.replace('profile = "scpi-scope"', 'profile = "scpi-scope"\nretries = 50', 1)
+    p = _write(tmp_path, text, "station.toml")
+    with pytest.raises(StationFileError) as ei:
+        load_station(p)
+    assert ei.value.location == "instrument.scope.retries"

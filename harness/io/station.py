@@ -17,8 +17,8 @@ from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError, StationFileError
-from harness.files import FieldReader, read_toml
-from harness.instruments.profiles import ROLES, Profile, load_profile
+from harness.io.profiles import ROLES, Profile, load_profile
+from harness.io.toml import FieldReader, read_toml
 
 __all__ = [
     "InstrumentConfig",
@@ -119,10 +119,27 @@ class StationConfig:
         return self.instruments.get(role)
 
 
-def _int(v: Any, lo: int, path: str | None, loc: str, hint: str) -> int:
+#: Longest wait for one reply.  Acquisitions get their own timeout from the record length,
+#: so this bounds only ordinary commands; a longer wait would keep a board driven while a
+#: lost instrument says nothing.
+MAX_TIMEOUT_MS = 30_000
+#: Most reconnect-and-retry attempts after a lost connection (each waits up to a timeout).
+MAX_RETRIES = 10
+
+
+def _int(v: Any, lo: int, path: str | None, loc: str, hint: str, hi: int | None = None) -> int:
     if isinstance(v, bool) or not isinstance(v, int) or v < lo:
         raise StationFileError(path, loc, f"{v!r} must be a whole number >= {lo}", hint=hint)
+    if hi is not None and v > hi:
+        raise StationFileError(path, loc, f"{v!r} is above the maximum {hi}", hint=hint)
     return v
+
+
+_TIMEOUT_HINT = (
+    f"milliseconds per I/O, 1-{MAX_TIMEOUT_MS} (e.g. 5000); acquisitions get their own "
+    "timeout from the record length"
+)
+_RETRIES_HINT = f"reconnect attempts after a lost connection, 0-{MAX_RETRIES} (e.g. 1)"
 
 
 def station_from_dict(
@@ -160,9 +177,9 @@ def station_from_dict(
             hint='"@py" for pyvisa-py, "@ivi" or a path to a VISA library',
         )
     timeout_ms = _int(
-        st.get("timeout_ms", 5000), 1, path, "station.timeout_ms", "milliseconds per I/O, e.g. 5000"
+        st.get("timeout_ms", 5000), 1, path, "station.timeout_ms", _TIMEOUT_HINT, MAX_TIMEOUT_MS
     )
-    retries = _int(st.get("retries", 1), 0, path, "station.retries", "reconnect attempts, e.g. 1")
+    retries = _int(st.get("retries", 1), 0, path, "station.retries", _RETRIES_HINT, MAX_RETRIES)
     insts = doc.get("instrument", {})
     if not isinstance(insts, dict) or not insts:
         raise rd.fail(
@@ -219,9 +236,16 @@ def station_from_dict(
             profile=prof,
             expect_idn=idn,
             timeout_ms=_int(
-                t.get("timeout_ms", timeout_ms), 1, path, f"{loc}.timeout_ms", "milliseconds"
+                t.get("timeout_ms", timeout_ms),
+                1,
+                path,
+                f"{loc}.timeout_ms",
+                _TIMEOUT_HINT,
+                MAX_TIMEOUT_MS,
             ),
-            retries=_int(t.get("retries", retries), 0, path, f"{loc}.retries", "e.g. 1"),
+            retries=_int(
+                t.get("retries", retries), 0, path, f"{loc}.retries", _RETRIES_HINT, MAX_RETRIES
+            ),
         )
     return StationConfig(
         name=name,

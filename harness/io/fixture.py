@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import FixtureFileError, StationFileError
-from harness.files import FieldReader, read_toml
+from harness.io.toml import FieldReader, read_toml
 from harness.model.board import Board, CommonEmitter, EmitterFollower
 
 #: Operating-point quantities per stage family (the keys of model.operating_point()).

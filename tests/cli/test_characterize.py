@@ -21,9 +21,17 @@ import pytest
 from harness.cli.main import main
 from harness.model import compute_limits
 from harness.store import open_store
-from tests.line.conftest import BOARD_FILE
+from tests.support.bench import BOARD_FILE
+from tests.support.line import line_bench
 
 pytestmark = pytest.mark.wire
+
+
+@pytest.fixture(scope="module")
+def bench(board, tmp_path_factory):
+    """One simulated bench per module: (bench, station file, fixture file)."""
+    with line_bench(board, tmp_path_factory.mktemp("line")) as b:
+        yield b
 
 
 def test_characterize_on_sim(bench, board, tmp_path, capsys):
@@ -101,11 +109,11 @@ def test_level_sweep_capped_at_safe_level(board, tmp_path):
     import dataclasses
 
     from harness.instruments.bench import connect
-    from harness.instruments.station import load_station
+    from harness.io.fixture import load_fixture
+    from harness.io.station import load_station
     from harness.run.characterize import CharacterizeOptions, characterize
-    from harness.run.fixture import load_fixture
     from harness.sim.bench import SimBench
-    from tests.line.conftest import FIXTURE_TEXT
+    from tests.support.line import FIXTURE_TEXT
 
     cond = dataclasses.replace(board.conditions, safe_input_vrms=0.12)
     low_safe = dataclasses.replace(board, conditions=cond)

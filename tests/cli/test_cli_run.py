@@ -11,7 +11,7 @@ import pytest
 
 from harness.cli.main import main
 from harness.store import open_store
-from tests.run.conftest import BOARD_FILE, FIXTURE_FILE, free_port, sim_bench
+from tests.support.bench import BOARD_FILE, FIXTURE_FILE, free_port, sim_bench
 
 pytestmark = pytest.mark.wire
 

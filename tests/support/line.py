@@ -1,4 +1,4 @@
-"""Shared fixtures of the production-loop and characterisation tests.
+"""Shared helpers of the production-loop and characterisation tests.
 
 One simulated bench (127.0.0.1, ephemeral ports, no latency) per test module, with a
 one-channel fixture without DC test points: the loop's behaviour does not depend on the
@@ -8,14 +8,9 @@ number of channels, and ten boards stay fast.
 from __future__ import annotations
 
 import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
-
-import pytest
-
-from harness.files import load_board
-
-REPO = Path(__file__).resolve().parents[2]
-BOARD_FILE = REPO / "limits" / "demo-twin-preamp.toml"
 
 #: Channel A only, supply on with its current limit, no switch routes, no DMM points.
 FIXTURE_TEXT = """\
@@ -41,17 +36,11 @@ route = []
 """
 
 
-@pytest.fixture(scope="module")
-def board():
-    return load_board(BOARD_FILE)
-
-
-@pytest.fixture(scope="module")
-def bench(board, tmp_path_factory):
+@contextmanager
+def line_bench(board, tmp: Path) -> Iterator:
     """A started SimBench with its station and fixture files: (bench, station, fixture)."""
     from harness.sim.bench import SimBench
 
-    tmp = tmp_path_factory.mktemp("line")
     with SimBench(board, latency=False, host="127.0.0.1") as b:
         station = b.write_station(tmp / "station.toml")
         text = station.read_text()
@@ -59,8 +48,3 @@ def bench(board, tmp_path_factory):
         fixture = tmp / "fixture.toml"
         fixture.write_text(FIXTURE_TEXT)
         yield b, station, fixture
-
-
-def connections(bench) -> dict[str, int]:
-    """TCP connections each simulated instrument has accepted so far."""
-    return {role: srv.connections_served for role, srv in bench.servers.items()}

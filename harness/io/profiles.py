@@ -21,13 +21,14 @@ from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError
-from harness.files import read_toml
 from harness.instruments.scpi import DATATYPES, format_number
+from harness.io.toml import read_toml
 
 __all__ = [
     "DEFAULT_PROFILE_DIRS",
     "ROLES",
     "Profile",
+    "command_text",
     "load_profile",
     "profile_from_dict",
 ]
@@ -176,7 +177,25 @@ def _bits(v: Any) -> int:
 def _template(v: Any) -> str:
     if not isinstance(v, str) or "{input}" not in v:
         raise ValueError('must be text containing "{input}", e.g. "INTernal{input}"')
+    command_text(v)
     return v
+
+
+def command_text(text: str) -> str:
+    """Refuse a control character in text that goes to an instrument (ValueError).
+
+    A line feed (or CR, or any other C0 or C1 control, or DEL) inside an operation's text
+    would end the command there and start another one that no check of the harness sees
+    ("...AMPLitude {amplitude}\nSOURce1:VOLTage 5" sets 5 V behind the level cap).  One
+    operation is one program message line (IEEE 488.2 §7.5: LF terminates it)."""
+    for i, ch in enumerate(text):
+        code = ord(ch)
+        if code < 0x20 or 0x7F <= code <= 0x9F:
+            raise ValueError(
+                f"has a control character U+{code:04X} at character {i + 1}: one operation "
+                "is one command line, and a line break would start a command no check sees"
+            )
+    return text
 
 
 @dataclass(frozen=True)
@@ -346,6 +365,12 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
             )
         if not isinstance(text, str) or not text.strip():
             raise err(f"commands.{op}", "must be non-empty SCPI text", key=op)
+        try:
+            command_text(text)
+        except ValueError as exc:
+            raise err(
+                f"commands.{op}", str(exc), "write the command on one line, no escapes", op
+            ) from None
         try:
             names = _placeholders(text)
         except ValueError as exc:

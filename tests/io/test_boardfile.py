@@ -8,10 +8,9 @@ import pytest
 
 from harness.cli.main import main
 from harness.errors import BoardFileError
-from harness.files import load_board
+from harness.io.toml import load_board
 from harness.model import design_channel, validate_board
-
-from .boards import CE_STAGE, board_text, write_board
+from tests.support.boards import CE_STAGE, board_text, write_board
 
 DEMOS = ("limits/demo-twin-preamp.toml", "limits/demo-opamp-line.toml")
 
