@@ -6,6 +6,7 @@ measurement floor of the bench.  Imports nothing of the project except harness.e
 """
 
 from harness.measure.bracket import (
+    FLOOR_TO_READING_U,
     ClipCriterion,
     SearchStep,
     StepPoint,
@@ -32,6 +33,7 @@ from harness.measure.units import dbu_to_vrms, vrms_to_dbu
 from harness.measure.windows import WindowProperties, blackman_harris4, window_properties
 
 __all__ = [
+    "FLOOR_TO_READING_U",
     "ClipCriterion",
     "ClipEvidence",
     "CoherentPlan",
