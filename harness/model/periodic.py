@@ -112,19 +112,20 @@ def solve_periodic(
     ``weights``: the quadrature giving the period mean from the points; ``state``: the start
     (the rest bias, or a nearby solution).  Stops when every junction step is below ``tol_v``.
     """
-    i_s, bf, br, inv_vaf, v_t = c["is_a"], c["beta_f"], c["beta_r"], c["inv_vaf"], c["v_t"]
-    r_b, r_e, r_cac = c["r_b"], c["r_e"], c["r_cac"]
-    k_e = c["k_e"]
-    # constant borders: dF/dm
-    b11 = -(c["r_th"] - r_b) - k_e
-    b12 = -k_e
-    b21 = -(c["r_th"] - r_b)
-    b22 = c["r_cdc"] - r_cac
-    v_crit = v_t * np.log(v_t / (np.sqrt(2.0) * i_s))
-    vbe, vbc = state.vbe.copy(), state.vbc.copy()
-    m_b, m_c = state.m_b.copy(), state.m_c.copy()
+    full_vbe, full_vbc = state.vbe.copy(), state.vbc.copy()
+    full_mb, full_mc = state.m_b.copy(), state.m_c.copy()
+    idx = np.arange(full_vbe.shape[0])
+    cw = {k: np.broadcast_to(c[k], (idx.size, 1)) for k in STAGE_KEYS}
+    vs = v_s
+    vbe, vbc, m_b, m_c = full_vbe, full_vbc, full_mb, full_mc
     w = weights
     for _ in range(max_iterations):
+        i_s, bf, br, inv_vaf, v_t = cw["is_a"], cw["beta_f"], cw["beta_r"], cw["inv_vaf"], cw["v_t"]
+        r_b, r_e, r_cac, k_e = cw["r_b"], cw["r_e"], cw["r_cac"], cw["k_e"]
+        b11 = -(cw["r_th"] - r_b) - k_e
+        b12 = -k_e
+        b21 = -(cw["r_th"] - r_b)
+        b22 = cw["r_cdc"] - r_cac
         e1 = i_s * np.exp(np.minimum(vbe / v_t, 80.0))
         e2 = i_s * np.exp(np.minimum(vbc / v_t, 80.0))
         icc, iec = e1 - i_s, e2 - i_s
@@ -136,10 +137,9 @@ def solve_periodic(
         dc2 = -g2 * (q + 1.0 / br) - (icc - iec) * inv_vaf
         db1 = g1 / bf
         db2 = g2 / br
-        vb0 = c["v_th"] - (c["r_th"] - r_b) * m_b[:, None]
-        base = vb0 + v_s - r_b * i_b
+        base = cw["v_th"] - (cw["r_th"] - r_b) * m_b[:, None] + vs - r_b * i_b
         f1 = base - k_e * (m_b + m_c)[:, None] - r_e * (i_b + i_c) - vbe
-        f2 = base - (c["v_cc"] - b22 * m_c[:, None]) + r_cac * i_c - vbc
+        f2 = base - (cw["v_cc"] - b22 * m_c[:, None]) + r_cac * i_c - vbc
         j11 = -r_b * db1 - r_e * (db1 + dc1) - 1.0
         j12 = -r_b * db2 - r_e * (db2 + dc2)
         j21 = -r_b * db1 + r_cac * dc1
@@ -160,16 +160,26 @@ def solve_periodic(
         det = s11 * s22 - s12 * s21
         dm_b = (s22 * r1 - s12 * r2) / det
         dm_c = (s11 * r2 - s21 * r1) / det
-        d1 = -a1 - c11 * dm_b[:, None] - c12 * dm_c[:, None]
-        d2 = -a2 - c21 * dm_b[:, None] - c22 * dm_c[:, None]
-        new_be, new_bc = vbe + d1, vbc + d2
+        new_be = vbe - a1 - c11 * dm_b[:, None] - c12 * dm_c[:, None]
+        new_bc = vbc - a2 - c21 * dm_b[:, None] - c22 * dm_c[:, None]
+        v_crit = v_t * np.log(v_t / (np.sqrt(2.0) * i_s))
         _pnjlim(new_be, vbe, v_t, v_crit)
         _pnjlim(new_bc, vbc, v_t, v_crit)
-        step = max(float(np.max(np.abs(new_be - vbe))), float(np.max(np.abs(new_bc - vbc))))
+        row_step = np.maximum(np.abs(new_be - vbe).max(axis=1), np.abs(new_bc - vbc).max(axis=1))
         vbe, vbc = new_be, new_bc
         m_b, m_c = m_b + dm_b, m_c + dm_c
-        if step < tol_v:
+        done = row_step < tol_v
+        if done.all():
             break
+        if done.mean() > 0.5:  # carry on with the rows still moving only
+            full_vbe[idx], full_vbc[idx], full_mb[idx], full_mc[idx] = vbe, vbc, m_b, m_c
+            keep = ~done
+            idx = idx[keep]
+            vbe, vbc, m_b, m_c, vs = vbe[keep], vbc[keep], m_b[keep], m_c[keep], vs[keep]
+            cw = {k: v[keep] for k, v in cw.items()}
+    full_vbe[idx], full_vbc[idx], full_mb[idx], full_mc[idx] = vbe, vbc, m_b, m_c
+    vbe, vbc = full_vbe, full_vbc
+    i_s, bf, br, inv_vaf, v_t = c["is_a"], c["beta_f"], c["beta_r"], c["inv_vaf"], c["v_t"]
     e1 = i_s * np.expm1(np.minimum(vbe / v_t, 80.0))
     e2 = i_s * np.expm1(np.minimum(vbc / v_t, 80.0))
     i_c = (e1 - e2) * (1.0 - vbc * inv_vaf) - e2 / br
