@@ -21,7 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import compute_limits
 from harness.model.core import evaluate_channel
 from harness.model.limits import (

@@ -89,16 +89,6 @@ class ValueParseError(StageproofError, ValueError):
         super().__init__(f"cannot read value {text!r}: {reason}", hint=hint)
 
 
-class DesignError(StageproofError, ValueError):
-    """The circuit described cannot work as an amplifier (saturated at rest, cut off,
-    cannot drive its load).  Raised by the model; loaders wrap it in BoardFileError."""
-
-    def __init__(self, location: str, reason: str, *, hint: str | None = None) -> None:
-        self.location = location
-        self.reason = reason
-        super().__init__(f"{location}: {reason}", hint=hint)
-
-
 class MemoryBudgetError(StageproofError, MemoryError):
     """A request would need more memory than the machine can give (Monte Carlo boards,
     a capture that claims gigabytes): refused before anything is allocated.

@@ -120,7 +120,7 @@ def _safe_name(serial: str) -> str:
 
 
 def _check_output(out: Path) -> None:
-    from harness.report import ReportError
+    from harness.errors import ReportError
 
     if out.is_dir():
         raise ReportError("-o", f"{out} is a folder", hint="give a file name ending in .html")
@@ -161,7 +161,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in thd),
-                        tuple(p.thd_percent for p in thd),
+                        tuple(p.thd_percent for p in thd if p.thd_percent is not None),
                         "measured THD",
                     ),
                 ),
@@ -182,7 +182,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in lv),
-                        tuple(p.gain_db for p in lv),
+                        tuple(p.gain_db for p in lv if p.gain_db is not None),
                         "measured gain",
                     ),
                 ),

@@ -1,8 +1,8 @@
 """``stageproof demo``: test three demo boards on a simulated bench, no hardware needed.
 
 Starts the simulated bench itself (SCPI servers on 127.0.0.1, ephemeral ports, no
-latency), tests three boards of the demo type limits/demo-twin-preamp.toml (packaged in
-harness/data so an installed copy works from any folder): one good, one with the emitter
+latency), tests three boards of the demo type limits/demo-twin-preamp.toml (shipped in the
+package, so an installed copy works from any folder): one good, one with the emitter
 bypass capacitor C102 open (channel A's gain falls), one with bias resistor R201 drifted
 to 1.5x (channel B clips early on one half-cycle), and prints the verdicts.
 """
@@ -15,6 +15,12 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from harness.run.sequence import RunResult
+
+from harness.store import redact
 
 DEMO_BOARD = "demo-twin-preamp.toml"
 DEMO_FIXTURE = "fixture-twin-preamp.toml"
@@ -54,11 +60,12 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def run_demo(
     db: str | Path, workdir: Path, *, progress_console=None, settle_wait_s: float | None = None
-) -> list[tuple[DemoBoard, object]]:
+) -> list[tuple[DemoBoard, RunResult]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
-    from harness.io.toml import load_board
+    from harness.io.board import load_board
+    from harness.io.packaged import packaged
     from harness.model import compute_limits
-    from harness.run.runner import execute, packaged, prepare
+    from harness.run.runner import execute, prepare
     from harness.run.sequence import RunOptions
     from harness.sim.bench import SimBench
 
@@ -127,7 +134,8 @@ def run(args: argparse.Namespace) -> int:
         )
     console.print(table)
     console.print(
-        Text(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s"), highlight=False
+        Text(f"results stored in {redact(str(args.db))}; {time.perf_counter() - t0:.1f} s"),
+        highlight=False,
     )
     if args.keep:
         console.print(Text(f"working folder kept: {workdir}"), highlight=False)
@@ -139,8 +147,9 @@ def run(args: argparse.Namespace) -> int:
 
 def follow_up_commands(db: str | Path) -> list[str]:
     """The commands to look at the demo's results, each with ``--db`` of the demo's database:
-    without it they would look for the default results file and find none."""
-    q = shlex.quote(str(db))
+    without it they would look for the default results file and find none.  A server URL is
+    shown without its password (libpq takes it from PGPASSWORD or ~/.pgpass)."""
+    q = shlex.quote(redact(str(db)).replace(":***@", "@"))
     _good, gain_fault, bias_fault = (d.serial for d in DEMO_BOARDS)
     return [
         f"stageproof results --db {q}",

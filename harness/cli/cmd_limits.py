@@ -12,7 +12,7 @@ import math
 import sys
 
 from harness import jsontext
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
 from harness.run.runner import check_limits_memory

@@ -25,6 +25,7 @@ from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
+from harness.store import redact
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
 #: its end and refused, so its tail never becomes the next serial number.
@@ -172,7 +173,7 @@ class TerminalUI:
         t.add_row("station", info.station)
         t.add_row("fixture", info.fixture)
         t.add_row("operator", info.operator)
-        t.add_row("results", info.db)
+        t.add_row("results", redact(info.db))
         t.add_row("limits digest", info.limits_digest)
         if info.limits_method:
             t.add_row("limits", info.limits_method)

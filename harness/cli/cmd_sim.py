@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import StageproofError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 
 LOOPBACK = "127.0.0.1"
 

@@ -28,6 +28,8 @@ COMMANDS: tuple[str, ...] = (
     "report",
     "diagnose",
     "characterize",
+    "store",
+    "web",
 )
 
 
@@ -45,13 +47,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("-v", "--verbose", action="store_true", help="log instrument traffic")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in COMMANDS:
-        try:
-            module = importlib.import_module(f"harness.cli.cmd_{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"harness.cli.cmd_{name}":
-                continue  # command not built yet in this tree
-            raise
-        module.register(sub)
+        importlib.import_module(f"harness.cli.cmd_{name}").register(sub)
     return parser
 
 

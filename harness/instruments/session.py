@@ -27,12 +27,13 @@ import logging
 import threading
 import time
 from collections.abc import Callable
-from typing import Any, TypeVar
+from typing import Any, TypeVar, cast
 
 import numpy as np
 import pyvisa
 from pyvisa import constants
 from pyvisa.errors import VisaIOError
+from pyvisa.resources import MessageBasedResource
 
 from harness.errors import (
     ConnectionLost,
@@ -42,6 +43,7 @@ from harness.errors import (
     MalformedReply,
     ScpiError,
 )
+from harness.instruments.config import Profile
 from harness.instruments.scpi import (
     DATATYPES,
     NO_ERROR,
@@ -51,7 +53,6 @@ from harness.instruments.scpi import (
     parse_error_reply,
     parse_idn,
 )
-from harness.io.profiles import Profile
 
 __all__ = ["Session", "resource_manager"]
 
@@ -123,7 +124,7 @@ class Session:
         self._broken = False
         self._in_reconnect = False
         self._hooks: list[Callable[[], None]] = []
-        self._recovery_hooks: list[Callable[[], None]] = []
+        self._recovery_hooks: list[Callable[[], object]] = []
         #: How often this session had to recover (a timeout or a lost connection).
         self.troubles = 0
 
@@ -144,7 +145,7 @@ class Session:
         """``hook()`` runs after every reconnect to restore the instrument's settings."""
         self._hooks.append(hook)
 
-    def add_recovery_hook(self, hook: Callable[[], None]) -> None:
+    def add_recovery_hook(self, hook: Callable[[], object]) -> None:
         """``hook()`` runs before every recovery attempt (resynchronise or reconnect); it
         must not raise (an exception is logged and the recovery goes on)."""
         self._recovery_hooks.append(hook)
@@ -191,7 +192,10 @@ class Session:
         rm = self._rm or resource_manager(self.visa_library)
         log.debug("%s open (role %s, timeout %d ms)", self.resource, self.role, self.timeout_ms)
         try:
-            res = rm.open_resource(self.resource, open_timeout=self.timeout_ms)
+            res = cast(
+                MessageBasedResource,
+                rm.open_resource(self.resource, open_timeout=self.timeout_ms),
+            )
         except (VisaIOError, OSError, ValueError) as exc:
             raise ConnectionLost(
                 f"cannot open: {exc}",

@@ -15,30 +15,27 @@ import math
 import re
 import string
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError
-from harness.instruments.scpi import DATATYPES, format_number
+from harness.instruments.config import Profile
+from harness.instruments.scpi import DATATYPES
+from harness.io.packaged import PROFILE_DIR
 from harness.io.toml import read_toml
 
 __all__ = [
     "DEFAULT_PROFILE_DIRS",
     "ROLES",
-    "Profile",
     "command_text",
     "load_profile",
     "profile_from_dict",
 ]
 
-_PKG = Path(__file__).resolve().parent.parent
-#: Where profile names are looked up: the repository's fixtures, then the packaged copy.
-DEFAULT_PROFILE_DIRS: tuple[Path, ...] = (
-    _PKG.parent / "fixtures" / "instruments",
-    _PKG / "data" / "instruments",
-)
+#: Where profile names are looked up: the profiles shipped in fixtures/instruments/.
+DEFAULT_PROFILE_DIRS: tuple[Path, ...] = (PROFILE_DIR,)
 
 
 @dataclass(frozen=True)
@@ -260,39 +257,6 @@ def _line_of(raw: bytes, key: str) -> int | None:
     return raw[: m.start()].count(b"\n") + 1 if m else None
 
 
-@dataclass(frozen=True)
-class Profile:
-    """A validated instrument profile; ``settings`` hold clean values with defaults applied."""
-
-    name: str
-    role: str
-    settings: Mapping[str, Any]
-    commands: Mapping[str, str]
-    description: str = ""
-    path: str | None = None
-    placeholders: Mapping[str, frozenset[str]] = field(default_factory=dict, repr=False)
-
-    def has(self, op: str) -> bool:
-        return op in self.commands
-
-    def render(self, op: str, **params: Any) -> str:
-        """The SCPI text of ``op`` with numbers formatted as SCPI wants (base units)."""
-        try:
-            text = self.commands[op]
-        except KeyError:
-            raise ProfileError(
-                self.path,
-                f"commands.{op}",
-                f"no operation {op!r} in this {self.role} profile",
-                hint=f'add {op} = "..." under [commands]',
-            ) from None
-        values = {k: v if isinstance(v, str) else format_number(v) for k, v in params.items()}
-        missing = self.placeholders.get(op, frozenset()) - values.keys()
-        if missing:  # a driver bug, not a user one: load-time checks make this unreachable
-            raise ProfileError(self.path, f"commands.{op}", f"no value for {sorted(missing)}")
-        return text.format_map(values)
-
-
 def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: bytes = b"") -> Profile:
     """Validate a parsed profile document (see module docstring)."""
 
@@ -302,8 +266,10 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
 
     unknown = set(doc) - {"profile", "settings", "commands"}
     if unknown:
-        name = sorted(unknown)[0]
-        raise err(name, f"unknown section [{name}]", "use only [profile], [settings], [commands]")
+        section = sorted(unknown)[0]
+        raise err(
+            section, f"unknown section [{section}]", "use only [profile], [settings], [commands]"
+        )
     head = doc.get("profile")
     if not isinstance(head, dict):
         raise err("profile", "missing [profile] table", "add [profile] with name and role")
@@ -433,9 +399,9 @@ def load_profile(
 ) -> Profile:
     """Load a profile by name (``scpi-scope``) or path (``benches/my-scope.toml``).
 
-    A name is looked up in ``search_dirs`` (default: the repository's fixtures/instruments,
-    then the copy packaged in harness/data/instruments); a path is taken relative to
-    ``base_dir`` (the station file's folder).  ``role`` checks the profile is for it.
+    A name is looked up in ``search_dirs`` (default: the shipped fixtures/instruments); a
+    path is taken relative to ``base_dir`` (the station file's folder).  ``role`` checks the
+    profile is for it.
     """
     dirs = tuple(search_dirs) if search_dirs is not None else DEFAULT_PROFILE_DIRS
     ref = str(name_or_path)

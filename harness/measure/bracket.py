@@ -14,7 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Literal
+from typing import Literal, cast
 
 import numpy as np
 
@@ -101,7 +101,7 @@ def _as_points(points: Sequence[object]) -> list[StepPoint]:
             sp = StepPoint(float(p.input_vrms), p.thd_percent, p.gain_db, u)
         else:
             try:
-                lv, thd, g, *rest = p  # type: ignore[misc]
+                lv, thd, g, *rest = cast("tuple[float, float | None, float | None]", p)
             except (TypeError, ValueError):
                 raise AnalysisError(
                     f"a step point must be (level_vrms, thd, gain_db[, thd_u]): {p!r}"
@@ -109,6 +109,11 @@ def _as_points(points: Sequence[object]) -> list[StepPoint]:
             if len(rest) > 1:
                 raise AnalysisError(
                     f"a step point must be (level_vrms, thd, gain_db[, thd_u]): {p!r}"
+                )
+            if thd is None or g is None:
+                raise AnalysisError(
+                    f"step at {float(lv):.4g} V rms has no valid THD/gain (over-range record?)",
+                    hint="re-measure with a wider scope range",
                 )
             sp = StepPoint(float(lv), float(thd), float(g), float(rest[0]) if rest else 0.0)
         if sp.thd_percent is None or sp.gain_db is None:
@@ -149,7 +154,8 @@ def _score(c: SweepCurves, criterion: ClipCriterion) -> np.ndarray:
     """Signed distance to the criterion: >= 0 means the criterion is met (clipping)."""
     if criterion.kind == "thd":
         thd = np.maximum(c.thd_percent, 1e-12)
-        return np.log10(thd) - math.log10(criterion.threshold_percent)
+        score: np.ndarray = np.log10(thd) - math.log10(criterion.threshold_percent)
+        return score
     return c.compression_db - criterion.db
 
 
@@ -162,9 +168,9 @@ def _first_crossing(score: np.ndarray) -> int | None:
 
 
 def clip_threshold(
-    levels_vrms: Sequence[float],
-    thd_percent: Sequence[float],
-    gain_db: Sequence[float],
+    levels_vrms: Sequence[float] | np.ndarray,
+    thd_percent: Sequence[float | None] | np.ndarray,
+    gain_db: Sequence[float | None] | np.ndarray,
     criterion: ClipCriterion | None = None,
     small_signal_gain_db: float | None = None,
     thd_u_percent: Sequence[float] | None = None,
@@ -259,8 +265,13 @@ def next_search_level(
     if not (start_vrms > 0 and max_vrms > 0 and resolution_db > 0 and expand_db > 0):
         raise AnalysisError("start_vrms, max_vrms, resolution_db and expand_db must be positive")
     lo_lim = min_vrms if min_vrms is not None else start_vrms / 100
-    to_db = lambda v: 20 * math.log10(v)  # noqa: E731
-    from_db = lambda d: 10 ** (d / 20)  # noqa: E731
+
+    def to_db(v: float) -> float:
+        return 20 * math.log10(v)
+
+    def from_db(d: float) -> float:
+        return float(10 ** (d / 20))
+
     max_db, min_db = to_db(max_vrms), to_db(lo_lim)
     order = _as_points(points)
     if not order:

@@ -62,7 +62,7 @@ def plan_coherent(
     lengths = sorted({int(n) for n in record_lengths if int(n) > 0})
     if not rates or not lengths:
         raise AnalysisError("plan_coherent needs at least one sample rate and one record length")
-    best: tuple | None = None
+    best: tuple[tuple[bool, int, float, float], CoherentPlan] | None = None
     for fs in rates:
         for n in lengths:
             j0 = target_hz * n / fs

@@ -152,8 +152,16 @@ def analyze_uniform(
         _checks.check_fundamental(frequency_hz, fs, n, bw)
     in_lo, in_hi = _adc("in_adc", in_adc)
     out_lo, out_hi = _adc("out_adc", out_adc)
-    lsb_in = (in_hi - in_lo) / 2**adc_bits if adc_bits and in_lo is not None else None
-    lsb_out = (out_hi - out_lo) / 2**adc_bits if adc_bits and out_lo is not None else None
+    lsb_in = (
+        (in_hi - in_lo) / 2**adc_bits
+        if adc_bits and in_lo is not None and in_hi is not None
+        else None
+    )
+    lsb_out = (
+        (out_hi - out_lo) / 2**adc_bits
+        if adc_bits and out_lo is not None and out_hi is not None
+        else None
+    )
 
     core_in, core_out = fit_pair(x, y, fs, frequency_hz, k_max)
     f = core_in.omega * fs / (2 * np.pi)
@@ -208,7 +216,7 @@ def analyze_uniform(
     r_full = y - core_out.model(dtype)
     noise_diff = float(np.sqrt(np.mean(np.square(np.diff(r_full), dtype=np.float64)) / 2))
     noise = min(float(np.sqrt(core_out.sum_sq / n)), noise_diff)
-    full_scale = (out_hi - out_lo) if out_lo is not None else None
+    full_scale = (out_hi - out_lo) if out_lo is not None and out_hi is not None else None
     q = full_scale / 2**adc_bits / np.sqrt(12) if adc_bits and full_scale else 0.0
     floor = measurement_floor(
         adc_bits if full_scale else None,

@@ -74,7 +74,8 @@ def solve_junction(
         v = v - step
         if np.all(np.abs(step) < 1e-13):
             break
-    return v
+    out: np.ndarray = v
+    return out
 
 
 # --- results -----------------------------------------------------------------------------------
@@ -938,7 +939,8 @@ def harmonics(
 def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
     """THD_F in percent: sqrt(sum of harmonics 2..k_max squared) over the fundamental."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        return 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+        thd: np.ndarray = 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+    return thd
 
 
 def criterion_level(

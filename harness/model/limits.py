@@ -431,7 +431,9 @@ def _channel_limits(
     op = {}
     for key, arr in operating_point_arrays(ch, res).items():
         lo, hi = _interval(arr[ok], coverage)
-        nom = float(op_nominal[key])
+        v_nom = op_nominal[key]
+        assert v_nom is not None  # every BJT stage has all three voltages
+        nom = float(v_nom)
         op[key] = Limit(key, "V", nom, min(lo, nom) - u["bias_v"], max(hi, nom) + u["bias_v"])
     pos = res.clip_positive[ok]
     stage_idx = res.clip_stage[ok]

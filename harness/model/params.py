@@ -44,7 +44,7 @@ TEMPERATURE_K = 300.0
 
 def thermal_voltage(temperature_k: float = TEMPERATURE_K) -> float:
     """kT/q in volts (Boltzmann constant and elementary charge from scipy.constants)."""
-    return const.k * temperature_k / const.e
+    return float(const.k * temperature_k / const.e)
 
 
 @dataclass(frozen=True)

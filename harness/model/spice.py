@@ -20,6 +20,7 @@ from harness.model.board import (
     EmitterFollower,
     OpAmpInverting,
     OpAmpNonInverting,
+    Stage,
 )
 from harness.model.params import TEMPERATURE_K, channel_parameters, nominal_arrays
 
@@ -46,7 +47,9 @@ def _channel_body(
         def g(key: str, _nm: str = nm) -> float:
             return p[f"{_nm}.{key}"]
 
-        def cin(node: str, _st=st, _j=j, _prev=prev, _lines=lines) -> str:
+        def cin(
+            node: str, _st: Stage = st, _j: int = j, _prev: str = prev, _lines: list[str] = lines
+        ) -> str:
             if _st.c_in is not None:
                 _lines.append(f"CIN{_j} {_prev} {node} {_v(g('c_in'))}")
                 return node

@@ -19,9 +19,8 @@ from typing import Any
 import numpy as np
 
 from harness import __version__
-from harness.errors import AnalysisError, StoreError
+from harness.errors import AnalysisError, ReportError, StoreError
 from harness.report import html as h
-from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Band, Plot, Rule, Series, render_svg
 from harness.report.spectrum import spectrum_view, waveform_window
 from harness.store import MeasurementRow, RecordRow, ResultStore, RunRow, SweepPointRow
@@ -103,9 +102,13 @@ def load_board_report(
     sweeps = store.sweep_points(run.run_id)
     records = store.records(run.run_id)
     names: list[str] = []
-    for item in (*ms, *sweeps, *records):
-        if item.channel and item.channel not in names:
-            names.append(item.channel)
+    for channel in (
+        *(m.channel for m in ms),
+        *(p.channel for p in sweeps),
+        *(r.channel for r in records),
+    ):
+        if channel and channel not in names:
+            names.append(channel)
     channels = tuple(
         ChannelData(
             name,
@@ -123,11 +126,11 @@ def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> B
     ranking: the board file moved, the run holds nothing to diagnose from)."""
     from harness.diagnose import diagnose_run
     from harness.errors import StageproofError
-    from harness.io.toml import load_board
+    from harness.io.board import load_stored_board
 
     run = report.run
     try:
-        board = load_board(run.board_file, validate=False)
+        board = load_stored_board(run.board_text, run.board_file, validate=False)
         result: Any = diagnose_run(store, run.run_id, board, top=top)
     except StageproofError as exc:
         result = f"no fault diagnosis: {exc}"
@@ -200,7 +203,8 @@ def nominal_record(records: Sequence[RecordRow]) -> RecordRow | None:
     """The record labelled "nominal", else the first whose label starts with it."""
     exact = [r for r in records if r.label.lower() == NOMINAL_LABEL]
     loose = [r for r in records if r.label.lower().startswith(NOMINAL_LABEL)]
-    return (exact or loose or [None])[0]
+    found = exact or loose
+    return found[0] if found else None
 
 
 def clip_record(records: Sequence[RecordRow], threshold_vrms: float | None) -> RecordRow | None:

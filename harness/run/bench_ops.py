@@ -24,6 +24,7 @@ import numpy as np
 
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.board import read_board_text
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
 from harness.model.board import Board
@@ -248,6 +249,7 @@ def run_header(
         limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
+        board_text=read_board_text(board_file, board.digest),
     )
 
 

@@ -452,7 +452,9 @@ class Characterizer(BoardRun):
             pts = [p for p in ch.frequency_points if p.gain_db is not None]
             if not pts:
                 return
-            g = [min(pts, key=lambda p: abs(math.log(p.frequency_hz / f_test))).gain_db]
+            nearest = min(pts, key=lambda p: abs(math.log(p.frequency_hz / f_test))).gain_db
+            assert nearest is not None  # pts hold only points with a gain
+            g = [nearest]
         ch.reference_gain_db = float(np.mean(g))
 
     # --- comparison rows -------------------------------------------------------------

@@ -47,9 +47,7 @@ from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
 from harness.run.bench_ops import (
     RANGE_FILL,
-    RANGE_UNDERUSE,
     BoardRun,
-    added_thd_percent,
     choose_range,
     limit_get,
     plan_record,
@@ -70,16 +68,11 @@ from harness.run.decisions import (
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 
-#: Kept importable from here (public names of this module before the shared bench module).
 __all__ = [
-    "RANGE_FILL",
-    "RANGE_UNDERUSE",
     "ChannelVerdict",
     "RunOptions",
     "RunResult",
     "Sequencer",
-    "added_thd_percent",
-    "choose_range",
     "run_board",
 ]
 
@@ -677,6 +670,7 @@ class Sequencer(BoardRun):
         ratio = {}
         for s in active:
             a = s.nominal
+            assert a is not None  # active channels have a nominal record (see above)
             ratio[s.conn.board_channel] = a.input_vrms / self.board.conditions.nominal_input_vrms
         n = 0
         while any(not s.done for s in active) and n < self.opt.max_search_acquisitions:
@@ -712,6 +706,7 @@ class Sequencer(BoardRun):
 
     def _next(self, s: _ChannelState, max_measured: float):
         lim = s.limits.clip_input_vrms
+        assert s.nominal is not None  # only channels with a nominal record are searched
         start = float(lim.nominal) * (
             s.nominal.input_vrms / self.board.conditions.nominal_input_vrms
         )
@@ -779,6 +774,7 @@ class Sequencer(BoardRun):
         """While no bracket exists, aim past the crossing the two nearest points predict
         (secant on score vs level in dB, overshooting by half the expansion step), instead
         of creeping in fixed steps; the move stays between 0.5x and 4x the expansion."""
+        assert step.level_vrms is not None  # a step that is not done has a level
         up = step.level_vrms > max(p.input_vrms for p in pts)
         ordered = sorted(pts, key=lambda p: p.input_vrms)
         a, b = (ordered[-2], ordered[-1]) if up else (ordered[1], ordered[0])
@@ -843,6 +839,7 @@ class Sequencer(BoardRun):
                     "asymmetry": asym,
                 }
             )
+            assert s.nominal is not None  # as in _next
             u_rel = amplitude_rel_u(_resid_ratio(s.nominal, "in"), s.nominal.n_samples)
             u_db = threshold_uncertainty_db(
                 0.0, u_rel, self.opt.bench, settled=True, fit_u_db=th.uncertainty_db or 0.0

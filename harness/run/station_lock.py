@@ -73,7 +73,7 @@ def _command_text() -> str:
         head = "stageproof"
     text = " ".join([head, *argv[1:]])
     text = "".join(c if c.isprintable() else "?" for c in text)
-    return text if len(text) <= 160 else text[:157] + "..."
+    return text if len(text) <= 300 else text[:297] + "..."
 
 
 def _holder_text(raw: str) -> str:

@@ -15,13 +15,17 @@ from __future__ import annotations
 
 import logging
 import math
-import re
 import time
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
 
-from harness.errors import FaultSpecError, StationFileError
+import tomli_w
+
+from harness.errors import FaultSpecError, ProfileError, StationFileError
+from harness.io.packaged import PROFILE_DIR
+from harness.io.profiles import profile_from_dict
+from harness.io.toml import read_toml
 from harness.model.board import Board
 from harness.sim.faults import InstrumentFault, is_instrument_fault, parse_instrument_fault
 from harness.sim.instruments import (
@@ -45,7 +49,6 @@ log = logging.getLogger("harness.sim")
 
 ROLES: tuple[str, ...] = ("generator", "scope", "switch", "dmm", "supply")
 _PROFILES = {r: f"scpi-{r}" for r in ROLES}
-_DEFAULT_SCOPE_PROFILE = Path(__file__).resolve().parents[2] / "fixtures" / "instruments"
 
 
 def split_faults(
@@ -274,17 +277,14 @@ class SimBench:
         return "\n".join(lines) + "\n"
 
     def write_station(self, path: str | Path) -> Path:
-        """Write the station file; a scope with more than four inputs gets its own profile
-        (a copy of the default with ``inputs`` changed) beside it."""
+        """Write the station file; a scope with other than four inputs gets its own profile
+        (the shipped default with ``inputs`` changed) beside it."""
         p = Path(path)
         profiles: dict[str, str] = {}
         inputs = self.scope.settings.inputs
         if inputs != 4:
-            src = (_DEFAULT_SCOPE_PROFILE / "scpi-scope.toml").read_text()
-            text = re.sub(r"(?m)^inputs = \d+", f"inputs = {inputs}", src)
-            text = text.replace('name = "scpi-scope"', f'name = "scpi-scope-{inputs}"')
             prof = p.with_name(f"scpi-scope-{inputs}.toml")
-            prof.write_text(text)
+            prof.write_text(scope_profile_text(inputs))
             profiles["scope"] = str(prof.resolve())
         p.write_text(self.station_text(profiles=profiles))
         return p
@@ -350,6 +350,18 @@ class SimBench:
             if all(s._listener is not None for s in self.servers.values()):
                 return
             time.sleep(0.01)
+
+
+def scope_profile_text(inputs: int) -> str:
+    """The shipped scope profile with ``inputs`` inputs, as a profile file: the default's
+    document with its name and ``settings.inputs`` changed, checked by the profile loader
+    before it is written, so the station written beside it always loads."""
+    doc, _ = read_toml(PROFILE_DIR / f"{_PROFILES['scope']}.toml", ProfileError)
+    doc["profile"]["name"] = f"{_PROFILES['scope']}-{inputs}"
+    doc["settings"]["inputs"] = inputs
+    profile_from_dict(doc)
+    head = f"# Scope profile written by `stageproof sim serve`: the default, {inputs} inputs.\n"
+    return head + "\n" + tomli_w.dumps(doc)
 
 
 def _esc(text: str) -> str:

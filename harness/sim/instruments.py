@@ -1,7 +1,7 @@
 """The five simulated instruments, each a command table over :class:`ScpiDevice`.
 
 They implement exactly the commands of the default profiles in ``fixtures/instruments``
-(checked by tests/sim/test_profiles_accepted.py) plus the SCPI forms around them
+(checked by tests/sim/test_sim_bench_files.py) plus the SCPI forms around them
 (queries, MIN/MAX, optional nodes).  Capabilities match the profiles' ``[settings]``.
 
 Conventions worth knowing:

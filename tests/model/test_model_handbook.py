@@ -12,7 +12,7 @@ import pytest
 import scipy.constants as const
 from scipy.special import iv
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point, thermal_voltage
 from harness.model.core import solve_junction
 from tests.support.boards import board_text, make_board, write_board

@@ -12,7 +12,7 @@ from scipy.integrate import quad
 from scipy.optimize import brentq
 
 from harness.cli.main import main
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.core import evaluate_channel
 from harness.model.design import to_design

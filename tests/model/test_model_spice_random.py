@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point
 from harness.model.board import Board
 from harness.model.design import large_signal_bias

@@ -13,6 +13,8 @@ import math
 import os
 import re
 import sqlite3
+import subprocess
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -102,6 +104,45 @@ def safe_vpp(board: Any) -> float:
 def generator_off(bench: Any) -> bool:
     """The simulated generator's output is off now (its own state, not the client's)."""
     return not bench.generator.output_on
+
+
+class LiveRun:
+    """One ``stageproof`` subprocess whose stdout is read line by line as it comes."""
+
+    def __init__(self, cmd: list[str], env: dict[str, str], *, stdin: int | None = None) -> None:
+        self.proc = subprocess.Popen(
+            cmd,
+            stdin=stdin,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            env=env,
+            cwd=REPO,
+            text=True,
+            bufsize=1,
+        )
+        self.lines: list[str] = []
+        self._lock = threading.Lock()
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+
+    def _read(self) -> None:
+        assert self.proc.stdout is not None
+        for line in self.proc.stdout:
+            with self._lock:
+                self.lines.append(line.rstrip("\n"))
+
+    def printed(self) -> list[str]:
+        with self._lock:
+            return list(self.lines)
+
+    def finish(self, timeout_s: float) -> tuple[int, str]:
+        rc = self.proc.wait(timeout_s)
+        self._reader.join(5)
+        err = self.proc.stderr.read() if self.proc.stderr else ""
+        for pipe in (self.proc.stdin, self.proc.stdout, self.proc.stderr):
+            if pipe is not None:
+                pipe.close()
+        return rc, err
 
 
 # --- read-only looks into a results database --------------------------------------------------

@@ -26,9 +26,7 @@ import random
 import re
 import signal
 import sqlite3
-import subprocess
 import sys
-import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -36,9 +34,9 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.reliability.rig import (
-    REPO,
+    LiveRun,
     integrity,
     safe_vpp,
     scaled,
@@ -59,44 +57,6 @@ SPAN_SHARE = 0.85
 #: A measurement line of the run's progress output: ``    A: gain = 32.1 dB [..] pass``.
 _MEAS = re.compile(r"^\s{4}(?:(?P<ch>[^:\s]+): )?(?P<name>[A-Za-z_][\w.@]*) = ")
 _STEP = re.compile(r"^> (?P<step>\w+):")
-
-
-class _Run:
-    """One ``stageproof run`` subprocess whose stdout is read line by line as it comes."""
-
-    def __init__(self, cmd: list[str], env: dict[str, str]) -> None:
-        self.proc = subprocess.Popen(
-            cmd,
-            stdout=subprocess.PIPE,
-            stderr=subprocess.PIPE,
-            env=env,
-            cwd=REPO,
-            text=True,
-            bufsize=1,
-        )
-        self.lines: list[str] = []
-        self._lock = threading.Lock()
-        self._reader = threading.Thread(target=self._read, daemon=True)
-        self._reader.start()
-
-    def _read(self) -> None:
-        assert self.proc.stdout is not None
-        for line in self.proc.stdout:
-            with self._lock:
-                self.lines.append(line.rstrip("\n"))
-
-    def printed(self) -> list[str]:
-        with self._lock:
-            return list(self.lines)
-
-    def finish(self, timeout_s: float) -> tuple[int, str]:
-        rc = self.proc.wait(timeout_s)
-        self._reader.join(5)
-        err = self.proc.stderr.read() if self.proc.stderr else ""
-        for pipe in (self.proc.stdout, self.proc.stderr):
-            if pipe is not None:
-                pipe.close()
-        return rc, err
 
 
 def _reported(lines: list[str]) -> tuple[list[tuple[str, str]], str | None]:
@@ -187,7 +147,7 @@ def _lane(folder: Path, strata: list[float]) -> _LaneResult:
         spans: list[float] = []
         for n in range(3):
             t0 = time.monotonic()
-            first = _Run(cmd(f"SN-WARM{n}"), env)
+            first = LiveRun(cmd(f"SN-WARM{n}"), env)
             while first.proc.poll() is None and _reported(first.printed())[1] is None:
                 time.sleep(0.005)
             t1 = time.monotonic()
@@ -217,7 +177,7 @@ def _lane(folder: Path, strata: list[float]) -> _LaneResult:
         killed: list[str] = []
         for i, frac in enumerate(strata):
             serial = f"SN-{folder.name}-{i:03d}"
-            run = _Run(cmd(serial), env)
+            run = LiveRun(cmd(serial), env)
             if frac < STARTUP_SHARE:  # during start-up, timed from the launch
                 delay = startup_s * frac / STARTUP_SHARE
             else:  # during the sequence, timed from its first step line
@@ -258,7 +218,7 @@ def _lane(folder: Path, strata: list[float]) -> _LaneResult:
                 assert prev[0][1] == "aborted", f"run of {killed[-2]} not recovered: {prev}"
 
         # The next run on the same station works, and recovers the last kill.
-        last = _Run(cmd("SN-AFTER"), env)
+        last = LiveRun(cmd("SN-AFTER"), env)
         rc, err = last.finish(120)
         assert rc in (0, 1), f"run after the kills failed ({rc}):\n{err}"
         max_vpp = bench.max_commanded_vpp()

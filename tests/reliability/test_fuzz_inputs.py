@@ -221,8 +221,8 @@ def _load_or_error(path: Path, loader: Any, *args: Any) -> Any:
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_fixture_file(rig_files: Any, tmp_path: Path, data: st.DataObject) -> None:
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
-    from harness.io.toml import load_board
 
     board = load_board(rig_files.board)
     doc = tomllib.loads(rig_files.fixture.read_text())
@@ -259,10 +259,10 @@ def test_mutated_profile(role: str, tmp_path: Path, data: st.DataObject) -> None
 @_SETTINGS
 @given(raw=st.binary(max_size=300))
 def test_random_bytes_as_config(name: str, rig_files: Any, tmp_path: Path, raw: bytes) -> None:
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.profiles import load_profile
     from harness.io.station import load_station
-    from harness.io.toml import load_board
 
     path = tmp_path / name
     path.write_bytes(raw)

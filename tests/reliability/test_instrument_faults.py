@@ -25,8 +25,8 @@ from typing import Any
 import pytest
 
 from harness.errors import RunAborted
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
-from harness.io.toml import load_board
 from harness.run.progress import NullProgress
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.faults import FAULT_KINDS
@@ -147,7 +147,9 @@ def test_fault_at_step(rig: dict[str, Any], cell: tuple[str, ...], kind: str) ->
     elapsed = time.monotonic() - t0
     bench.clear_faults()
     bench.wait_listening()
-    assert arm.armed_at is not None, f"the sequence never reached {event}"
+    assert arm.armed_at is not None, (
+        f"the sequence never reached {event}: {stored.status}, {stored.reason}"
+    )
     assert elapsed < CELL_LIMIT_S
     assert generator_off(bench), "generator output left on"
     assert bench.max_commanded_vpp() <= safe_vpp(board) * (1 + 1e-9)

@@ -2,8 +2,8 @@
 
 External checks: the faults a technician expects (common practice: an open emitter
 bypass capacitor leaves the unbypassed emitter resistance in the gain, A_v ≈ R_C/R_E';
-a drifted bias resistor moves the operating point and limits one half-cycle first, see
-NOTES.md "Amplifier facts"), and the clipping threshold of the simulated board computed
+a drifted bias resistor moves the operating point and limits one half-cycle first), and the
+clipping threshold of the simulated board computed
 directly from its physics on a fine level grid with the measure layer.
 """
 
@@ -55,8 +55,25 @@ def _ends_off(log) -> bool:
 
 
 @pytest.fixture(scope="module")
-def good(board, limits, tmp_path_factory):
-    return _run(board, limits, tmp_path_factory.mktemp("good"))
+def good_folder(tmp_path_factory):
+    return tmp_path_factory.mktemp("good")
+
+
+@pytest.fixture(scope="module")
+def good(board, limits, good_folder):
+    return _run(board, limits, good_folder)
+
+
+def test_run_keeps_the_board_file_text(good, board, good_folder):
+    """The stored board text is the exact file the limits came from: its SHA-256
+    (FIPS 180-4, Python's hashlib) is the board's digest."""
+    import hashlib
+
+    res = good[0]
+    with open_store(good_folder / "r.db", readonly=True) as store:
+        text = store.get_run(res.run_id).board_text
+    assert text is not None
+    assert hashlib.sha256(text.encode("utf-8")).hexdigest() == board.digest
 
 
 def test_good_board_passes(good, board):
@@ -110,7 +127,9 @@ def test_open_bypass_capacitor_lowers_gain(board, limits, tmp_path):
     ga = _row(res, "A", "gain")
     assert ga.decision == "fail" and ga.value < ga.low - 3.0
     assert _row(res, "B", "gain").decision == "pass"
-    assert res.channels["B"].verdict in ("PASS", "FAIL")  # B's verdict is its own
+    # A's fault leaves B alone: its own verdict, drawn from its own rows only, is a pass
+    assert res.channels["B"].verdict == "PASS"
+    assert res.channels["A"].verdict == "FAIL"
     assert "gain (fail)" in res.channels["A"].failing
 
 

@@ -19,10 +19,11 @@ from pathlib import Path
 import pytest
 
 from harness.errors import FaultSpecError
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.profiles import load_profile
 from harness.io.station import load_station
-from harness.io.toml import load_board, read_toml
+from harness.io.toml import read_toml
 from harness.sim.bench import ROLES, SimBench
 from harness.sim.faults import InstrumentFault, parse_instrument_fault
 
@@ -213,3 +214,25 @@ def test_cli_bad_fault_is_one_line_exit_2(tmp_path: Path) -> None:
     )
     assert proc.returncode == 2
     assert proc.stderr.startswith("stageproof: error:") and "Traceback" not in proc.stderr
+
+
+def test_a_four_channel_board_gets_a_five_input_scope_profile(tmp_path: Path) -> None:
+    """Four channels and the common input need five scope inputs: the station names a
+    profile written beside it, the shipped default with only its name and inputs changed."""
+    from tests.support.boards import four_channel_board_text
+
+    path = tmp_path / "four.toml"
+    path.write_text(four_channel_board_text())
+    board = load_board(path)
+    with SimBench(board) as bench:
+        station = load_station(bench.write_station(tmp_path / "station.toml"))
+        load_fixture(bench.write_fixture(tmp_path / "fixture.toml"), board, scope_inputs=5)
+    scope = station.get("scope").profile
+    default = load_profile("scpi-scope")
+    assert Path(scope.path) == (tmp_path / "scpi-scope-5.toml").resolve()
+    assert scope.name == "scpi-scope-5"
+    assert scope.settings["inputs"] == 5
+    assert {k: v for k, v in scope.settings.items() if k != "inputs"} == {
+        k: v for k, v in default.settings.items() if k != "inputs"
+    }
+    assert dict(scope.commands) == dict(default.commands)
