@@ -101,7 +101,7 @@ def _as_points(points: Sequence[object]) -> list[StepPoint]:
             sp = StepPoint(float(p.input_vrms), p.thd_percent, p.gain_db, u)
         else:
             try:
-                lv, thd, g, *rest = cast("tuple[float, float | None, float | None]", p)
+                lv, thd, g, *rest = cast("tuple[float, float | None, float | None, float]", p)
             except (TypeError, ValueError):
                 raise AnalysisError(
                     f"a step point must be (level_vrms, thd, gain_db[, thd_u]): {p!r}"
@@ -285,7 +285,7 @@ def next_search_level(
         curves.gain_db,
         crit,
         curves.small_signal_gain_db,
-        curves.thd_u_percent,
+        None if curves.thd_u_percent is None else [float(v) for v in curves.thd_u_percent],
     )
     i = _first_crossing(s)
     if i is None:

@@ -19,6 +19,7 @@ from harness.errors import BoardFileError
 from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower, stage_parts
 from harness.model.core import (
     THD_HARMONICS,
+    ChainSolution,
     ChannelArrays,
     LargeSignalChain,
     _cos_weights,
@@ -220,7 +221,7 @@ def _drive(
     input_vrms: float,
     params: Mapping[str, float] | None,
     n_points: int,
-):
+) -> tuple[Channel, ChainSolution]:
     """The nominal chain solved for ``input_vrms`` of fundamental at the input connector: the
     EMF behind ``source_ohm`` is scaled until the input reads that level (the base current
     is not linear, so the source's drop is not either); three passes settle it to 1e-6."""
@@ -253,7 +254,8 @@ def large_signal_harmonics(
     at its input connector, from the large-signal solution (index 1 is the fundamental)."""
     _, sol = _drive(board, channel_name, input_vrms, params, n_points)
     _, basis = _cos_weights(n_points // 2, THD_HARMONICS)
-    return np.abs(sol.out @ basis)[0]
+    h: np.ndarray = np.abs(sol.out @ basis)[0]
+    return h
 
 
 def large_signal_bias(
