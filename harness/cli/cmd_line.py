@@ -31,6 +31,9 @@ from harness.store import redact
 #: its end and refused, so its tail never becomes the next serial number.
 MAX_LINE = 4096
 MAX_OPERATOR = 64
+#: The prompts say what they want: asked once, then before each board.
+OPERATOR_PROMPT = "name of the operator> "
+SERIAL_PROMPT = "scan or type the board's serial> "
 
 # Block letters of our own design: 7 rows, each "X" drawn two cells wide.
 _GLYPHS: dict[str, tuple[str, ...]] = {
@@ -186,7 +189,7 @@ class TerminalUI:
         )
 
     def read_serial(self) -> str | None:
-        return self.prompt("serial> ")
+        return self.prompt(SERIAL_PROMPT)
 
     def ask(self, question: str, *, default: bool) -> bool:
         hint = "[Y/n]" if default else "[y/N]"
@@ -380,7 +383,7 @@ def _operator(args: argparse.Namespace, ui: TerminalUI, console: Any) -> str | N
         return check_operator(args.operator)
     while True:
         try:
-            name = ui.prompt("operator> ")
+            name = ui.prompt(OPERATOR_PROMPT)
         except KeyboardInterrupt:
             console.print("")
             return None

@@ -63,6 +63,11 @@ class RecordAnalysis:
     input_vrms: float
     harmonics: Harmonics | None = field(repr=False)
     clip: ClipEvidence = field(repr=False)
+    #: THD of the output record as recorded, the scope's own harmonics included (percent);
+    #: set when ``thd_percent`` is the value with them removed.
+    thd_raw_percent: float | None = None
+    #: ``thd_percent`` has the digitiser's own harmonics removed (added THD of the board).
+    scope_harmonics_removed: bool = False
 
     @property
     def thd_below_floor(self) -> bool:
@@ -95,6 +100,10 @@ class RecordAnalysis:
             "gain_db": _num(self.gain_db),
             "phase_deg": _num(self.phase_deg),
             "thd_percent": _num(self.thd_percent),
+            "thd_raw_percent": _num(
+                self.thd_percent if self.thd_raw_percent is None else self.thd_raw_percent
+            ),
+            "scope_harmonics_removed": self.scope_harmonics_removed,
             "thdn_percent": _num(self.thdn_percent),
             "thd_db": _num(self.thd_db),
             "sinad_db": _num(self.sinad_db),

@@ -632,7 +632,13 @@ class GroupScope:
                     x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
                 )
                 if corr is not None:
-                    a = replace(a, thd_percent=corr)
+                    a = replace(
+                        a,
+                        thd_percent=corr,
+                        thd_db=float(20 * np.log10(corr / 100)) if corr > 0 else None,
+                        thd_raw_percent=a.thd_percent,
+                        scope_harmonics_removed=True,
+                    )
             out[c.board_channel] = a
         return out, acq
 

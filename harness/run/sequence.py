@@ -630,7 +630,16 @@ class Sequencer(BoardRun):
                 "%",
                 lim.thd_percent,
                 uthd,
-                {"thd_report": a.thd_report, "floor_percent": a.floor.thd_percent},
+                {
+                    "thd_report": a.thd_report,
+                    "floor_percent": a.floor.thd_percent,
+                    # what the value is: the record's THD, or with the scope's own
+                    # harmonics removed (the raw record's value kept beside it)
+                    "scope_harmonics_removed": a.scope_harmonics_removed,
+                    "thd_raw_percent": (
+                        a.thd_percent if a.thd_raw_percent is None else a.thd_raw_percent
+                    ),
+                },
             )
             st.points.append(a)
             st.levels_commanded.append(level)

@@ -307,7 +307,8 @@ class SimBench:
             "[supply]",
             "output = 1",
             f"voltage_v = {b.supply.v_pos:g}",
-            f"current_limit_a = {limit:g}       # 4x the simulated quiescent current",
+            f"current_limit_a = {limit:g}       # {limit / i_q:.2g}x the simulated quiescent "
+            f"current of {i_q * 1e3:.3g} mA (4x, rounded up to 10 mA, at least 20 mA)",
         ]
         if b.supply.negative is not None:
             lines += [
