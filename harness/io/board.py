@@ -214,7 +214,11 @@ _NONINV_FIELDS = _file_fields(OpAmpNonInverting)
 def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
     if not isinstance(data, Mapping):
         raise rd.fail(where, "must be a table")
-    rd.known(data, {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "vbe_v", "note"}, where)
+    rd.known(
+        data,
+        {"polarity", "beta", "is_a", "vce_sat_v", "vaf_v", "early_v", "beta_r", "vbe_v", "note"},
+        where,
+    )
     polarity = rd.text(data, "polarity", where, default="npn").lower()
     if polarity != "npn":
         raise rd.fail(
@@ -223,6 +227,15 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
             hint='describe NPN stages (polarity = "npn")',
         )
     vaf = rd.quantity(data, "vaf_v", where, default=0.0, unit="V", positive=False) or None
+    early = rd.spread(data, "early_v", where, unit="V", required=False)
+    if early is not None:
+        if vaf is not None:
+            raise rd.fail(
+                f"{where}.early_v",
+                "both early_v and vaf_v give the Early voltage",
+                hint="keep early_v (a range) and remove vaf_v",
+            )
+        vaf = early.typ
     return Transistor(
         name=name,
         polarity="npn",
@@ -231,6 +244,8 @@ def _transistor(rd: _Reader, name: str, data: Any, where: str) -> Transistor:
         vce_sat_v=rd.spread(data, "vce_sat_v", where, unit="V"),  # type: ignore[arg-type]
         vaf_v=vaf,
         vbe_v=rd.spread(data, "vbe_v", where, unit="V", required=False),
+        beta_r=rd.spread(data, "beta_r", where, unit="", required=False),
+        early_v=early,
     )
 
 

@@ -16,6 +16,12 @@ from typing import Literal
 
 from harness.values import Toleranced
 
+#: Reverse beta when the transistor data gives none: small-signal silicon NPN parts have a
+#: beta_R of a few (from memory: SPICE models of 2N3904-class parts carry BR of about 0.7-6;
+#: Sedra & Smith, *Microelectronic Circuits*, BJT chapter, on the reverse-active mode, also
+#: from memory).  It matters only in saturation.
+BETA_R_DEFAULT = 3.0
+
 # --- value objects ------------------------------------------------------------------------------
 
 
@@ -43,7 +49,12 @@ class Spread:
 @dataclass(frozen=True)
 class Transistor:
     """A small-signal BJT.  ``is_a`` sets V_BE at any current (V_BE = V_T ln(I_C/I_S));
-    ``vbe_v``, when given, is the data-sheet V_BE range the model checks that against."""
+    ``vbe_v``, when given, is the data-sheet V_BE range the model checks that against.
+
+    ``beta_r`` is the reverse beta of the Ebers-Moll model (how hard a saturated collector is
+    pulled towards the emitter); absent, the model takes :data:`BETA_R_DEFAULT`.  The Early
+    voltage is ``early_v`` (a range, drawn in the Monte Carlo) or ``vaf_v`` (one value); either
+    way :attr:`vaf_v` is the typical value, None for no Early effect."""
 
     name: str
     polarity: Literal["npn"]
@@ -52,6 +63,8 @@ class Transistor:
     vce_sat_v: Spread
     vaf_v: float | None = None
     vbe_v: Spread | None = None
+    beta_r: Spread | None = None
+    early_v: Spread | None = None
 
 
 @dataclass(frozen=True)

@@ -36,6 +36,7 @@ import numpy as np
 from harness.errors import FixtureFileError, StageproofError
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import (
+    FLOOR_TO_READING_U,
     RecordAnalysis,
     SearchStep,
     clip_threshold,
@@ -828,6 +829,7 @@ class Sequencer(BoardRun):
                 [p.gain_db for p in s.points],
                 self.criterion,
                 s.nominal.gain_db if s.nominal else None,
+                [FLOOR_TO_READING_U * p.floor.thd_percent for p in s.points],
             )
         detail: dict[str, Any] = {
             "criterion": self.criterion.label,

@@ -1,4 +1,4 @@
-"""Clipping evidence (flat and bending-back), over-range, and the stepped-level search."""
+"""Clipping evidence (flat and bending-back), over-range, and the bracketed level search."""
 
 from __future__ import annotations
 
@@ -112,7 +112,7 @@ def test_hard_clip_fundamental_matches_describing_function(ratio):
 
 
 def _clipper(level_vrms: float, gain: float = 10.0, clip_v: float = 1.0) -> StepPoint:
-    """One stepped-level measurement of a symmetric hard clipper (coherent, noiseless)."""
+    """One level of the ladder on a symmetric hard clipper (coherent, noiseless)."""
     n, j = 4096, 127
     x = math.sqrt(2) * level_vrms * np.sin(2 * np.pi * j * np.arange(n) / n)
     y = np.clip(gain * x, -clip_v, clip_v)
@@ -201,6 +201,45 @@ def test_clip_threshold_interpolates_log_thd():
         [StepPoint(v, t, g) for v, t, g in zip(levels, thd, [20, 20, 19.9], strict=True)]
     )
     assert curves.compression_db[-1] == pytest.approx(0.1)
+
+
+def test_threshold_uncertainty_carries_the_thd_readings_noise() -> None:
+    """GUM (JCGM 100:2008) §5.1.2 law of propagation: the crossing of log10 THD interpolated
+    between two readings with standard uncertainty u moves by u/(THD ln 10) over the slope of
+    log10 THD per dB; checked against a numerical derivative of the same interpolation."""
+    from harness.measure import clip_threshold
+
+    lv = [0.2, 0.2 * 10 ** (0.5 / 20)]
+    thd = [0.8, 1.3]
+    u = [0.02, 0.03]
+    th = clip_threshold(lv, thd, [20.0, 19.9], thd_u_percent=u)
+    quiet = clip_threshold(lv, thd, [20.0, 19.9])
+    assert quiet.noise_u_db == 0.0
+
+    def xc(t0: float, t1: float) -> float:
+        return clip_threshold(lv, [t0, t1], [20.0, 19.9]).level_dbu  # type: ignore[return-value]
+
+    h = 1e-6
+    d0 = (xc(thd[0] + h, thd[1]) - xc(thd[0] - h, thd[1])) / (2 * h)
+    d1 = (xc(thd[0], thd[1] + h) - xc(thd[0], thd[1] - h)) / (2 * h)
+    assert th.noise_u_db == pytest.approx(math.hypot(d0 * u[0], d1 * u[1]), rel=1e-5)
+    assert th.uncertainty_db == pytest.approx(math.hypot(quiet.uncertainty_db, th.noise_u_db))
+
+
+def test_search_stops_once_the_bracket_is_inside_the_readings_noise() -> None:
+    """A bracket of 0.4 dB is wider than the 0.1 dB resolution, but readings whose noise
+    makes a crossing uncertainty of more than 0.2 dB cannot narrow it usefully: the search
+    stops there (and does not with quiet readings)."""
+    from harness.measure import next_search_level
+
+    a, b = 0.2, 0.2 * 10 ** (0.4 / 20)
+    noisy = [(a, 0.9, 20.0, 0.15), (b, 1.1, 19.9, 0.15)]
+    step = next_search_level(noisy, start_vrms=a, max_vrms=1.0, resolution_db=0.1)
+    assert step.done and step.bracketed and "noise" in step.reason
+    assert step.threshold is not None and 2 * step.threshold.noise_u_db >= 0.4
+    quiet = [p[:3] for p in noisy]
+    step = next_search_level(quiet, start_vrms=a, max_vrms=1.0, resolution_db=0.1)
+    assert not step.done
 
 
 def test_a_step_without_thd_is_a_typed_error_not_a_crash():
