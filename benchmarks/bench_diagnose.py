@@ -18,7 +18,7 @@ sys.path.insert(0, str(ROOT / "tests" / "diagnose"))
 from simmeasure import measure_board  # noqa: E402
 
 from harness.diagnose import rank_faults, tolerance_spread  # noqa: E402
-from harness.io.toml import load_board  # noqa: E402
+from harness.io.board import load_board  # noqa: E402
 
 TARGET_S = 2.0
 

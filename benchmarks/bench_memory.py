@@ -19,8 +19,8 @@ from pathlib import Path
 
 import numpy as np
 
+from harness.io.board import load_board
 from harness.io.capture import read_capture, write_capture_csv
-from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.model.limits import limits_memory_bytes
 

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.physics import BoardSim
 
 REPO = Path(__file__).resolve().parents[1]

@@ -1,12 +1,7 @@
 """stageproof: automated bench test of amplifier boards.
 
-Layers (imports point down only)::
-
-    cli -> run -> {model, measure, instruments, store}
-    sim -> instruments (profiles, SCPI codecs) + its own physics
-    model, measure: pure numerics, no I/O
-
-``harness.errors`` and ``harness.values`` are shared by every layer.
+The layers and what each may import: README.md, "Layout of the code" (enforced by
+import-linter, contracts in pyproject.toml).
 """
 
 from importlib.metadata import PackageNotFoundError, version

@@ -89,16 +89,6 @@ class ValueParseError(StageproofError, ValueError):
         super().__init__(f"cannot read value {text!r}: {reason}", hint=hint)
 
 
-class DesignError(StageproofError, ValueError):
-    """The circuit described cannot work as an amplifier (saturated at rest, cut off,
-    cannot drive its load).  Raised by the model; loaders wrap it in BoardFileError."""
-
-    def __init__(self, location: str, reason: str, *, hint: str | None = None) -> None:
-        self.location = location
-        self.reason = reason
-        super().__init__(f"{location}: {reason}", hint=hint)
-
-
 class MemoryBudgetError(StageproofError, MemoryError):
     """A request would need more memory than the machine can give (Monte Carlo boards,
     a capture that claims gigabytes): refused before anything is allocated.
@@ -191,6 +181,36 @@ class ScpiError(InstrumentError):
 
 class IdentityMismatch(InstrumentError):
     """``*IDN?`` does not match what the station file expects at that resource."""
+
+
+class ReadbackMismatch(InstrumentError):
+    """An instrument reports a setting other than the one it was sent (beyond its resolution).
+
+    Carries the ``setting`` name, the ``requested`` and the ``read_back`` values, so the
+    operator sees which instrument ignored or rounded what.
+    """
+
+    def __init__(
+        self,
+        setting: str,
+        requested: float | str,
+        read_back: float | str,
+        *,
+        resource: str | None = None,
+        command: str | None = None,
+        role: str | None = None,
+        hint: str | None = None,
+    ) -> None:
+        self.setting = setting
+        self.requested = requested
+        self.read_back = read_back
+        super().__init__(
+            f"{setting}: sent {requested!r}, instrument reports {read_back!r}",
+            resource=resource,
+            command=command,
+            role=role,
+            hint=hint,
+        )
 
 
 # --- run ------------------------------------------------------------------------------------

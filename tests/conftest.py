@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.support.bench import BOARD_FILE
 from tests.support.spice import run_ngspice
 
@@ -61,3 +61,25 @@ def limits(board):
     from harness.model import compute_limits
 
     return compute_limits(board)
+
+
+@pytest.fixture(scope="session")
+def pg_cluster():
+    """One throwaway PostgreSQL cluster for the whole session (tests/support/pg_cluster.py);
+    skips with the reason outside CI, fails in CI."""
+    from tests.support import pg_cluster as pgc
+
+    try:
+        cluster = pgc.start()
+    except RuntimeError as exc:
+        if os.environ.get("CI"):
+            pytest.fail(f"CI must run the PostgreSQL tests: {exc}")
+        pytest.skip(str(exc))
+    yield cluster
+    cluster.stop()
+
+
+@pytest.fixture
+def pg_url(pg_cluster) -> str:
+    """URL of a fresh, empty database on the session's cluster."""
+    return pg_cluster.new_database()

@@ -26,6 +26,50 @@ def _limits(text: str | None, vpp: float | None, name: str) -> tuple[float, floa
     return None
 
 
+def _remove_scope_harmonics(res, cap, in_adc, out_adc, k_max: int):
+    """The record's THD with the digitiser's own harmonics removed, by the test run's own
+    estimator (:func:`harness.run.bench_ops.added_thd_percent`) under its conditions."""
+    from dataclasses import replace
+    from types import SimpleNamespace
+
+    import numpy as np
+
+    from harness.run.bench_ops import FILL_MATCH, _fills_match, added_thd_percent
+
+    if in_adc is None or out_adc is None:
+        raise AnalysisError(
+            "--remove-scope-harmonics needs both channels' ADC limits",
+            hint="give --in-adc/--out-adc MIN,MAX or --range-vpp",
+        )
+    if res.thd_percent is None:
+        return res
+    x, y = np.asarray(cap.input_v, dtype=float), np.asarray(cap.output_v, dtype=float)
+    n = len(y)
+    cycles = round(res.frequency_hz * n / res.sample_rate_hz)
+    if not res.coherent or cycles < 1:
+        raise AnalysisError(
+            "--remove-scope-harmonics needs a coherent record (a whole number of cycles)",
+            hint="capture f = J·fs/N with J and N coprime, or leave the option out",
+        )
+    if not _fills_match(x, y, in_adc, out_adc, FILL_MATCH):
+        raise AnalysisError(
+            "--remove-scope-harmonics: input and output do not fill their ADC ranges alike "
+            f"(within {FILL_MATCH:g}x); the estimate would amplify the input's noise",
+            hint="capture with ranges that both channels fill about equally",
+        )
+    plan = SimpleNamespace(cycles=cycles, n_samples=n)
+    corr = added_thd_percent(x, y, plan, in_adc, out_adc, k_max=k_max)
+    if corr is None:
+        return res
+    return replace(
+        res,
+        thd_percent=corr,
+        thd_db=float(20 * np.log10(corr / 100)) if corr > 0 else None,
+        thd_raw_percent=res.thd_percent,
+        scope_harmonics_removed=True,
+    )
+
+
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "analyze",
@@ -35,7 +79,13 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument("capture", help="capture file (.csv or .npz)")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
-    p.add_argument("--adc-bits", type=int, default=None, help="scope ADC resolution in bits")
+    p.add_argument(
+        "--adc-bits",
+        type=int,
+        default=None,
+        help="scope ADC resolution in bits, for the quantisation floor (default: none "
+        "assumed, the floor is the record's own noise)",
+    )
     p.add_argument("--range-vpp", type=float, default=None, help="ADC range of both channels")
     p.add_argument("--in-range-vpp", type=float, default=None, help="input channel ADC range")
     p.add_argument("--out-range-vpp", type=float, default=None, help="output channel ADC range")
@@ -46,7 +96,20 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--frequency", type=float, default=None, help="start frequency, Hz")
     p.add_argument("--in-probe", type=float, default=1.0, help="input probe factor (10 for 10:1)")
     p.add_argument("--out-probe", type=float, default=1.0, help="output probe factor")
-    p.add_argument("--method", choices=("fit", "fft"), default="fit")
+    p.add_argument(
+        "--method",
+        choices=("fit", "fft"),
+        default="fit",
+        help="fundamental by sine fit (default; IEEE Std 1057 four-parameter fit) or by the "
+        "windowed FFT peak",
+    )
+    p.add_argument(
+        "--remove-scope-harmonics",
+        action="store_true",
+        help="report the THD the board adds: the scope's own harmonics, estimated from the "
+        "input record, removed as a test run does (needs --in-adc/--out-adc or ranges, a "
+        "coherent record and both channels filling their ranges alike)",
+    )
     p.set_defaults(func=run)
 
 
@@ -68,6 +131,8 @@ def run(args: argparse.Namespace) -> int:
         frequency_hz=args.frequency,
         method=args.method,
     )
+    if args.remove_scope_harmonics:
+        res = _remove_scope_harmonics(res, cap, in_adc, out_adc, args.k_max)
     d = res.to_dict()
     if args.json:
         print(jsontext.dumps({"capture": cap.path, **d}, indent=2))
@@ -92,8 +157,16 @@ def run(args: argparse.Namespace) -> int:
         "phase",
         fmt(d["phase_deg"], ".2f", "°") + ("  (inverting)" if abs(res.phase_deg) > 90 else ""),
     )
+    what = (
+        f"  scope's own harmonics removed (raw record {res.thd_raw_percent:.4g} %)"
+        if res.scope_harmonics_removed and res.thd_raw_percent is not None
+        else "  raw record (scope's own harmonics included)"
+    )
     t.add_row(
-        "THD", res.thd_report + (f"  ({d['thd_db']:.1f} dB)" if d["thd_db"] is not None else "")
+        "THD",
+        res.thd_report
+        + (f"  ({d['thd_db']:.1f} dB)" if d["thd_db"] is not None else "")
+        + (what if res.thd_percent is not None else ""),
     )
     t.add_row("THD+N", fmt(d["thdn_percent"], ".4g", " %"))
     t.add_row("SINAD", fmt(d["sinad_db"], ".1f", " dB"))

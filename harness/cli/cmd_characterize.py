@@ -41,11 +41,25 @@ def register(sub: argparse._SubParsersAction) -> None:
         default=20.0,
         help="start this many dB under the nominal level (default 20)",
     )
-    p.add_argument("--f-start", type=float, default=10.0, help="lowest frequency (Hz)")
-    p.add_argument("--f-stop", type=float, default=20000.0, help="highest frequency (Hz)")
-    p.add_argument("--per-decade", type=int, default=6, help="frequency points per decade")
+    p.add_argument(
+        "--f-start",
+        type=float,
+        default=10.0,
+        help="lowest frequency (Hz, default 10; extended down to bracket the low corner)",
+    )
+    p.add_argument(
+        "--f-stop", type=float, default=20000.0, help="highest frequency (Hz, default 20000)"
+    )
+    p.add_argument(
+        "--per-decade", type=int, default=6, help="frequency points per decade (default 6)"
+    )
     add_settle_wait(p, "seconds after each change (default: the model's settle time)")
-    p.add_argument("--max-points", type=int, default=8192, help="record length cap")
+    p.add_argument(
+        "--max-points",
+        type=int,
+        default=8192,
+        help="cap on the record length (default 8192; shorter: faster, higher THD floor)",
+    )
     p.set_defaults(func=run)
 
 
@@ -120,7 +134,7 @@ def _safe_name(serial: str) -> str:
 
 
 def _check_output(out: Path) -> None:
-    from harness.report import ReportError
+    from harness.errors import ReportError
 
     if out.is_dir():
         raise ReportError("-o", f"{out} is a folder", hint="give a file name ending in .html")
@@ -161,7 +175,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in thd),
-                        tuple(p.thd_percent for p in thd),
+                        tuple(p.thd_percent for p in thd if p.thd_percent is not None),
                         "measured THD",
                     ),
                 ),
@@ -182,7 +196,7 @@ def channel_plots(result: CharacterizationResult, name: str) -> list[Any]:
                 series=(
                     Series(
                         tuple(p.input_vrms for p in lv),
-                        tuple(p.gain_db for p in lv),
+                        tuple(p.gain_db for p in lv if p.gain_db is not None),
                         "measured gain",
                     ),
                 ),

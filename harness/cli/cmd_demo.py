@@ -1,8 +1,8 @@
 """``stageproof demo``: test three demo boards on a simulated bench, no hardware needed.
 
 Starts the simulated bench itself (SCPI servers on 127.0.0.1, ephemeral ports, no
-latency), tests three boards of the demo type limits/demo-twin-preamp.toml (packaged in
-harness/data so an installed copy works from any folder): one good, one with the emitter
+latency), tests three boards of the demo type limits/demo-twin-preamp.toml (shipped in the
+package, so an installed copy works from any folder): one good, one with the emitter
 bypass capacitor C102 open (channel A's gain falls), one with bias resistor R201 drifted
 to 1.5x (channel B clips early on one half-cycle), and prints the verdicts.
 """
@@ -15,6 +15,12 @@ import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from harness.run.sequence import RunResult
+
+from harness.store import redact
 
 DEMO_BOARD = "demo-twin-preamp.toml"
 DEMO_FIXTURE = "fixture-twin-preamp.toml"
@@ -49,16 +55,29 @@ def register(sub: argparse._SubParsersAction) -> None:
         action="store_true",
         help="keep the working folder (station file, fixture) and print where",
     )
+    p.add_argument(
+        "--dialect",
+        choices=("default", "benchtop"),
+        default="default",
+        help="which simulated instruments: the SCPI-99 digitiser and generator (default) "
+        "or the benchtop scope and generator, each driven by its shipped profile",
+    )
     p.set_defaults(func=run)
 
 
 def run_demo(
-    db: str | Path, workdir: Path, *, progress_console=None, settle_wait_s: float | None = None
-) -> list[tuple[DemoBoard, object]]:
+    db: str | Path,
+    workdir: Path,
+    *,
+    progress_console=None,
+    settle_wait_s: float | None = None,
+    dialect: str = "default",
+) -> list[tuple[DemoBoard, RunResult]]:
     """Run the three demo boards; returns (board, RunResult) pairs."""
-    from harness.io.toml import load_board
+    from harness.io.board import load_board
+    from harness.io.packaged import packaged
     from harness.model import compute_limits
-    from harness.run.runner import execute, packaged, prepare
+    from harness.run.runner import execute, prepare
     from harness.run.sequence import RunOptions
     from harness.sim.bench import SimBench
 
@@ -69,7 +88,9 @@ def run_demo(
     results = []
     for demo in DEMO_BOARDS:
         station_file = workdir / f"station-{demo.serial}.toml"
-        with SimBench(board, faults=demo.faults, latency=False, host="127.0.0.1") as bench:
+        with SimBench(
+            board, faults=demo.faults, latency=False, host="127.0.0.1", dialect=dialect
+        ) as bench:
             bench.write_station(station_file)
             prep = prepare(board_file, fixture_file, station_file, limits=limits)
             progress = None
@@ -101,7 +122,9 @@ def run(args: argparse.Namespace) -> int:
     tmp = tempfile.mkdtemp(prefix="stageproof-demo-")
     workdir = Path(tmp)
     try:
-        results = run_demo(args.db, workdir, progress_console=console)
+        results = run_demo(
+            args.db, workdir, progress_console=console, dialect=getattr(args, "dialect", "default")
+        )
     finally:
         if not args.keep:
             import shutil
@@ -127,7 +150,8 @@ def run(args: argparse.Namespace) -> int:
         )
     console.print(table)
     console.print(
-        Text(f"results stored in {args.db}; {time.perf_counter() - t0:.1f} s"), highlight=False
+        Text(f"results stored in {redact(str(args.db))}; {time.perf_counter() - t0:.1f} s"),
+        highlight=False,
     )
     if args.keep:
         console.print(Text(f"working folder kept: {workdir}"), highlight=False)
@@ -139,8 +163,9 @@ def run(args: argparse.Namespace) -> int:
 
 def follow_up_commands(db: str | Path) -> list[str]:
     """The commands to look at the demo's results, each with ``--db`` of the demo's database:
-    without it they would look for the default results file and find none."""
-    q = shlex.quote(str(db))
+    without it they would look for the default results file and find none.  A server URL is
+    shown without its password (libpq takes it from PGPASSWORD or ~/.pgpass)."""
+    q = shlex.quote(redact(str(db)).replace(":***@", "@"))
     _good, gain_fault, bias_fault = (d.serial for d in DEMO_BOARDS)
     return [
         f"stageproof results --db {q}",

@@ -15,7 +15,7 @@ from typing import Any
 from harness import jsontext
 from harness.diagnose import Candidate, Diagnosis, diagnose_run
 from harness.errors import StoreError
-from harness.io.toml import load_board
+from harness.io.board import load_board, load_stored_board
 from harness.store import DEFAULT_DB, open_store
 
 
@@ -53,11 +53,15 @@ def run(args: argparse.Namespace) -> int:
             runs = store.list_runs(serial=args.serial)
             if not runs:
                 raise StoreError(
-                    f"no run of serial {args.serial!r} in {args.db}",
+                    f"no run of serial {args.serial!r} in {store.location}",
                     hint="check the serial number and --db",
                 )
             row = max(runs, key=lambda r: (r.started_at, r.run_id))
-        board = load_board(args.board or row.board_file)
+        board = (
+            load_board(args.board)
+            if args.board
+            else load_stored_board(row.board_text, row.board_file)
+        )
         diag = diagnose_run(store, row.run_id, board)
     for w in diag.warnings:
         print(f"warning: {w}", file=sys.stderr)

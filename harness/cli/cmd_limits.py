@@ -12,7 +12,7 @@ import math
 import sys
 
 from harness import jsontext
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import compute_limits, design_channel
 from harness.model.limits import BoardLimits, Limit
 from harness.run.runner import check_limits_memory
@@ -78,7 +78,8 @@ COIN_TOSS_SHARE = 0.6
 #: Headers of the two worst-case columns: what was evaluated, not a claimed bracket.
 CORNER_COLUMNS = ("corner pushed low", "corner pushed high")
 CORNER_NOTE = (
-    "low/high: Monte Carlo limits (central interval of the boards).  corner pushed low/high: "
+    "low/high: Monte Carlo limits (central interval of the boards, widened by the model's "
+    "own uncertainty).  corner pushed low/high: "
     "the quantity with every part at a tolerance end, each the way that alone lowers/raises "
     "it; where the quantity is not monotonic in a part (the swing-limited threshold is the "
     "lesser of two swings) boards can fall outside them: not a worst-case bracket."
@@ -160,6 +161,13 @@ def _print_tables(board, limits: BoardLimits) -> None:
         f"nominal input {board.conditions.nominal_input_vrms:g} V rms at "
         f"{board.conditions.frequency_hz:g} Hz"
     )
+    mu = prov.model_uncertainty
+    if mu:
+        console.print(
+            f"model uncertainty added to the bands: gain {100 * mu['gain_rel']:g} %, clipping "
+            f"threshold {mu['clip_db']:g} dB, THD {100 * mu['thd_rel']:g} %, bias "
+            f"{1e3 * mu['bias_v']:g} mV (measured against ngspice on random boards)"
+        )
     for name, ch in limits.channels.items():
         design = design_channel(board, name)
         table = Table(

@@ -25,11 +25,15 @@ from harness.errors import ValueParseError
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
+from harness.store import redact
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
 #: its end and refused, so its tail never becomes the next serial number.
 MAX_LINE = 4096
 MAX_OPERATOR = 64
+#: The prompts say what they want: asked once, then before each board.
+OPERATOR_PROMPT = "name of the operator> "
+SERIAL_PROMPT = "scan or type the board's serial> "
 
 # Block letters of our own design: 7 rows, each "X" drawn two cells wide.
 _GLYPHS: dict[str, tuple[str, ...]] = {
@@ -172,7 +176,7 @@ class TerminalUI:
         t.add_row("station", info.station)
         t.add_row("fixture", info.fixture)
         t.add_row("operator", info.operator)
-        t.add_row("results", info.db)
+        t.add_row("results", redact(info.db))
         t.add_row("limits digest", info.limits_digest)
         if info.limits_method:
             t.add_row("limits", info.limits_method)
@@ -185,7 +189,7 @@ class TerminalUI:
         )
 
     def read_serial(self) -> str | None:
-        return self.prompt("serial> ")
+        return self.prompt(SERIAL_PROMPT)
 
     def ask(self, question: str, *, default: bool) -> bool:
         hint = "[Y/n]" if default else "[y/N]"
@@ -379,7 +383,7 @@ def _operator(args: argparse.Namespace, ui: TerminalUI, console: Any) -> str | N
         return check_operator(args.operator)
     while True:
         try:
-            name = ui.prompt("operator> ")
+            name = ui.prompt(OPERATOR_PROMPT)
         except KeyboardInterrupt:
             console.print("")
             return None

@@ -27,17 +27,25 @@ def _positive_int(text: str) -> int:
     return value
 
 
-def _board_options(p: argparse.ArgumentParser, *, required: bool) -> None:
+def _board_options(p: argparse.ArgumentParser, *, required: bool, listed: bool = True) -> None:
+    """The board report's options; ``listed`` False keeps them working on ``report`` itself
+    (the short form) but out of its help, which lists only what every kind shares."""
+
+    def say(text: str) -> str:
+        return text if listed else argparse.SUPPRESS
+
     who = p.add_mutually_exclusive_group(required=required)
-    who.add_argument("--serial", metavar="SN", help="serial number (its newest run is shown)")
-    who.add_argument("--run", type=_positive_int, metavar="ID", help="run id")
+    who.add_argument("--serial", metavar="SN", help=say("serial number (its newest run is shown)"))
+    who.add_argument("--run", type=_positive_int, metavar="ID", help=say("run id"))
     p.add_argument(
         "-o",
         "--output",
         metavar="FILE.html",
-        help="output file (default: report-<serial>-run<id>.html here)",
+        help=say("output file (default: report-<serial>-run<id>.html here)"),
     )
-    p.add_argument("--png", metavar="DIR", help="also write each plot as PNG (needs matplotlib)")
+    p.add_argument(
+        "--png", metavar="DIR", help=say("also write each plot as PNG (needs matplotlib)")
+    )
 
 
 def _db(p: argparse.ArgumentParser) -> None:
@@ -57,10 +65,12 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         "report",
         help="board report, production summary, CSV/Parquet export",
         description="Reports from the results database: one board (HTML), a lot or date "
-        "range (HTML: yield, distributions, Cp/Cpk), or the tables as CSV/Parquet.",
+        "range (HTML: yield, distributions, Cp/Cpk), or the tables as CSV/Parquet.  "
+        "`stageproof report KIND --help` lists each kind's options; `report --db PATH "
+        "--serial SN` (no KIND) is short for `report board`.",
     )
     _db(rep)
-    _board_options(rep, required=False)
+    _board_options(rep, required=False, listed=False)
     rep.set_defaults(func=_cmd_board, report_parser=rep)
     sub = rep.add_subparsers(dest="report_command", metavar="KIND")
 

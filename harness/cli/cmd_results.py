@@ -136,7 +136,7 @@ def run(args: argparse.Namespace) -> int:
     elif args.csv:
         _write_csv(rows, _LIST_FIELDS)
     else:
-        _list_table(args.db, rows)
+        _list_table(store.location, rows)
     return 0
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import logging
 import signal
 import sys
 import threading
@@ -10,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import StageproofError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 
 LOOPBACK = "127.0.0.1"
 
@@ -72,6 +73,14 @@ def register(subparsers: Any) -> None:
         "(default: with --latency)",
     )
     serve.add_argument("--seed", type=int, default=20240601, help="noise seed")
+    serve.add_argument(
+        "--dialect",
+        choices=("default", "benchtop"),
+        default="default",
+        help="instrument dialect: SCPI-99 digitiser and generator (default), or a benchtop "
+        "scope (V/div, s/div, preamble, chunked reads) and a dBm generator; the station "
+        "file names the matching shipped profiles",
+    )
     serve.set_defaults(func=_serve)
     sim.set_defaults(func=lambda args: (sim.print_help(), 2)[1])
 
@@ -103,6 +112,7 @@ def _serve(
         host=args.host,
         port_base=args.port_base,
         seed=args.seed,
+        dialect=args.dialect,
     )
     stop = stop or threading.Event()
     try:
@@ -112,6 +122,15 @@ def _serve(
             f"cannot listen on {args.host}: {exc.strerror or exc}",
             hint="choose another --port-base or 0 for ephemeral ports",
         ) from None
+    # The servers say on their logger when they cannot accept (out of file descriptors)
+    # and when they accept again: the person running the bench must see both.
+    shout = logging.StreamHandler(sys.stderr)
+    shout.setLevel(logging.WARNING)
+    shout.setFormatter(logging.Formatter("stageproof: warning: %(message)s"))
+    sim_log = logging.getLogger("harness.sim")
+    sim_log.addHandler(shout)
+    if sim_log.getEffectiveLevel() > logging.WARNING:
+        sim_log.setLevel(logging.WARNING)
     old = {}
     if threading.current_thread() is threading.main_thread():
         for sig in (signal.SIGINT, signal.SIGTERM):
@@ -125,7 +144,7 @@ def _serve(
                 f"cannot write {exc.filename or args.station_out}: {exc.strerror or exc}",
                 hint="give --station-out / --fixture-out a file in a folder you can write",
             ) from None
-        print(f"simulated bench for {board.name} ({board.part_number})")
+        print(f"simulated bench for {board.name} ({board.part_number}), {args.dialect} dialect")
         for role, resource in bench.resources.items():
             print(f"  {role:<9} {resource}")
         print(f"station file: {args.station_out}")
@@ -135,6 +154,7 @@ def _serve(
         for dev in bench.devices.values():
             for armed in dev.faults:
                 print(f"  instrument fault: {armed.fault.spec}")
+        _check_answers(bench, args.host)
         print("serving; Ctrl-C to stop", flush=True)
         if ready is not None:
             ready.set()
@@ -144,8 +164,35 @@ def _serve(
         bench.stop()
         for sig, handler in old.items():
             signal.signal(sig, handler)
+        logging.getLogger("harness.sim").removeHandler(shout)
     print("stopped", flush=True)
     return 0
+
+
+def _check_answers(bench: Any, host: str, timeout_s: float = 2.0) -> None:
+    """Every instrument's server accepts a connection (a probe connection, seen accepted by
+    the server itself) before "serving" is printed: a port whose backlog takes the
+    handshake but whose process cannot accept (out of file descriptors) does not count."""
+    import socket
+    import time
+
+    probe_host = LOOPBACK if host in ("0.0.0.0", "") else host
+    for role, server in bench.servers.items():
+        before = server.connections_served
+        why = "no connection accepted"
+        try:
+            with socket.create_connection((probe_host, server.port), timeout=timeout_s):
+                deadline = time.monotonic() + timeout_s
+                while server.connections_served == before and time.monotonic() < deadline:
+                    time.sleep(0.01)
+        except OSError as exc:
+            why = exc.strerror or str(exc)
+        if server.connections_served == before:
+            raise _UsageError(
+                f"the simulated {role} on port {server.port} does not answer: "
+                f"{server.trouble or why}",
+                hint="raise the open-file limit (ulimit -n) or check --host",
+            )
 
 
 def _check_out(option: str, path: Path) -> None:

@@ -1,7 +1,7 @@
 """Adapter: the stage model evaluated with faults, including stages the model calls unworkable.
 
 Why an adapter: :func:`harness.model.design.design_channel` refuses a circuit whose transistor
-is saturated or cut off at rest (BoardFileError / DesignError), which is right for a board
+is saturated or cut off at rest (BoardFileError), which is right for a board
 file but is exactly what a repair bench sees.  Here the vectorised core
 (:func:`harness.model.core.evaluate_channel`) is run on rows of parameter overrides, its
 problems are read per row, and such rows get a *degraded* prediction:

@@ -336,13 +336,13 @@ def _terms(
             c = np.where(unpredicted, 0.0, d**2 / s**2)
             out[o.name] = (c, np.where(unpredicted, np.nan, p), np.broadcast_to(s, (n,)))
         else:
-            p = pred.values.get(q)
-            if p is None:
+            dc = pred.values.get(q)
+            if dc is None:
                 continue
             s = np.sqrt(
-                o.sigma**2 + cm.spread.get(q, 0.0) ** 2 + _allow("dc", p, pred.degraded) ** 2
+                o.sigma**2 + cm.spread.get(q, 0.0) ** 2 + _allow("dc", dc, pred.degraded) ** 2
             )
-            out[o.name] = ((o.value - p) ** 2 / s**2, p, s)
+            out[o.name] = ((o.value - dc) ** 2 / s**2, dc, s)
     if supply_obs is not None:
         p = pred.values["supply_current_a"] + supply_other
         s = np.sqrt(
@@ -553,10 +553,10 @@ def rank_faults(
         others = sum(v for k, v in nominal_chi2.items() if k != name)
         for j, h in enumerate(fitted):
             sl = slice(len(fixed) + j * GRID_POINTS, len(fixed) + (j + 1) * GRID_POINTS)
-            g = _grid(h)
-            tot = chi2[sl] + np.array([h.penalty(v) for v in g])
+            grid = _grid(h)
+            tot = chi2[sl] + np.array([h.penalty(v) for v in grid])
             k = int(np.argmin(tot))
-            fits.append((float(tot[k]) + others, cm, h, g, tot, other))
+            fits.append((float(tot[k]) + others, cm, h, grid, tot, other))
         # the other channels' nominal evidence, for display
         for s in scored:
             if s[2].hyp.channel == name:
@@ -566,12 +566,12 @@ def rank_faults(
                             s[3].setdefault(kk, vv)
 
     fits.sort(key=lambda f: f[0])
-    for rank_i, (_, cm, h, g, tot, other) in enumerate(fits):
+    for rank_i, (_, cm, h, grid, tot, other) in enumerate(fits):
         k = int(np.argmin(tot))
-        best = float(g[k])
+        best = float(grid[k])
         if rank_i < REFINE:
-            lo = math.log(g[max(k - 1, 0)])
-            hi = math.log(g[min(k + 1, len(g) - 1)])
+            lo = math.log(grid[max(k - 1, 0)])
+            hi = math.log(grid[min(k + 1, len(grid) - 1)])
 
             def objective(
                 x: float, _h: Hypothesis = h, _cm: _ChannelModel = cm, _o: float = other
@@ -598,12 +598,12 @@ def rank_faults(
     measured_of = {o.name: o.value for obs in grouped.values() for o in obs}
     nominal_z: dict[str, float] = {}
     if include_none:
-        for k, (c, _, _) in scored[0][3].items():
-            nominal_z[k] = math.sqrt(max(c, 0.0))
+        for key, (c, _, _) in scored[0][3].items():
+            nominal_z[key] = math.sqrt(max(c, 0.0))
     else:
         for t in nominal_terms.values():
-            for k, (c, _, _) in t.items():
-                nominal_z[k] = math.sqrt(max(c, 0.0))
+            for key, (c, _, _) in t.items():
+                nominal_z[key] = math.sqrt(max(c, 0.0))
     best_score = min(c + p for c, p, *_ in scored)
     weights = [math.exp(-(c + p - best_score) / 2.0) for c, p, *_ in scored]
     wsum = sum(weights)
@@ -611,7 +611,7 @@ def rank_faults(
     for (c2, pen, r, t, degraded), w in zip(scored, weights, strict=True):
         ev: list[Evidence] = []
         explained, contradicts = [], []
-        for name, (c, p, s) in sorted(t.items()):
+        for name, (c, p, sigma) in sorted(t.items()):
             q = quantity_of.get(name, name)
             m = measured_of.get(name)
             if q == "clip_side":
@@ -622,12 +622,13 @@ def rank_faults(
                 )
                 ev.append(Evidence(name, m, pv, None))
             else:
+                assert m is not None  # every scored term is an observation with a value
                 ev.append(
                     Evidence(
                         name,
                         _natural(name, q, float(m)),
                         _natural(name, q, p),
-                        _sigma_natural(q, float(m), s),
+                        _sigma_natural(q, float(m), sigma),
                     )
                 )
             z = math.sqrt(max(c, 0.0))

@@ -1,8 +1,9 @@
 """Instruments layer: VISA sessions, SCPI profiles and role drivers (I/O through pyvisa only).
 
-``scpi`` holds pure codecs shared with the simulated bench; ``profiles`` and ``station``
-read the TOML files; ``session`` owns one VISA resource; ``drivers`` speak a role's
-operations through a profile; ``bench.connect`` opens a whole station.
+``scpi`` holds pure codecs shared with the simulated bench; ``config`` the station and
+profile objects (their files are read by ``harness.io``); ``session`` owns one VISA
+resource; ``drivers`` speak a role's operations through a profile; ``bench.connect`` opens
+a whole station.
 """
 
 from __future__ import annotations

@@ -23,10 +23,10 @@ from typing import Any
 import pyvisa
 
 from harness.errors import StationFileError
+from harness.instruments.config import StationConfig
 from harness.instruments.drivers import Dmm, Generator, Scope, Supply, Switch
 from harness.instruments.scpi import Identity
 from harness.instruments.session import Session
-from harness.io.station import StationConfig
 
 __all__ = ["REQUIRED_ROLES", "SOURCE_ROLES", "Instruments", "connect"]
 
@@ -148,11 +148,11 @@ def connect(
             s.close()
         raise
     return Instruments(
-        generator=drivers["generator"],  # type: ignore[arg-type]
-        scope=drivers["scope"],  # type: ignore[arg-type]
-        switch=drivers.get("switch"),  # type: ignore[arg-type]
-        dmm=drivers.get("dmm"),  # type: ignore[arg-type]
-        supply=drivers.get("supply"),  # type: ignore[arg-type]
+        generator=drivers["generator"],
+        scope=drivers["scope"],
+        switch=drivers.get("switch"),
+        dmm=drivers.get("dmm"),
+        supply=drivers.get("supply"),
         identities={r: s.identity for r, s in sessions.items() if s.identity is not None},
         sessions=sessions,
     )

@@ -15,8 +15,9 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -31,17 +32,26 @@ __all__ = [
     "encode_block",
     "encode_values",
     "format_number",
+    "ladder_values",
+    "parse_ascii_values",
     "parse_block",
     "parse_block_header",
     "parse_bool",
     "parse_error_reply",
     "parse_idn",
     "parse_number",
+    "parse_preamble",
 ]
 
 #: Element types a waveform block may carry, with their numpy kind.  SCPI ``FORMat:DATA``
 #: names them INTeger,8 / INTeger,16 / REAL,32.
-DATATYPES: dict[str, str] = {"int8": "i1", "int16": "i2", "float32": "f4"}
+DATATYPES: dict[str, str] = {
+    "int8": "i1",
+    "int16": "i2",
+    "uint8": "u1",
+    "uint16": "u2",
+    "float32": "f4",
+}
 
 #: SCPI ``FORMat:DATA`` argument for each element type (SCPI-99 vol. 2 ch. 9).
 SCPI_FORMAT: dict[str, str] = {"int8": "INTeger,8", "int16": "INTeger,16", "float32": "REAL,32"}
@@ -224,6 +234,54 @@ def parse_number(text: str) -> float:
     return x
 
 
+def parse_ascii_values(text: str) -> np.ndarray:
+    """Comma-separated numeric response data (IEEE 488.2 §8.7.2-8.7.4) as float64."""
+    s = text.strip()
+    if not s:
+        return np.zeros(0)
+    out = np.empty(s.count(",") + 1)
+    for i, item in enumerate(s.split(",")):
+        out[i] = parse_number(item)
+    if not np.all(np.isfinite(out)):
+        raise MalformedReply("waveform text holds an overload or not-a-number value")
+    return out
+
+
+def parse_preamble(text: str, fields: Mapping[str, int]) -> dict[str, float]:
+    """A waveform preamble reply: comma-separated fields, picked by position.
+
+    ``fields`` maps a field name (``x_increment``, ``y_reference``, ...) to its position
+    (0 = first).  Every named field must be there and be a finite number; the increments
+    must be positive.  Anything else raises :class:`MalformedReply` naming the field.
+    """
+    items = [t.strip().strip('"') for t in text.strip().split(",")]
+    out: dict[str, float] = {}
+    for name, pos in sorted(fields.items(), key=lambda kv: kv[1]):
+        if pos >= len(items) or not items[pos]:
+            raise MalformedReply(
+                f"preamble has {len(items)} field(s), no field {pos} ({name}): {text[:80]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        try:
+            x = float(items[pos])
+        except ValueError:
+            x = math.nan
+        if not math.isfinite(x) or abs(x) >= 9.9e37:
+            raise MalformedReply(
+                f"preamble field {pos} ({name}) is not a number: {items[pos][:20]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        if name in ("x_increment", "y_increment") and not x > 0:
+            raise MalformedReply(
+                f"preamble field {pos} ({name}) must be positive, not {items[pos][:20]!r}",
+                hint=f"check preamble_fields.{name} in the profile",
+            )
+        if name == "points" and (x < 1 or not x.is_integer()):
+            raise MalformedReply(f"preamble field {pos} (points) is not a count: {items[pos]!r}")
+        out[name] = x
+    return out
+
+
 def parse_bool(text: str) -> bool:
     """A boolean reply: ``1``/``0`` (SCPI returns NR1) or ``ON``/``OFF``."""
     s = text.strip().upper()
@@ -261,6 +319,20 @@ def format_number(x: float | int | bool) -> str:
     return s
 
 
+def ladder_values(steps: tuple[float, ...], lo: float, hi: float) -> tuple[float, ...]:
+    """A setting ladder (1-2-5 and the like, common practice): every mantissa of ``steps``
+    times a power of ten between ``lo`` and ``hi`` (inclusive)."""
+    out = []
+    for k in range(math.floor(math.log10(lo)) - 1, math.ceil(math.log10(hi)) + 1):
+        for m in steps:
+            x = float(f"{m * 10.0**k:.6g}")
+            if lo * (1 - 1e-9) <= x <= hi * (1 + 1e-9):
+                out.append(x)
+    if not out:
+        raise ValueError("holds no value between min and max")
+    return tuple(sorted(out))
+
+
 def channel_list(channels: Iterable[int]) -> str:
     """Relay or input numbers as the body of a SCPI channel list: ``1,2,5`` (in ``(@...)``)."""
     items = [int(c) for c in channels]
@@ -269,3 +341,14 @@ def channel_list(channels: Iterable[int]) -> str:
     if any(c < 1 for c in items):
         raise ValueError(f"channel numbers start at 1: {items}")
     return ",".join(str(c) for c in items)
+
+
+def format_text(settings: Mapping[str, Any], fmt: str) -> str | None:
+    """What ``{format}`` is for element type ``fmt`` (or ``ascii``): the profile's own name,
+    else the SCPI-99 ``FORMat:DATA`` argument; None where neither exists."""
+    names = settings.get("format_names") or {}
+    if fmt in names:
+        return str(names[fmt])
+    if fmt == "ascii":
+        return "ASCii"
+    return SCPI_FORMAT.get(fmt)

@@ -27,12 +27,13 @@ import logging
 import threading
 import time
 from collections.abc import Callable
-from typing import Any, TypeVar
+from typing import Any, TypeVar, cast
 
 import numpy as np
 import pyvisa
 from pyvisa import constants
 from pyvisa.errors import VisaIOError
+from pyvisa.resources import MessageBasedResource
 
 from harness.errors import (
     ConnectionLost,
@@ -42,6 +43,7 @@ from harness.errors import (
     MalformedReply,
     ScpiError,
 )
+from harness.instruments.config import Profile
 from harness.instruments.scpi import (
     DATATYPES,
     NO_ERROR,
@@ -51,11 +53,13 @@ from harness.instruments.scpi import (
     parse_error_reply,
     parse_idn,
 )
-from harness.io.profiles import Profile
 
 __all__ = ["Session", "resource_manager"]
 
 log = logging.getLogger("harness.instruments")
+#: The SCPI trace (``stageproof -v``): every command and reply with its role and timing, at
+#: INFO, for a technician writing a profile.
+trace = logging.getLogger("harness.instruments.trace")
 
 T = TypeVar("T")
 
@@ -191,7 +195,10 @@ class Session:
         rm = self._rm or resource_manager(self.visa_library)
         log.debug("%s open (role %s, timeout %d ms)", self.resource, self.role, self.timeout_ms)
         try:
-            res = rm.open_resource(self.resource, open_timeout=self.timeout_ms)
+            res = cast(
+                MessageBasedResource,
+                rm.open_resource(self.resource, open_timeout=self.timeout_ms),
+            )
         except (VisaIOError, OSError, ValueError) as exc:
             raise ConnectionLost(
                 f"cannot open: {exc}",
@@ -296,6 +303,16 @@ class Session:
             raise self._typed(
                 ConnectionLost, f"VISA I/O error: {exc.description}", command
             ) from exc
+        except UnicodeDecodeError as exc:
+            # binary bytes where text was expected: a late block reply, or framing lost
+            self._broken = True
+            raise self._typed(
+                MalformedReply,
+                f"reply is not text ({exc.reason} at byte {exc.start})",
+                command,
+                "a binary block arrived for a text query: check the profile's fetch and "
+                "query commands",
+            ) from exc
         except OSError as exc:
             self._broken = True
             raise self._typed(
@@ -305,9 +322,22 @@ class Session:
                 "check the instrument is on and connected, and the resource in the station file",
             ) from exc
 
+    def _trace(self, command: str, reply: str | None, t0: float) -> None:
+        """One trace line: role, command, reply (shortened) and the time it took."""
+        if not trace.isEnabledFor(logging.INFO):
+            return
+        ms = (time.perf_counter() - t0) * 1000
+        if reply is None:
+            trace.info("%-9s >> %s  (%.1f ms)", self.role, command, ms)
+        else:
+            shown = reply if len(reply) <= 120 else reply[:120] + f"... ({len(reply)} chars)"
+            trace.info("%-9s >> %s  << %s  (%.1f ms)", self.role, command, shown, ms)
+
     def _write_raw(self, command: str) -> None:
         log.debug("%s >> %s", self.resource, command)
+        t0 = time.perf_counter()
         self._call(command, lambda: self._res.write(command))
+        self._trace(command, None, t0)
 
     def _query_raw(self, command: str, timeout_ms: int | None = None) -> str:
         def run() -> str:
@@ -322,8 +352,10 @@ class Session:
                 self._res.timeout = old
 
         log.debug("%s >> %s", self.resource, command)
+        t0 = time.perf_counter()
         reply = self._call(command, run).strip()
         log.debug("%s << %s", self.resource, reply if len(reply) < 200 else reply[:200] + "...")
+        self._trace(command, reply, t0)
         return reply
 
     def _read_block_raw(
@@ -366,12 +398,14 @@ class Session:
             return body[:count]
 
         log.debug("%s >> %s", self.resource, command)
+        t0 = time.perf_counter()
         try:
             payload = self._call(command, run)
         except MalformedReply as exc:
             self._broken = True  # framing lost: the stream must be resynchronised
             raise self._typed(MalformedReply, exc.message, command, exc.hint) from None
         log.debug("%s << block of %d bytes", self.resource, len(payload))
+        self._trace(command, f"<block of {len(payload)} bytes>", t0)
         return payload
 
     def _drain(self) -> None:

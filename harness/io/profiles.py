@@ -15,30 +15,27 @@ import math
 import re
 import string
 from collections.abc import Callable, Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError
-from harness.instruments.scpi import DATATYPES, format_number
+from harness.instruments.config import Profile
+from harness.instruments.scpi import DATATYPES, format_text, ladder_values
+from harness.io.packaged import PROFILE_DIR
 from harness.io.toml import read_toml
 
 __all__ = [
     "DEFAULT_PROFILE_DIRS",
     "ROLES",
-    "Profile",
     "command_text",
     "load_profile",
     "profile_from_dict",
 ]
 
-_PKG = Path(__file__).resolve().parent.parent
-#: Where profile names are looked up: the repository's fixtures, then the packaged copy.
-DEFAULT_PROFILE_DIRS: tuple[Path, ...] = (
-    _PKG.parent / "fixtures" / "instruments",
-    _PKG / "data" / "instruments",
-)
+#: Where profile names are looked up: the profiles shipped in fixtures/instruments/.
+DEFAULT_PROFILE_DIRS: tuple[Path, ...] = (PROFILE_DIR,)
 
 
 @dataclass(frozen=True)
@@ -64,27 +61,43 @@ ROLE_OPS: dict[str, dict[str, _Op]] = {
     "generator": {
         "set_function": _op(True, "output"),
         "set_frequency": _op(True, "output", "frequency_hz"),
+        "query_frequency": _op(True, "output"),
         "set_amplitude": _op(True, "output", "amplitude"),
+        "query_amplitude": _op(False, "output"),
+        "set_amplitude_unit": _op(False, "output"),
+        "set_load": _op(False, "output", "load"),
+        "query_load": _op(False, "output"),
         "set_offset": _op(True, "output", "offset_v"),
         "output_on": _op(True, "output"),
         "output_off": _op(True, "output"),
         "query_output": _op(True, "output"),
-        "query_amplitude": _op(False, "output"),
     },
     "scope": {
         "input_on": _op(True, "input"),
         "input_off": _op(False, "input"),
-        "set_range": _op(True, "input", "range_vpp"),
-        "set_offset": _op(True, "input", "offset_v"),
+        # vertical: by full-scale range or by volts per division (settings.vertical)
+        "set_range": _op(False, "input", "range_vpp"),
+        "query_range": _op(False, "input"),
+        "set_scale": _op(False, "input", "scale_v_div"),
+        "query_scale": _op(False, "input"),
+        "set_offset": _op(True, "input", "offset_v", "position_div"),
         "set_coupling": _op(True, "input", "coupling"),
         "set_bandwidth_limit": _op(True, "input", "state"),
         "set_probe": _op(False, "input", "probe"),
-        "set_sample_rate": _op(True, "interval_s", "sample_rate_hz"),
+        # horizontal: by sample rate, by time per division or by record time
+        "set_sample_rate": _op(False, "interval_s", "sample_rate_hz"),
+        "set_time_scale": _op(False, "time_s_div"),
+        "set_record_time": _op(False, "record_s"),
         "set_record_length": _op(True, "points"),
+        "query_sample_interval": _op(True),
+        "query_record_length": _op(True),
         "set_trigger": _op(True, "source", "level_v"),
         "set_data_format": _op(True, "format"),
+        "set_high_resolution": _op(False, "state"),
         "single": _op(True),
-        "fetch": _op(True, "input"),
+        "query_acquire_state": _op(False),
+        "query_preamble": _op(False, "input"),
+        "fetch": _op(True, "input", "start", "stop", "count"),
     },
     "switch": {
         "close": _op(True, "channels"),
@@ -181,6 +194,96 @@ def _template(v: Any) -> str:
     return v
 
 
+def _bool(v: Any) -> bool:
+    if not isinstance(v, bool):
+        raise ValueError("must be true or false")
+    return v
+
+
+def _text(v: Any) -> str:
+    if not isinstance(v, str):
+        raise ValueError("must be text")
+    return v
+
+
+def _nonneg_int(v: Any) -> int:
+    if isinstance(v, bool) or not isinstance(v, int) or v < 0:
+        raise ValueError("must be a whole number >= 0")
+    return v
+
+
+def _index_base(v: Any) -> int:
+    if isinstance(v, bool) or v not in (0, 1):
+        raise ValueError("must be 0 (first point is 0) or 1 (first point is 1)")
+    return int(v)
+
+
+#: Fields a preamble may carry; waveform volts = (code - y_reference) * y_increment + y_origin,
+#: time of point i = x_origin + i * x_increment (common practice for benchtop scopes).
+PREAMBLE_FIELDS: tuple[str, ...] = (
+    "points",
+    "x_increment",
+    "x_origin",
+    "y_increment",
+    "y_origin",
+    "y_reference",
+)
+#: Preamble fields the preamble-driven scaling cannot do without.
+PREAMBLE_REQUIRED: tuple[str, ...] = ("x_increment", "y_increment", "y_origin", "y_reference")
+#: The fixed set of scaling conventions; profile text never holds an expression.
+SCALINGS: tuple[str, ...] = ("range_and_bits", "per_division", "preamble")
+
+
+def _field_map(v: Any) -> dict[str, int]:
+    if not isinstance(v, dict):
+        raise ValueError("must be a table of field = position (0 = first field of the reply)")
+    out: dict[str, int] = {}
+    for k, i in v.items():
+        if k not in PREAMBLE_FIELDS:
+            raise ValueError(
+                f"names unknown preamble field {k!r}; known fields: {', '.join(PREAMBLE_FIELDS)}"
+            )
+        if isinstance(i, bool) or not isinstance(i, int) or i < 0:
+            raise ValueError(f"field {k} must be a position >= 0, not {i!r}")
+        out[k] = i
+    if len(set(out.values())) != len(out):
+        raise ValueError("gives two fields the same position")
+    return out
+
+
+_LADDERS = {"1-2-5": (1.0, 2.0, 5.0), "1-2.5-5": (1.0, 2.5, 5.0), "decade": (1.0,)}
+
+
+def _ladder_or_list(v: Any) -> tuple[float, ...]:
+    """A list of values, or ``{ ladder = "1-2-5", min = 1e-6, max = 10 }``."""
+    if isinstance(v, list):
+        return _list_of(_pos_float)(v)
+    if isinstance(v, dict):
+        unknown = set(v) - {"ladder", "min", "max"}
+        if unknown:
+            raise ValueError(f"has unknown key {sorted(unknown)[0]!r}; use ladder, min, max")
+        name = v.get("ladder")
+        steps = _LADDERS.get(name) if isinstance(name, str) else None
+        if steps is None:
+            raise ValueError(f"ladder must be one of {', '.join(repr(k) for k in _LADDERS)}")
+        lo, hi = _pos_float(v.get("min")), _pos_float(v.get("max"))
+        if lo > hi:
+            raise ValueError("min must not exceed max")
+        return ladder_values(steps, lo, hi)
+    raise ValueError('must be a list or a table { ladder = "1-2-5", min = ..., max = ... }')
+
+
+def _format_names(v: Any) -> dict[str, str]:
+    if not isinstance(v, dict) or not all(isinstance(x, str) and x for x in v.values()):
+        raise ValueError('must be a table of data format = text, e.g. { uint8 = "BYTE" }')
+    for k in v:
+        if k not in DATATYPES and k != "ascii":
+            raise ValueError(
+                f"names unknown data format {k!r}; known: {', '.join(DATATYPES)}, ascii"
+            )
+    return dict(v)
+
+
 def command_text(text: str) -> str:
     """Refuse a control character in text that goes to an instrument (ValueError).
 
@@ -205,22 +308,50 @@ class _Setting:
     doc: str = ""
 
 
+_FORMATS = tuple(DATATYPES)
+
 ROLE_SETTINGS: dict[str, dict[str, _Setting]] = {
     "generator": {
-        "amplitude_unit": _Setting(_choice("vpp", "vpk", "vrms"), doc="what {amplitude} means"),
+        "amplitude_unit": _Setting(
+            _choice("vpp", "vpk", "vrms", "dbm"), doc="what {amplitude} means"
+        ),
         "calibrated_load": _Setting(_load, doc="load the amplitude setting assumes"),
         "output_ohm": _Setting(_nonneg_float, doc="the generator's source impedance"),
         "max_amplitude_vpp": _Setting(_pos_float, doc="largest setting, at calibrated load"),
         "outputs": _Setting(_pos_int, 1),
+        "frequency_resolution_hz": _Setting(_nonneg_float, 0.0),
+        "amplitude_tolerance_rel": _Setting(_pos_float, 0.002),
     },
     "scope": {
         "inputs": _Setting(_pos_int),
         "adc_bits": _Setting(_bits),
-        "data_format": _Setting(_choice(*DATATYPES)),
+        "data_format": _Setting(_choice(*_FORMATS)),
         "byte_order": _Setting(_choice("big", "little"), "big"),
-        "sample_rates_hz": _Setting(_list_of(_pos_float)),
+        "transfer": _Setting(_choice("block", "ascii"), "block"),
+        "format_names": _Setting(_format_names, MappingProxyType({})),
+        "vertical": _Setting(_choice("range", "per_division"), "range"),
+        "divisions": _Setting(_pos_int, 8),
+        "ranges_vpp": _Setting(_list_of(_pos_float), ()),
+        "scales_v_div": _Setting(_ladder_or_list, ()),
+        "horizontal": _Setting(
+            _choice("sample_rate", "per_division", "record_time"), "sample_rate"
+        ),
+        "horizontal_divisions": _Setting(_pos_int, 10),
+        "time_scales_s_div": _Setting(_ladder_or_list, ()),
+        "sample_rates_hz": _Setting(_ladder_or_list),
         "record_lengths": _Setting(_list_of(_pos_int)),
-        "ranges_vpp": _Setting(_list_of(_pos_float)),
+        "scaling": _Setting(_choice(*SCALINGS), "range_and_bits"),
+        "preamble_fields": _Setting(_field_map, MappingProxyType({})),
+        "code_reference": _Setting(_nonneg_int, -1),
+        "max_points_per_read": _Setting(_nonneg_int, 0),
+        "index_base": _Setting(_index_base, 1),
+        "acquire_done": _Setting(_choice("opc", "poll"), "opc"),
+        "done_reply": _Setting(_text, ""),
+        "poll_interval_s": _Setting(_nonneg_float, 0.005),
+        "high_resolution": _Setting(_bool, False),
+        "high_resolution_bits": _Setting(_nonneg_int, 0),
+        "high_resolution_format": _Setting(_choice("", *_FORMATS), ""),
+        "readback_tolerance_rel": _Setting(_pos_float, 1e-4),
         "trigger_input_source": _Setting(_template, "INTernal{input}"),
         "acquire_margin_s": _Setting(_nonneg_float, 2.0),
     },
@@ -260,39 +391,6 @@ def _line_of(raw: bytes, key: str) -> int | None:
     return raw[: m.start()].count(b"\n") + 1 if m else None
 
 
-@dataclass(frozen=True)
-class Profile:
-    """A validated instrument profile; ``settings`` hold clean values with defaults applied."""
-
-    name: str
-    role: str
-    settings: Mapping[str, Any]
-    commands: Mapping[str, str]
-    description: str = ""
-    path: str | None = None
-    placeholders: Mapping[str, frozenset[str]] = field(default_factory=dict, repr=False)
-
-    def has(self, op: str) -> bool:
-        return op in self.commands
-
-    def render(self, op: str, **params: Any) -> str:
-        """The SCPI text of ``op`` with numbers formatted as SCPI wants (base units)."""
-        try:
-            text = self.commands[op]
-        except KeyError:
-            raise ProfileError(
-                self.path,
-                f"commands.{op}",
-                f"no operation {op!r} in this {self.role} profile",
-                hint=f'add {op} = "..." under [commands]',
-            ) from None
-        values = {k: v if isinstance(v, str) else format_number(v) for k, v in params.items()}
-        missing = self.placeholders.get(op, frozenset()) - values.keys()
-        if missing:  # a driver bug, not a user one: load-time checks make this unreachable
-            raise ProfileError(self.path, f"commands.{op}", f"no value for {sorted(missing)}")
-        return text.format_map(values)
-
-
 def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: bytes = b"") -> Profile:
     """Validate a parsed profile document (see module docstring)."""
 
@@ -302,8 +400,10 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
 
     unknown = set(doc) - {"profile", "settings", "commands"}
     if unknown:
-        name = sorted(unknown)[0]
-        raise err(name, f"unknown section [{name}]", "use only [profile], [settings], [commands]")
+        section = sorted(unknown)[0]
+        raise err(
+            section, f"unknown section [{section}]", "use only [profile], [settings], [commands]"
+        )
     head = doc.get("profile")
     if not isinstance(head, dict):
         raise err("profile", "missing [profile] table", "add [profile] with name and role")
@@ -394,16 +494,18 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
                 "required operation missing",
                 f'add {op} = "<SCPI text>" under [commands]',
             )
+    if role == "scope":
+        _check_scope(settings, placeholders, err)
     if (
-        role == "scope"
-        and settings["data_format"] != "float32"
-        and settings["adc_bits"] > 8 * int(DATATYPES[settings["data_format"]][1])
+        role == "generator"
+        and settings["amplitude_unit"] == "dbm"
+        and not math.isfinite(settings["calibrated_load"])
     ):
         raise err(
-            "settings.adc_bits",
-            f"{settings['adc_bits']} bits do not fit {settings['data_format']} codes",
-            "use int16 or float32",
-            "adc_bits",
+            "settings.calibrated_load",
+            "dBm needs a finite load: power into high impedance is not defined",
+            "set calibrated_load = 50 (or the load the generator's dBm assumes)",
+            "calibrated_load",
         )
     return Profile(
         name=name,
@@ -414,6 +516,109 @@ def profile_from_dict(doc: Mapping[str, Any], path: str | None = None, raw: byte
         path=path,
         placeholders=MappingProxyType(placeholders),
     )
+
+
+def _check_scope(
+    settings: dict[str, Any],
+    placeholders: Mapping[str, frozenset[str]],
+    err: Callable[..., ProfileError],
+) -> None:
+    """Cross-field rules of a scope profile: each mode names the operations it needs."""
+
+    def need(op: str, why: str, key: str) -> None:
+        if op not in placeholders:
+            raise err(
+                f"commands.{op}", f"required by {why}", f'add {op} = "..." under [commands]', key
+            )
+
+    def have(key: str, why: str, example: str) -> None:
+        if not settings[key]:
+            raise err(f"settings.{key}", f"required by {why}", f"add {key} = {example}", key)
+
+    vertical, horizontal = settings["vertical"], settings["horizontal"]
+    if vertical == "range":
+        have("ranges_vpp", 'vertical = "range"', "[0.2, 2, 20]")
+        need("set_range", 'vertical = "range"', "vertical")
+        need("query_range", 'vertical = "range" (the range is read back)', "vertical")
+    else:
+        have(
+            "scales_v_div",
+            'vertical = "per_division"',
+            '{ ladder = "1-2-5", min = 1e-3, max = 10 }',
+        )
+        need("set_scale", 'vertical = "per_division"', "vertical")
+        need("query_scale", 'vertical = "per_division" (the scale is read back)', "vertical")
+    if horizontal == "sample_rate":
+        need("set_sample_rate", 'horizontal = "sample_rate"', "horizontal")
+    elif horizontal == "per_division":
+        have(
+            "time_scales_s_div",
+            'horizontal = "per_division"',
+            '{ ladder = "1-2-5", min = 1e-6, max = 10 }',
+        )
+        need("set_time_scale", 'horizontal = "per_division"', "horizontal")
+    else:
+        need("set_record_time", 'horizontal = "record_time"', "horizontal")
+    if settings["scaling"] == "preamble":
+        need("query_preamble", 'scaling = "preamble"', "scaling")
+        missing = [f for f in PREAMBLE_REQUIRED if f not in settings["preamble_fields"]]
+        if missing:
+            raise err(
+                "settings.preamble_fields",
+                f"preamble-driven scaling needs the field(s) {', '.join(missing)}",
+                "add their positions in the preamble reply, e.g. y_increment = 3",
+                "preamble_fields",
+            )
+    fmt = settings["data_format"]
+    if fmt != "float32" and settings["adc_bits"] > 8 * int(DATATYPES[fmt][1]):
+        raise err(
+            "settings.adc_bits",
+            f"{settings['adc_bits']} bits do not fit {fmt} codes",
+            "use a 16-bit format or float32",
+            "adc_bits",
+        )
+    if settings["transfer"] == "block" and format_text(settings, fmt) is None:
+        raise err(
+            "settings.format_names",
+            f"no text for data format {fmt!r} in {{format}}",
+            f'add format_names = {{ {fmt} = "..." }} (what set_data_format sends)',
+            "format_names",
+        )
+    if settings["max_points_per_read"]:
+        got = placeholders.get("fetch", frozenset())
+        if "start" not in got or not got & {"stop", "count"}:
+            raise err(
+                "commands.fetch",
+                "max_points_per_read needs a fetch that names the points it reads",
+                "use {start} with {stop} or {count} in fetch",
+                "fetch",
+            )
+    if settings["acquire_done"] == "poll":
+        need("query_acquire_state", 'acquire_done = "poll"', "acquire_done")
+        if not settings["done_reply"].strip():
+            raise err(
+                "settings.done_reply",
+                'required by acquire_done = "poll"',
+                'add done_reply = "..." (the reply of query_acquire_state once acquired)',
+                "done_reply",
+            )
+    if settings["high_resolution"]:
+        need("set_high_resolution", "high_resolution = true", "high_resolution")
+        bits, hfmt = settings["high_resolution_bits"], settings["high_resolution_format"] or fmt
+        if not 1 <= bits <= 24:
+            raise err(
+                "settings.high_resolution_bits",
+                "required by high_resolution = true (1-24 bits)",
+                "add high_resolution_bits = 12",
+                "high_resolution_bits",
+            )
+        if hfmt != "float32" and bits > 8 * int(DATATYPES[hfmt][1]):
+            raise err(
+                "settings.high_resolution_format",
+                f"{bits} bits do not fit {hfmt} codes",
+                'add high_resolution_format = "uint16"',
+                "high_resolution_format",
+            )
 
 
 def _find(name: str, dirs: Iterable[Path]) -> Path | None:
@@ -433,9 +638,9 @@ def load_profile(
 ) -> Profile:
     """Load a profile by name (``scpi-scope``) or path (``benches/my-scope.toml``).
 
-    A name is looked up in ``search_dirs`` (default: the repository's fixtures/instruments,
-    then the copy packaged in harness/data/instruments); a path is taken relative to
-    ``base_dir`` (the station file's folder).  ``role`` checks the profile is for it.
+    A name is looked up in ``search_dirs`` (default: the shipped fixtures/instruments); a
+    path is taken relative to ``base_dir`` (the station file's folder).  ``role`` checks the
+    profile is for it.
     """
     dirs = tuple(search_dirs) if search_dirs is not None else DEFAULT_PROFILE_DIRS
     ref = str(name_or_path)

@@ -11,18 +11,16 @@ from __future__ import annotations
 
 import re
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 from harness.errors import ProfileError, StationFileError
-from harness.io.profiles import ROLES, Profile, load_profile
+from harness.instruments.config import InstrumentConfig, StationConfig
+from harness.io.profiles import ROLES, load_profile
 from harness.io.toml import FieldReader, read_toml
 
 __all__ = [
-    "InstrumentConfig",
-    "StationConfig",
     "load_station",
     "station_from_dict",
     "validate_resource",
@@ -94,29 +92,6 @@ def validate_resource(
     ):
         hint = "a raw socket needs the ::SOCKET suffix, e.g. TCPIP::127.0.0.1::5025::SOCKET"
     raise StationFileError(path, location, f"{res!r} is not a VISA resource string", hint=hint)
-
-
-@dataclass(frozen=True)
-class InstrumentConfig:
-    role: str
-    resource: str
-    profile: Profile
-    expect_idn: str | None = None
-    timeout_ms: int = 5000
-    retries: int = 1
-
-
-@dataclass(frozen=True)
-class StationConfig:
-    name: str
-    instruments: Mapping[str, InstrumentConfig]
-    visa_library: str = "@py"
-    timeout_ms: int = 5000
-    retries: int = 1
-    path: str | None = None
-
-    def get(self, role: str) -> InstrumentConfig | None:
-        return self.instruments.get(role)
 
 
 #: Longest wait for one reply.  Acquisitions get their own timeout from the record length,

@@ -14,7 +14,7 @@ from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
 
-from harness.errors import BoardFileError, InputFileError
+from harness.errors import InputFileError
 
 
 def read_toml(
@@ -407,20 +407,3 @@ class FieldReader:
         if not (low < v <= high):
             raise self.fail(loc, f"{what} {v:g} is out of range ({low:g} .. {high:g})")
         return v
-
-
-def load_board(path: str | Path, *, validate: bool = True):
-    """Read and validate a board description (see README, "Board files").
-
-    With ``validate`` the nominal design is checked too (each transistor active at rest, each
-    channel able to drive its load), so an unworkable board fails here with the file and field.
-    """
-    from harness.model.board import board_from_dict
-
-    doc, raw = read_toml(path, BoardFileError)
-    board = board_from_dict(doc, str(path), raw)
-    if validate:
-        from harness.model import validate_board
-
-        validate_board(board)
-    return board

@@ -102,11 +102,15 @@ class UniformGrid:
         """
         om = np.asarray(omegas, dtype=np.float64)
         coef = np.asarray(coef, dtype=np.complex128)
-        out = np.empty(self.n, dtype=dtype)
+        out: np.ndarray = np.empty(self.n, dtype=dtype)
         ge = coef[None, :] * np.exp(1j * np.outer(self.r, om))  # b x K
         f = np.exp(1j * np.outer(self.a, om))  # m x K
-        left = np.concatenate([f.real, -f.imag, np.ones((self.m, 1))], axis=1).astype(dtype)
-        right = np.concatenate([ge.real.T, ge.imag.T, np.full((1, self.b), dc)]).astype(dtype)
+        left: np.ndarray = np.concatenate([f.real, -f.imag, np.ones((self.m, 1))], axis=1).astype(
+            dtype
+        )
+        right: np.ndarray = np.concatenate([ge.real.T, ge.imag.T, np.full((1, self.b), dc)]).astype(
+            dtype
+        )
         cut = self.m * self.b
         np.matmul(left, right, out=out[:cut].reshape(self.m, self.b))
         if self.rem:

@@ -62,7 +62,7 @@ def plan_coherent(
     lengths = sorted({int(n) for n in record_lengths if int(n) > 0})
     if not rates or not lengths:
         raise AnalysisError("plan_coherent needs at least one sample rate and one record length")
-    best: tuple | None = None
+    best: tuple[tuple[bool, int, float, float], CoherentPlan] | None = None
     for fs in rates:
         for n in lengths:
             j0 = target_hz * n / fs
@@ -86,3 +86,43 @@ def plan_coherent(
             hint="allow a wider tolerance, longer records or other sample rates",
         )
     return best[1]
+
+
+def plan_coherent_within(
+    target_hz: float,
+    sample_rate_hz: float,
+    max_points: int,
+    *,
+    tolerance_rel: float = 0.02,
+    min_cycles: int = 3,
+    k_max: int = 10,
+) -> CoherentPlan:
+    """A coherent plan at a sample rate and record length the instrument chose: J cycles in
+    the first N <= ``max_points`` samples, gcd(J, N) = 1, J·fs/N within ``tolerance_rel`` of
+    the target (Maxim/ADI application note 1040).  Prefers harmonics up to ``k_max`` below
+    Nyquist, then the longest record."""
+    if not (target_hz > 0 and sample_rate_hz > 0 and max_points >= 2):
+        raise AnalysisError(
+            f"cannot plan {target_hz!r} Hz at {sample_rate_hz!r} S/s in {max_points!r} points"
+        )
+    fallback: CoherentPlan | None = None
+    j_max = min(int(max_points * target_hz / sample_rate_hz), (max_points - 1) // 2)
+    for j in range(j_max, max(min_cycles, 1) - 1, -1):
+        n0 = min(max_points, round(j * sample_rate_hz / target_hz))
+        for n in sorted({n0, n0 - 1, n0 + 1, n0 - 2, n0 + 2}, key=lambda x: (abs(x - n0), -x)):
+            if not 2 <= n <= max_points or math.gcd(j, n) != 1:
+                continue
+            f = j * sample_rate_hz / n
+            if abs(f - target_hz) > tolerance_rel * target_hz:
+                continue
+            plan = CoherentPlan(f, float(sample_rate_hz), n, j)
+            if k_max * j < n / 2:
+                return plan
+            fallback = fallback or plan
+    if fallback is None:
+        raise AnalysisError(
+            f"no coherent record within {tolerance_rel:.3g} of {target_hz:.6g} Hz in at most "
+            f"{max_points} points at {sample_rate_hz:g} S/s",
+            hint="allow a wider tolerance or a longer record",
+        )
+    return fallback

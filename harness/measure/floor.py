@@ -23,7 +23,7 @@ FLOOR_MARGIN = 2.0
 
 def quantisation_snr_db(bits: float) -> float:
     """Ideal N-bit quantiser, full-scale sine: 6.02 N + 1.76 dB (ADI MT-001)."""
-    return 20 * np.log10(2.0**bits) + 10 * np.log10(1.5)
+    return float(20 * np.log10(2.0**bits) + 10 * np.log10(1.5))
 
 
 @dataclass(frozen=True)

@@ -66,7 +66,7 @@ class Harmonics:
     @property
     def thd_r_ratio(self) -> float:
         """THD referred to the total RMS: THD_F/√(1+THD_F²)."""
-        return self.thd_ratio / np.sqrt(1 + self.thd_ratio**2)
+        return float(self.thd_ratio / np.sqrt(1 + self.thd_ratio**2))
 
     def hd_ratio(self, k: int) -> float:
         """V_k / V_1 of one harmonic order (NaN if that order was not analysed)."""

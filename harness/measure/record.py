@@ -63,6 +63,11 @@ class RecordAnalysis:
     input_vrms: float
     harmonics: Harmonics | None = field(repr=False)
     clip: ClipEvidence = field(repr=False)
+    #: THD of the output record as recorded, the scope's own harmonics included (percent);
+    #: set when ``thd_percent`` is the value with them removed.
+    thd_raw_percent: float | None = None
+    #: ``thd_percent`` has the digitiser's own harmonics removed (added THD of the board).
+    scope_harmonics_removed: bool = False
 
     @property
     def thd_below_floor(self) -> bool:
@@ -95,6 +100,10 @@ class RecordAnalysis:
             "gain_db": _num(self.gain_db),
             "phase_deg": _num(self.phase_deg),
             "thd_percent": _num(self.thd_percent),
+            "thd_raw_percent": _num(
+                self.thd_percent if self.thd_raw_percent is None else self.thd_raw_percent
+            ),
+            "scope_harmonics_removed": self.scope_harmonics_removed,
             "thdn_percent": _num(self.thdn_percent),
             "thd_db": _num(self.thd_db),
             "sinad_db": _num(self.sinad_db),
@@ -152,8 +161,16 @@ def analyze_uniform(
         _checks.check_fundamental(frequency_hz, fs, n, bw)
     in_lo, in_hi = _adc("in_adc", in_adc)
     out_lo, out_hi = _adc("out_adc", out_adc)
-    lsb_in = (in_hi - in_lo) / 2**adc_bits if adc_bits and in_lo is not None else None
-    lsb_out = (out_hi - out_lo) / 2**adc_bits if adc_bits and out_lo is not None else None
+    lsb_in = (
+        (in_hi - in_lo) / 2**adc_bits
+        if adc_bits and in_lo is not None and in_hi is not None
+        else None
+    )
+    lsb_out = (
+        (out_hi - out_lo) / 2**adc_bits
+        if adc_bits and out_lo is not None and out_hi is not None
+        else None
+    )
 
     core_in, core_out = fit_pair(x, y, fs, frequency_hz, k_max)
     f = core_in.omega * fs / (2 * np.pi)
@@ -208,7 +225,7 @@ def analyze_uniform(
     r_full = y - core_out.model(dtype)
     noise_diff = float(np.sqrt(np.mean(np.square(np.diff(r_full), dtype=np.float64)) / 2))
     noise = min(float(np.sqrt(core_out.sum_sq / n)), noise_diff)
-    full_scale = (out_hi - out_lo) if out_lo is not None else None
+    full_scale = (out_hi - out_lo) if out_lo is not None and out_hi is not None else None
     q = full_scale / 2**adc_bits / np.sqrt(12) if adc_bits and full_scale else 0.0
     floor = measurement_floor(
         adc_bits if full_scale else None,

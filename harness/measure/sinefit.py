@@ -52,7 +52,7 @@ class SineFit:
     @property
     def rms(self) -> float:
         """RMS of the fitted fundamental."""
-        return self.amplitude / np.sqrt(2.0)
+        return float(self.amplitude / np.sqrt(2.0))
 
 
 @dataclass(frozen=True, eq=False)
@@ -98,7 +98,8 @@ def _lin_basis(ks: np.ndarray, jmax: int) -> np.ndarray:
 def _pair_sums(s: np.ndarray, jmax: int) -> np.ndarray:
     """M[j, l] = S((j + l)ω) for j, l in -jmax..jmax, from S over -2jmax..2jmax."""
     idx = np.arange(2 * jmax + 1)
-    return s[idx[:, None] + idx[None, :]]
+    out: np.ndarray = s[idx[:, None] + idx[None, :]]
+    return out
 
 
 def _q_full(q: np.ndarray, ks: np.ndarray, jmax: int, q_dc: float) -> np.ndarray:
@@ -110,7 +111,9 @@ def _q_full(q: np.ndarray, ks: np.ndarray, jmax: int, q_dc: float) -> np.ndarray
     return out
 
 
-def _project(grid: UniformGrid, y: np.ndarray, ks: np.ndarray, omega: float, with_t: bool):
+def _project(
+    grid: UniformGrid, y: np.ndarray, ks: np.ndarray, omega: float, with_t: bool
+) -> tuple[np.ndarray, np.ndarray | None]:
     """Σ y n'^p e^{-ikωn'} for k in ks (p = 0, and 1 with ``with_t``)."""
     return grid.project(y, -ks * omega, with_t=with_t)
 
@@ -164,6 +167,7 @@ def _fit_core(
         m2 = _pair_sums(s[2], jmax)
         gd = np.einsum("aj,l,jl->a", c, cd, m1).real
         dd = float(np.einsum("j,l,jl->", cd, cd, m2).real)
+        assert q1 is not None  # projected with n' whenever the frequency is refined
         qf1 = _q_full(q1[1:], ks, jmax, float(q1[0].real))
         dy = float((cd @ qf1).real)
         big = np.zeros((g.shape[0] + 1, g.shape[0] + 1))
@@ -219,7 +223,7 @@ def coarse_omega(y: np.ndarray) -> float:
     a, b, c = np.log(spec[k - 1 : k + 2] + 1e-300)
     den = a - 2 * b + c
     frac = 0.5 * (a - c) / den if den != 0 else 0.0
-    return 2 * np.pi * (k + float(np.clip(frac, -0.5, 0.5))) / (n * pad)
+    return float(2 * np.pi * (k + float(np.clip(frac, -0.5, 0.5))) / (n * pad))
 
 
 def estimate_omega(y: np.ndarray, harmonics: int = 0, omega0: float | None = None) -> _Core:
@@ -287,7 +291,12 @@ def fit_sine3(t: object, y: object, frequency_hz: float, harmonics: int = 0) -> 
 
 
 def fit_sine3_uniform(
-    y: object, sample_rate_hz: float, frequency_hz: float, harmonics: int = 0, *, t0_s=0.0
+    y: object,
+    sample_rate_hz: float,
+    frequency_hz: float,
+    harmonics: int = 0,
+    *,
+    t0_s: float = 0.0,
 ) -> SineFit:
     """:func:`fit_sine3` for a uniform record given by its sample rate (t0_s = first sample)."""
     yy = _checks.as_samples(y, "y")

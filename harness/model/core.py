@@ -13,9 +13,11 @@ What is modelled (midband, coupling and bypass capacitors as shorts for the sign
 * Small-signal hybrid-pi gains, each stage loaded by the next stage's input impedance and the
   last by the board load; op-amp stages with finite open-loop gain.
 * Output swing of each stage in both directions (saturation, cutoff, rails, current limit).
-* A large-signal solution over one period (exponential junction with emitter degeneration,
-  implicit in the emitter current, solved by vectorised Newton; hard limits at saturation and at
-  the rails), giving THD and the input level where THD reaches the board's criterion.
+* The periodic steady state of the chain (:mod:`harness.model.periodic`: Ebers-Moll with both
+  junctions and the Early effect, so saturation is soft; the coupling and bypass capacitors'
+  DC balance, so the bias shifts under drive; the generator's EMF behind ``source_ohm``;
+  op-amp rails as hard limits), giving THD and the input level where the board's criterion
+  is met.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from harness.model.board import (
+    BETA_R_DEFAULT,
     Board,
     Channel,
     CommonEmitter,
@@ -33,6 +36,7 @@ from harness.model.board import (
     OpAmpInverting,
     OpAmpNonInverting,
 )
+from harness.model.periodic import PeriodicState, solve_periodic
 from harness.model.settling import (
     TimeConstant,
     settle_times,
@@ -76,7 +80,8 @@ def solve_junction(
         v = v - step
         if np.all(np.abs(step) < 1e-13):
             break
-    return v
+    out: np.ndarray = v
+    return out
 
 
 # --- results -----------------------------------------------------------------------------------
@@ -233,7 +238,36 @@ def _flag(
         problems.append(Problem(location, reason.format(**at), hint, mask))
 
 
-def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -> list[StageArrays]:
+def _early_factors(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> list[np.ndarray]:
+    """Gummel-Poon's 1/q_b = 1 + V_CB/V_AF of each BJT stage at its bias (1 for op-amps)."""
+    out = []
+    for st, s in zip(ch.stages, stages, strict=True):
+        if isinstance(st, CommonEmitter | EmitterFollower):
+            out.append(1.0 + (s.vc_v - s.vb_v) * _stage_getter(p, n, st.name)("inv_vaf_v", 0.0))
+        else:
+            out.append(np.ones(n))
+    return out
+
+
+def _with_inverse_early(p: Arrays, n: int) -> dict[str, np.ndarray]:
+    """The parameters plus ``<stage>.inv_vaf_v`` (0 where no Early voltage is given)."""
+    out = dict(p)
+    for k, v in p.items():
+        if k.endswith(".vaf_v"):
+            out[k[: -len("vaf_v")] + "inv_vaf_v"] = 1.0 / _b(v, n)
+    return out
+
+
+def _dc(
+    board: Board,
+    ch: Channel,
+    p: Arrays,
+    n: int,
+    problems: list[Problem],
+    early: list[np.ndarray] | None = None,
+) -> list[StageArrays]:
+    """Bias of every stage.  ``early`` (per stage, from :func:`_early_factors` of a previous
+    pass) scales I_S and beta by 1 + V_CB/V_AF: the Early effect on the transport current."""
     vcc = _b(p["supply.positive_v"], n)
     v_t = _b(p["v_t"], n)
     r_load = _b(p["load_ohm"], n)
@@ -250,6 +284,8 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
         dc_load = j == last and st.c_out is None
         if isinstance(st, CommonEmitter | EmitterFollower):
             beta, i_s = g("beta"), g("is_a")
+            if early is not None:
+                beta, i_s = beta * early[j], i_s * early[j]
             if (
                 j == 0
                 and st.c_in is None
@@ -440,6 +476,29 @@ def _dc(board: Board, ch: Channel, p: Arrays, n: int, problems: list[Problem]) -
 # --- small signal ------------------------------------------------------------------------------
 
 
+def _degenerated_ce(
+    g_m: np.ndarray, r_pi: np.ndarray, r_o: np.ndarray, r_e: np.ndarray, r_l: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Gain v_c/v_b, base input resistance and transistor output resistance of a CE stage
+    with emitter resistance ``r_e``, output resistance ``r_o`` (Early effect) and collector
+    load ``r_l``: the hybrid-pi nodal equations at collector and emitter solved exactly.
+    Emitter degeneration raises the output resistance to r_o + (r_e || r_pi)(1 + g_m r_o)
+    (Sedra & Smith, *Microelectronic Circuits*, BJT chapter, from memory), so r_o in parallel
+    with the load would understate a degenerated stage's gain."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g_o = np.where(np.isfinite(r_o), 1.0 / r_o, 0.0)
+        a11, a12, b1 = 1.0 / r_l + g_o, -(g_m + g_o), -g_m
+        a21 = -g_o * r_e  # the emitter equation times r_e: r_e = 0 stays finite
+        a22 = 1.0 + r_e * (1.0 / r_pi + g_m + g_o)
+        b2 = r_e * (1.0 / r_pi + g_m)
+        det = a11 * a22 - a12 * a21
+        v_c = (b1 * a22 - a12 * b2) / det
+        v_e = (a11 * b2 - a21 * b1) / det
+        r_par = r_e * r_pi / (r_e + r_pi)
+        r_out = np.where(np.isfinite(r_o), r_o + r_par * (1.0 + g_m * r_o), np.inf)
+    return v_c, r_pi / (1.0 - v_e), r_out
+
+
 def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> None:
     v_t = _b(p["v_t"], n)
     r_next = _b(p["load_ohm"], n)
@@ -453,21 +512,22 @@ def _small_signal(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> 
         if isinstance(st, CommonEmitter):
             r_pi = s.beta * v_t / s.ic_a
             vaf = g("vaf_v", np.inf)
-            r_o = (vaf + s.vce_v) / s.ic_a
+            r_o = (vaf + s.vc_v - s.vb_v) / s.ic_a
             rc = g("rc")
             r_ac = parallel(rc, r_next, r_o)
             re = g("re")
-            z_base = r_pi + (s.beta + 1.0) * re
-            s.gain = -s.beta * r_ac / z_base
+            s.gain, z_base, r_out_q = _degenerated_ce(
+                s.ic_a / v_t, r_pi, r_o, re, parallel(rc, r_next)
+            )
             r1, r2 = g("r1"), g("r2")
             s.input_ohm = parallel(r1, r2, z_base)
-            s.output_ohm = parallel(rc, r_o)
+            s.output_ohm = parallel(rc, r_out_q)
             s.r_ac = r_ac
             s.r_e_ac = re
         elif isinstance(st, EmitterFollower):
             r_pi = s.beta * v_t / s.ic_a
             vaf = g("vaf_v", np.inf)
-            r_o = (vaf + s.vce_v) / s.ic_a
+            r_o = (vaf + s.vc_v - s.vb_v) / s.ic_a
             r_e_ac = parallel(g("re"), r_next, r_o)
             z_base = r_pi + (s.beta + 1.0) * r_e_ac
             s.gain = (s.beta + 1.0) * r_e_ac / z_base
@@ -595,72 +655,125 @@ def _low_end(
 #: Rows per block in the large-signal solution: small blocks keep the Newton temporaries in
 #: cache (about 3x faster than whole-array passes for 100,000 boards).
 BLOCK_ROWS = 2048
+_BJT = ("common_emitter", "emitter_follower")
 
 
 @dataclass
 class LargeSignalChain:
-    """Per-stage coefficients of the large-signal chain, shape ``(samples, 3)`` each.
+    """Per-stage coefficients of the large-signal chain, each an array over samples.
 
-    common_emitter: I_CQ, R_E'·(beta+1)/beta, R_ac, V_CEQ - V_CE(sat);
-    emitter_follower: I_EQ, R_E ∥ R_next, -, V_CEQ - V_CE(sat);
-    op-amp: gain, -swing_neg, swing_pos, -.
+    BJT stages: the coefficients of :data:`harness.model.periodic.STAGE_KEYS` but ``r_b`` (that
+    depends on the source driving the stage), plus ``r_bias`` (the bias network's AC
+    resistance at the base; infinite for a DC-coupled follower), ``r_out`` (the resistance
+    behind the stage's output current, the next stage's Thevenin source resistance),
+    ``v_open`` (the open collector's DC source, for a DC-coupled follower behind it), the rest
+    bias ``vbe0 vbc0 ib0 ic0`` and ``out_rest`` (the output node at rest).  Op-amp stages:
+    ``gain``, ``lo``, ``hi`` (output swing about rest) and ``z_in``.  ``dc_in[j]``: stage j's
+    base is the previous collector; ``dc_out``: the last stage drives the load without C_out.
     """
 
     kinds: tuple[str, ...]
-    coef: tuple[np.ndarray, ...]
-    v_t: np.ndarray
+    coef: tuple[dict[str, np.ndarray], ...]
+    dc_in: tuple[bool, ...]
+    dc_out: bool
+    r_source: np.ndarray
 
     @classmethod
-    def from_arrays(cls, arrays: ChannelArrays) -> LargeSignalChain:
-        coef = []
-        for s in arrays.stages:
-            if s.kind == "common_emitter":
-                c = (s.ic_a, s.r_e_ac * (s.beta + 1.0) / s.beta, s.r_ac, s.vce_v - s.vce_sat_v)
-            elif s.kind == "emitter_follower":
-                c = (s.ie_a, s.r_e_ac, s.r_e_ac, s.vce_v - s.vce_sat_v)
-            else:
-                c = (s.gain, -s.swing_neg_v, s.swing_pos_v, s.swing_pos_v)
-            coef.append(np.stack([np.broadcast_to(v, (arrays.n,)) for v in c], axis=1))
-        return cls(tuple(s.kind for s in arrays.stages), tuple(coef), arrays.v_t)
+    def from_arrays(cls, arrays: ChannelArrays, channel: Channel, p: Arrays) -> LargeSignalChain:
+        n = arrays.n
+        q = _with_inverse_early(p, n)
+        vcc = _b(p["supply.positive_v"], n)
+        r_load = _b(p["load_ohm"], n)
+        last = len(channel.stages) - 1
+        dc_out = channel.stages[-1].c_out is None
+        coef: list[dict[str, np.ndarray]] = []
+        dc_in: list[bool] = []
+        for j, (st, s) in enumerate(zip(channel.stages, arrays.stages, strict=True)):
+            g = _stage_getter(q, n, st.name)
+            dc_load = j == last and dc_out
+            follower_next = (
+                j < last
+                and isinstance(channel.stages[j + 1], EmitterFollower)
+                and channel.stages[j + 1].dc_coupled  # type: ignore[union-attr]
+            )
+            dc_in.append(isinstance(st, EmitterFollower) and st.dc_coupled)
+            if isinstance(st, CommonEmitter | EmitterFollower):
+                c = {
+                    "is_a": g("is_a"),
+                    "beta_f": g("beta"),
+                    "beta_r": g("beta_r", BETA_R_DEFAULT),
+                    "inv_vaf": g("inv_vaf_v", 0.0),
+                    "v_t": arrays.v_t,
+                    "vbe0": s.vb_v - s.ve_v,
+                    # a board saturated at rest (refused anyway) must not start Newton at
+                    # an overflowing collector junction
+                    "vbc0": np.minimum(s.vb_v - s.vc_v, 0.4),
+                    "ib0": s.ib_a,
+                    "ic0": s.ic_a,
+                }
+                if isinstance(st, CommonEmitter) or not st.dc_coupled:
+                    r1, r2 = g("r1"), g("r2")
+                    c.update(v_th=vcc * r2 / (r1 + r2), r_th=parallel(r1, r2))
+                    c["r_bias"] = c["r_th"]
+                else:
+                    c.update(v_th=np.zeros(n), r_th=np.zeros(n), r_bias=np.full(n, np.inf))
+            if isinstance(st, CommonEmitter):
+                rc = g("rc")
+                c.update(k_e=g("re_bypassed", 0.0), r_e=g("re"), r_out=rc, v_open=vcc)
+                if dc_load:
+                    c.update(v_cc=vcc * r_load / (rc + r_load), r_cdc=parallel(rc, r_load))
+                else:
+                    c.update(v_cc=vcc.copy(), r_cdc=rc)
+                if follower_next:  # its rest base current through rc
+                    c["v_cc"] = c["v_cc"] - rc * arrays.stages[j + 1].ib_a
+                c.update(r_cac=parallel(rc, s.r_next), out_rest=s.vc_v)
+            elif isinstance(st, EmitterFollower):
+                re = g("re")
+                re_dc = parallel(re, r_load) if dc_load else re
+                r_e = parallel(re, s.r_next)
+                c.update(k_e=re_dc - r_e, r_e=r_e, r_out=re, v_open=vcc)
+                c.update(v_cc=vcc, r_cdc=np.zeros(n), r_cac=np.zeros(n), out_rest=s.ve_v)
+            elif not isinstance(st, CommonEmitter):
+                c = {"gain": s.gain, "lo": -s.swing_neg_v, "hi": s.swing_pos_v}
+                c["z_in"] = s.input_ohm
+            coef.append({k: _b(v, n) for k, v in c.items()})
+        return cls(
+            tuple(s.kind for s in arrays.stages),
+            tuple(coef),
+            tuple(dc_in),
+            dc_out,
+            _b(p["source_ohm"], n),
+        )
 
     def take(self, rows: slice | np.ndarray) -> LargeSignalChain:
-        return LargeSignalChain(self.kinds, tuple(c[rows] for c in self.coef), self.v_t[rows])
-
-
-def solve_drive(
-    x: np.ndarray, a: np.ndarray, v_t: np.ndarray, tol: float = 1e-11, max_iterations: int = 30
-) -> np.ndarray:
-    """Solve ``V_T·u + a·(exp(u) - 1) = x`` for ``u = ln(i/I_Q)`` (large-signal junction).
-
-    ``x`` is the signal at the base above its rest value, ``a = I_Q·R`` the quiescent drop on
-    the degeneration resistance.  Start: ``ln(1 + x/a)`` (the root without the junction term),
-    or for drive into deep cutoff the linear bound.  The function is convex and increasing, so
-    Newton converges from either side (from the left it jumps right of the root, then falls
-    monotonically); it stops when every step is below ``tol`` (relative), typically 5-7 steps.
-    """
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r = x / a
-        u = np.where(
-            r > -0.999, np.log1p(np.maximum(r, -0.999)), np.minimum((x + a) / v_t, x / (v_t + a))
+        return LargeSignalChain(
+            self.kinds,
+            tuple({k: v[rows] for k, v in c.items()} for c in self.coef),
+            self.dc_in,
+            self.dc_out,
+            self.r_source[rows],
         )
-    u = np.where(a > 0, u, x / v_t)
-    ex = np.empty_like(u)
-    num = np.empty_like(u)
-    den = np.empty_like(u)
-    for _ in range(max_iterations):
-        np.exp(u, out=ex)
-        np.multiply(a, ex, out=den)
-        np.subtract(den, a, out=num)
-        num += v_t * u
-        num -= x
-        den += v_t
-        num /= den
-        u -= num
-        np.abs(num, out=num)
-        num /= 1.0 + np.abs(u)
-        if num.max() < tol:
-            break
-    return u
+
+    def rest_state(self, n_points: int) -> list[PeriodicState | None]:
+        """Start of the periodic solution: every BJT stage at its rest bias."""
+        m = n_points // 2 + 1
+        out: list[PeriodicState | None] = []
+        for kind, c in zip(self.kinds, self.coef, strict=True):
+            if kind in _BJT:
+                out.append(
+                    PeriodicState(
+                        np.repeat(c["vbe0"][:, None], m, axis=1),
+                        np.repeat(c["vbc0"][:, None], m, axis=1),
+                        c["ib0"].copy(),
+                        c["ic0"].copy(),
+                    )
+                )
+            else:
+                out.append(None)
+        return out
+
+
+ChainState = list[PeriodicState | None]
 
 
 def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
@@ -668,7 +781,7 @@ def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
 
     The drive is a cosine, so every waveform in the chain is even in time: the M + 1 points of
     half a period define the whole period of N = 2M points, and the harmonic amplitudes are a
-    DCT-I of them (the DFT of the even extension).
+    DCT-I of them (the DFT of the even extension); column 0 is the period mean.
     """
     theta = np.pi * np.arange(m + 1) / m
     w = np.full(m + 1, 2.0)
@@ -679,30 +792,98 @@ def _cos_weights(m: int, k_max: int) -> tuple[np.ndarray, np.ndarray]:
     return np.cos(theta), basis
 
 
-def chain_waveform(chain: LargeSignalChain, amp_vpk: np.ndarray, n_points: int = 64) -> np.ndarray:
-    """Output of the chain (AC part, volts) over half a period of a cosine drive of peak
-    ``amp_vpk`` at the channel input, shape ``(samples, n_points/2 + 1)``.
+@dataclass
+class ChainSolution:
+    """The channel output over half a period (AC part about its driven mean; a load without
+    C_out sees the DC shift too), the signal at the input connector (the generator's EMF less
+    the drop on ``source_ohm``: the base current is not linear) and each BJT stage's mean
+    base, emitter and collector voltage under drive (NaN for op-amp stages), ``(samples,)``."""
 
-    Midband: coupling capacitors short, the bypassed emitter resistance shorted, bias fixed at
-    its rest value; each stage drives the next stage's small-signal input impedance.  The
-    transistor is the exponential junction with base current (i_E = (beta+1)/beta·i_C) and
-    emitter degeneration, solved implicitly; cutoff follows from the exponential, saturation and
-    the op-amp rails are hard limits (a saturated collector follows the emitter up).
+    out: np.ndarray
+    inp: np.ndarray
+    means: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
+    state: ChainState
+
+
+def chain_waveform(
+    chain: LargeSignalChain,
+    amp_vpk: np.ndarray,
+    n_points: int = 64,
+    state: ChainState | None = None,
+) -> ChainSolution:
+    """Periodic steady state of the chain for a cosine EMF of peak ``amp_vpk`` behind the
+    source resistance.
+
+    Midband: coupling and bypass capacitors short for the signal but carrying no DC, so each
+    BJT stage's operating point shifts under drive (:mod:`harness.model.periodic`).  A stage
+    drives the next through its Thevenin equivalent (its output current behind ``r_out``),
+    loaded for its own solution by the next stage's small-signal input impedance.  Op-amp
+    stages: finite gain, hard rails.  ``state`` (from :meth:`LargeSignalChain.rest_state` or a
+    previous solution nearby) is where Newton starts.
     """
-    cos_t, _ = _cos_weights(n_points // 2, 1)
-    x = np.asarray(amp_vpk, dtype=float)[:, None] * cos_t[None, :]
-    v_t = chain.v_t[:, None]
-    for kind, c in zip(chain.kinds, chain.coef, strict=True):
-        if kind == "common_emitter":
-            ic, r_e, r_ac, room = c[:, 0:1], c[:, 1:2], c[:, 2:3], c[:, 3:4]
-            di = ic * np.expm1(solve_drive(x, ic * r_e, v_t))
-            x = np.maximum(-di * r_ac, di * r_e - room)
-        elif kind == "emitter_follower":
-            ie, r, room = c[:, 0:1], c[:, 1:2], c[:, 3:4]
-            x = np.minimum(ie * np.expm1(solve_drive(x, ie * r, v_t)) * r, room)
+    m = n_points // 2
+    cos_t, basis = _cos_weights(m, 0)
+    w = basis[:, 0]
+    amp = np.asarray(amp_vpk, dtype=float)
+    v_oc = amp[:, None] * cos_t[None, :]
+    r_out = chain.r_source[:, None]
+    dc_oc = np.zeros((amp.shape[0], 1))
+    start = state if state is not None else chain.rest_state(n_points)
+    new_state: ChainState = []
+    means: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+    last = len(chain.kinds) - 1
+    out = v_oc
+    nan = np.full(amp.shape[0], np.nan)
+    for j, (kind, c) in enumerate(zip(chain.kinds, chain.coef, strict=True)):
+        col = {k: v[:, None] for k, v in c.items()}
+        if kind in _BJT:
+            if chain.dc_in[j]:
+                col.update(v_th=dc_oc, r_th=r_out, r_b=r_out)
+                v_s = v_oc
+            else:
+                share = 1.0 / (1.0 + r_out / col["r_bias"])
+                v_s = v_oc * share
+                col["r_b"] = r_out * share
+            st0 = start[j]
+            assert st0 is not None
+            sol = solve_periodic(v_s, col, w, st0)
+            if j == 0:  # the input connector is the base for the signal (C_in short)
+                v_base = v_s - col["r_b"] * sol.i_b
+                inp = v_base - (v_base @ w)[:, None]
+            new_state.append(sol.state)
+            m_b, m_c = sol.state.m_b[:, None], sol.state.m_c[:, None]
+            i_e = sol.i_b + sol.i_c
+            m_e = m_b + m_c
+            vb_mean = col["v_th"] - col["r_th"] * m_b
+            ve_mean = (col["k_e"] + col["r_e"]) * m_e
+            if kind == "common_emitter":
+                vc_mean = col["v_cc"] - col["r_cdc"] * m_c
+                node = vc_mean - col["r_cac"] * (sol.i_c - m_c)
+                v_oc = -col["r_out"] * (sol.i_c - m_c)
+                dc_oc = col["v_open"] - col["r_out"] * m_c
+            else:
+                vc_mean = col["v_cc"]
+                node = ve_mean + col["r_e"] * (i_e - m_e)
+                v_oc = col["r_out"] * (i_e - m_e)
+                dc_oc = ve_mean
+            means.append((vb_mean[:, 0], ve_mean[:, 0], np.broadcast_to(vc_mean, m_b.shape)[:, 0]))
+            if chain.dc_in[j]:  # one node: the collector before carries this base current
+                vb_prev, ve_prev, _ = means[j - 1]
+                means[j - 1] = (vb_prev, ve_prev, vb_mean[:, 0])
+            r_out = col["r_out"]
+            if j == last:
+                ref = col["out_rest"] if chain.dc_out else (node @ w)[:, None]
+                out = node - ref
         else:
-            x = np.clip(c[:, 0:1] * x, c[:, 1:2], c[:, 2:3])
-    return x
+            x_in = v_oc / (1.0 + r_out / col["z_in"])
+            if j == 0:
+                inp = x_in
+            v_oc = np.clip(col["gain"] * x_in, col["lo"], col["hi"])
+            r_out = np.zeros_like(r_out)
+            new_state.append(None)
+            means.append((nan, nan, nan))
+            out = v_oc
+    return ChainSolution(out, inp, means, new_state)
 
 
 def harmonics(
@@ -711,12 +892,17 @@ def harmonics(
     n_points: int = 64,
     k_max: int = THD_HARMONICS,
     workers: int = 1,
+    state: ChainState | None = None,
+    input_fundamental: np.ndarray | None = None,
 ) -> np.ndarray:
-    """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift) of the channel output
-    for a sine of peak ``amp_vpk`` at its input, shape ``(samples, k_max + 1)``.
+    """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift of a DC-coupled
+    load, 0 behind C_out) of the channel output for a sine EMF of peak ``amp_vpk`` behind the
+    source resistance, shape ``(samples, k_max + 1)``; ``input_fundamental`` (if given,
+    ``(samples,)``) receives the fundamental's peak at the input connector.
 
     Solved in blocks of :data:`BLOCK_ROWS` samples; ``workers`` > 1 spreads the blocks over
-    threads (numpy releases the GIL inside its loops)."""
+    threads (numpy releases the GIL inside its loops).  ``state`` (full size, see
+    :meth:`LargeSignalChain.rest_state`) is the start and is replaced by the solution."""
     _, basis = _cos_weights(n_points // 2, k_max)
     amp = np.asarray(amp_vpk, dtype=float)
     n = amp.shape[0]
@@ -724,7 +910,15 @@ def harmonics(
 
     def block(i0: int) -> None:
         sl = slice(i0, min(i0 + BLOCK_ROWS, n))
-        out[sl] = np.abs(chain_waveform(chain.take(sl), amp[sl], n_points) @ basis)
+        start = None if state is None else [s.take(sl) if s else None for s in state]
+        sol = chain_waveform(chain.take(sl), amp[sl], n_points, start)
+        out[sl] = np.abs(sol.out @ basis)
+        if input_fundamental is not None:
+            input_fundamental[sl] = np.abs(sol.inp @ basis[:, 1])
+        if state is not None:
+            for s, new in zip(state, sol.state, strict=True):
+                if s is not None and new is not None:
+                    s.put(sl, new)
 
     starts = range(0, n, BLOCK_ROWS)
     if workers > 1 and n > BLOCK_ROWS:
@@ -741,7 +935,8 @@ def harmonics(
 def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
     """THD_F in percent: sqrt(sum of harmonics 2..k_max squared) over the fundamental."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        return 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+        thd: np.ndarray = 100.0 * np.sqrt(np.sum(h[:, 2:] ** 2, axis=1)) / h[:, 1]
+    return thd
 
 
 def criterion_level(
@@ -756,8 +951,14 @@ def criterion_level(
     n_points: int = 64,
     iterations: int = 10,
     workers: int = 1,
+    tol_db: float = 0.0,
+    emf_per_input: np.ndarray | float = 1.0,
 ) -> np.ndarray:
     """Input peak level where the board's clipping criterion is met, for every sample at once.
+
+    Levels are the fundamental at the input connector; the search itself runs on the
+    generator's EMF (``emf_per_input`` times the input level for small signals) and reads the
+    input level off the solution, so the base current's drop on the source resistance counts.
 
     ``criterion`` "thd": THD reaches ``thd_percent``; "compression": the fundamental gain has
     dropped ``compression_db`` below the small-signal ``gain``.  The search works on level in dB
@@ -765,48 +966,66 @@ def criterion_level(
     the bracket is widened where needed (only those samples are re-solved), then the iterations
     alternate an Illinois (modified regula falsi) step on log THD against dB with a bisection
     step, so the bracket at least halves every two iterations, even at the kink where hard
-    clipping begins.  Samples that cannot be bracketed come back NaN.
+    clipping begins; it stops early once every bracket is narrower than ``tol_db``.  Each
+    sample's periodic solution starts from its last one.  Samples that cannot be bracketed
+    come back NaN.
     """
+    state = chain.rest_state(n_points)
 
-    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> np.ndarray:
+    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> tuple[np.ndarray, np.ndarray]:
+        """Criterion score (>= 0: met) and input level over EMF in dB at these EMF levels."""
         amp = 10.0 ** (level_db / 20.0)
-        h = harmonics(chain.take(rows), amp, n_points, workers=workers)
+        sub = [s.take(rows) if s else None for s in state]
+        v_in = np.empty(amp.shape[0])
+        h = harmonics(
+            chain.take(rows), amp, n_points, workers=workers, state=sub, input_fundamental=v_in
+        )
+        for s, new in zip(state, sub, strict=True):
+            if s is not None and new is not None:
+                s.put(rows, new)
+        with np.errstate(divide="ignore"):
+            ratio_db = 20.0 * np.log10(np.maximum(v_in, 1e-300) / amp)
         if criterion == "compression":
             with np.errstate(divide="ignore"):
-                comp = 20.0 * np.log10(np.abs(gain[rows]) * amp / np.maximum(h[:, 1], 1e-300))
-            return comp - compression_db
-        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent)
+                comp = 20.0 * np.log10(np.abs(gain[rows]) * v_in / np.maximum(h[:, 1], 1e-300))
+            return comp - compression_db, ratio_db
+        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent), ratio_db
 
     every = slice(None)
-    ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12))
+    to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
+    ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12)) + to_emf
     with np.errstate(divide="ignore"):
-        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)), ref + 0.5)
+        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
     a, b = start - 1.5, start + 1.5
-    fa, fb = g(a, every), g(b, every)
+    fa, ra = g(a, every)
+    fb, rb = g(b, every)
     for _ in range(6):  # widen: 3, 6, 12 ... dB steps where the bracket misses
         lo_bad, hi_bad = np.flatnonzero(fa > 0), np.flatnonzero(fb < 0)
         if lo_bad.size == 0 and hi_bad.size == 0:
             break
         if lo_bad.size:
-            b[lo_bad], fb[lo_bad] = a[lo_bad], fa[lo_bad]
+            b[lo_bad], fb[lo_bad], rb[lo_bad] = a[lo_bad], fa[lo_bad], ra[lo_bad]
             a[lo_bad] -= 6.0
-            fa[lo_bad] = g(a[lo_bad], lo_bad)
+            fa[lo_bad], ra[lo_bad] = g(a[lo_bad], lo_bad)
         if hi_bad.size:
-            a[hi_bad], fa[hi_bad] = b[hi_bad], fb[hi_bad]
+            a[hi_bad], fa[hi_bad], ra[hi_bad] = b[hi_bad], fb[hi_bad], rb[hi_bad]
             b[hi_bad] += 6.0
-            fb[hi_bad] = g(b[hi_bad], hi_bad)
+            fb[hi_bad], rb[hi_bad] = g(b[hi_bad], hi_bad)
     side = np.zeros_like(a)  # Illinois: which end was kept last time (-1 a, +1 b)
     for it in range(iterations):
+        if tol_db > 0 and np.nanmax(b - a) < tol_db:
+            break
         if it % 2 == 0:
             with np.errstate(divide="ignore", invalid="ignore"):
                 c = b - fb * (b - a) / (fb - fa)
             c = np.where(np.isfinite(c) & (c > a) & (c < b), c, 0.5 * (a + b))
         else:
             c = 0.5 * (a + b)
-        fc = g(c, every)
+        fc, rc = g(c, every)
         right = fc > 0  # root in [a, c]
         fa_new = np.where(right, np.where(side == -1, 0.5 * fa, fa), fc)
         fb_new = np.where(right, fc, np.where(side == 1, 0.5 * fb, fb))
+        ra, rb = np.where(right, ra, rc), np.where(right, rc, rb)
         a, b = np.where(right, a, c), np.where(right, c, b)
         fa, fb = fa_new, fb_new
         side = np.where(right, -1.0, 1.0)
@@ -814,7 +1033,9 @@ def criterion_level(
         c = b - fb * (b - a) / (fb - fa)
     c = np.where(np.isfinite(c) & (c >= a) & (c <= b), c, 0.5 * (a + b))
     bad = ~(fa <= 0) | ~(fb >= 0)
-    return np.where(bad, np.nan, 10.0 ** (c / 20.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(b > a, ra + (c - a) * (rb - ra) / (b - a), ra)
+    return np.where(bad, np.nan, 10.0 ** ((c + r) / 20.0))
 
 
 # --- the whole channel -------------------------------------------------------------------------
@@ -829,6 +1050,7 @@ def evaluate_channel(
     search_points: int | None = 64,
     search_iterations: int = 10,
     workers: int = 1,
+    search_tol_db: float = 0.0,
 ) -> ChannelArrays:
     """Everything the model predicts for one channel, over the samples in ``p``.
 
@@ -840,6 +1062,11 @@ def evaluate_channel(
     n = max(np.asarray(v).size for v in p.values())
     problems: list[Problem] = []
     stages = _dc(board, channel, p, n, problems)
+    if any(k.endswith(".vaf_v") for k in p):  # the Early effect moves the bias a little
+        q = _with_inverse_early(p, n)
+        for _ in range(3):
+            problems = []
+            stages = _dc(board, channel, p, n, problems, _early_factors(channel, q, stages, n))
     _small_signal(channel, p, stages, n)
     _swing(channel, p, stages, n)
     res = ChannelArrays(channel.name, n, stages, _b(p["v_t"], n), problems=problems)
@@ -899,9 +1126,11 @@ def evaluate_channel(
             )
         )
 
-    chain = LargeSignalChain.from_arrays(res)
+    chain = LargeSignalChain.from_arrays(res, channel, p)
+    # the generator's EMF that puts a small signal of 1 V on the input connector
+    emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
     if thd_points:
-        h = harmonics(chain, np.full(n, nominal_vpk), thd_points, workers=workers)
+        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers)
         res.thd_percent = thd_from_harmonics(h)
     if search_points:
         c = board.conditions
@@ -922,5 +1151,7 @@ def evaluate_channel(
             n_points=search_points,
             iterations=search_iterations,
             workers=workers,
+            tol_db=search_tol_db,
+            emf_per_input=emf_per_input,
         )
     return res

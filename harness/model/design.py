@@ -17,13 +17,24 @@ import numpy as np
 
 from harness.errors import BoardFileError
 from harness.model.board import Board, Channel, CommonEmitter, EmitterFollower, stage_parts
-from harness.model.core import ChannelArrays, LargeSignalChain, evaluate_channel, harmonics
+from harness.model.core import (
+    THD_HARMONICS,
+    ChainSolution,
+    ChannelArrays,
+    LargeSignalChain,
+    _cos_weights,
+    chain_waveform,
+    evaluate_channel,
+)
 from harness.model.params import channel_parameters, nominal_arrays
 
 #: Points per period of the large-signal solution for the nominal design (the Monte Carlo
 #: uses fewer; 256 resolves harmonics 2..10 of a clipped wave with negligible aliasing).
 NOMINAL_POINTS = 256
 NOMINAL_SEARCH_ITERATIONS = 30
+#: The nominal search stops once its bracket is this narrow (the secant inside it is far
+#: closer still).
+NOMINAL_SEARCH_TOL_DB = 1e-3
 
 
 @dataclass(frozen=True)
@@ -87,6 +98,7 @@ def _arrays(
         thd_points=NOMINAL_POINTS,
         search_points=NOMINAL_POINTS if search else None,
         search_iterations=NOMINAL_SEARCH_ITERATIONS,
+        search_tol_db=NOMINAL_SEARCH_TOL_DB,
     )
 
 
@@ -209,6 +221,33 @@ def operating_point(
     return {k: float(v[0]) for k, v in operating_point_arrays(ch, res).items()}
 
 
+def _drive(
+    board: Board,
+    channel_name: str,
+    input_vrms: float,
+    params: Mapping[str, float] | None,
+    n_points: int,
+) -> tuple[Channel, ChainSolution]:
+    """The nominal chain solved for ``input_vrms`` of fundamental at the input connector: the
+    EMF behind ``source_ohm`` is scaled until the input reads that level (the base current
+    is not linear, so the source's drop is not either); three passes settle it to 1e-6."""
+    ch = _channel(board, channel_name)
+    res = _arrays(board, ch, params, search=False)
+    _raise_first(board, res)
+    p = nominal_arrays(channel_parameters(board, ch), params)
+    chain = LargeSignalChain.from_arrays(res, ch, p)
+    want = input_vrms * math.sqrt(2.0)
+    emf = np.array([want * (1.0 + float(p["source_ohm"][0]) / float(res.input_ohm[0]))])
+    _, basis = _cos_weights(n_points // 2, 1)
+    for _ in range(4):
+        sol = chain_waveform(chain, emf, n_points)
+        got = float(np.abs(sol.inp @ basis[:, 1])[0])
+        if want == 0 or got == 0 or abs(got / want - 1.0) < 1e-9:
+            break
+        emf = emf * (want / got)
+    return ch, sol
+
+
 def large_signal_harmonics(
     board: Board,
     channel_name: str,
@@ -218,12 +257,31 @@ def large_signal_harmonics(
     n_points: int = NOMINAL_POINTS,
 ) -> np.ndarray:
     """Harmonic amplitudes 0..10 (V peak) of the channel output for a sine of ``input_vrms``
-    at its input, from the large-signal solution (index 1 is the fundamental)."""
-    ch = _channel(board, channel_name)
-    res = _arrays(board, ch, params, search=False)
-    _raise_first(board, res)
-    amp = np.array([input_vrms * math.sqrt(2.0)])
-    return harmonics(LargeSignalChain.from_arrays(res), amp, n_points)[0]
+    at its input connector, from the large-signal solution (index 1 is the fundamental)."""
+    _, sol = _drive(board, channel_name, input_vrms, params, n_points)
+    _, basis = _cos_weights(n_points // 2, THD_HARMONICS)
+    h: np.ndarray = np.abs(sol.out @ basis)[0]
+    return h
+
+
+def large_signal_bias(
+    board: Board,
+    channel_name: str,
+    input_vrms: float,
+    *,
+    params: Mapping[str, float] | None = None,
+    n_points: int = NOMINAL_POINTS,
+) -> dict[str, float]:
+    """Mean node voltages under a sine of ``input_vrms``: the operating point as the coupling
+    and bypass capacitors have recharged it (keys as :func:`operating_point`, BJT stages)."""
+    ch, sol = _drive(board, channel_name, input_vrms, params, n_points)
+    out: dict[str, float] = {}
+    for st, (vb, ve, vc) in zip(ch.stages, sol.means, strict=True):
+        if isinstance(st, CommonEmitter | EmitterFollower):
+            out[f"{st.name}.base_v"] = float(vb[0])
+            out[f"{st.name}.emitter_v"] = float(ve[0])
+            out[f"{st.name}.collector_v"] = float(vc[0])
+    return out
 
 
 #: Longest wait after a level change the model may ask of a run.  The sequence waits the

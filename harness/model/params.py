@@ -9,9 +9,9 @@ Carlo, the worst-case corners and the caller's what-if overrides (``params=``) s
 Distributions (why): resistors, capacitors and the supply are uniform within their tolerance
 band, the common assumption when nothing is known of the maker's process (common practice:
 a uniform band is the widest spread a tolerance allows short of a bimodal, selected-out lot).
-Transistor beta and V_CE(sat) are uniform between the data-sheet min and max; I_S spans a
-factor of several, so it is log-uniform (uniform in V_BE).  Op-amp headroom and quiescent current
-are uniform between min and max.
+Transistor beta, reverse beta, Early voltage and V_CE(sat) are uniform between the data-sheet
+min and max; I_S spans a factor of several, so it is log-uniform (uniform in V_BE).  Op-amp
+headroom and quiescent current are uniform between min and max.
 """
 
 from __future__ import annotations
@@ -25,6 +25,7 @@ import numpy as np
 import scipy.constants as const
 
 from harness.model.board import (
+    BETA_R_DEFAULT,
     Board,
     Channel,
     CommonEmitter,
@@ -43,7 +44,7 @@ TEMPERATURE_K = 300.0
 
 def thermal_voltage(temperature_k: float = TEMPERATURE_K) -> float:
     """kT/q in volts (Boltzmann constant and elementary charge from scipy.constants)."""
-    return const.k * temperature_k / const.e
+    return float(const.k * temperature_k / const.e)
 
 
 @dataclass(frozen=True)
@@ -110,7 +111,13 @@ def channel_parameters(board: Board, channel: Channel) -> tuple[ParamSpec, ...]:
             specs.append(_spread(f"{n}.beta", t.beta, "uniform", t.name))
             specs.append(_spread(f"{n}.is_a", t.is_a, "log_uniform", t.name))
             specs.append(_spread(f"{n}.vce_sat_v", t.vce_sat_v, "uniform", t.name))
-            if t.vaf_v is not None:
+            if t.beta_r is not None:
+                specs.append(_spread(f"{n}.beta_r", t.beta_r, "uniform", t.name))
+            else:
+                specs.append(_fixed(f"{n}.beta_r", BETA_R_DEFAULT, t.name))
+            if t.early_v is not None:
+                specs.append(_spread(f"{n}.vaf_v", t.early_v, "uniform", t.name))
+            elif t.vaf_v is not None:
                 specs.append(_fixed(f"{n}.vaf_v", t.vaf_v, t.name))
         if isinstance(st, CommonEmitter):
             for field in ("r1", "r2", "rc", "re"):

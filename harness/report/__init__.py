@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from harness.errors import ReportError
 from harness.report.board import (
     BoardReport,
     attach_diagnosis,
@@ -20,12 +21,11 @@ from harness.report.board import (
     load_board_report,
     render_board_html,
 )
-from harness.report.errors import ReportError
 from harness.report.export import FORMATS, TABLES, export_tables
 from harness.report.plot import Band, Bars, Plot, Rule, Series, render_svg
 from harness.report.stats import CPK_THRESHOLD, Capability, Yield, capability, yields
 from harness.report.summary import SummaryReport, load_summary, render_summary_html
-from harness.store import open_store
+from harness.store import ResultStore, open_store
 
 
 def _write(path: str | Path, text: str) -> Path:
@@ -60,15 +60,23 @@ def write_board_report(
     """Write the board report of a run (or of a serial's newest run) to ``out``; a failed
     board's report carries the ranked likely faulty components (``harness.diagnose``)."""
     with open_store(db, readonly=True) as store:
-        report = load_board_report(store, serial=serial, run_id=run_id)
-        if report.run.verdict == "FAIL" or report.run.status == "aborted":
-            report = attach_diagnosis(store, report)
+        report = board_report_of(store, serial=serial, run_id=run_id)
     plots = board_plots(report)
     if png_dir is not None:
         from harness.report.png import write_pngs
 
         write_pngs([p for ps in plots.values() for p in ps], png_dir)
     return _write(out, render_board_html(report, plots)), report
+
+
+def board_report_of(
+    store: ResultStore, *, serial: str | None = None, run_id: int | None = None
+) -> BoardReport:
+    """A run's board report from an open store, with the diagnosis of a failed board."""
+    report = load_board_report(store, serial=serial, run_id=run_id)
+    if report.run.verdict == "FAIL" or report.run.status == "aborted":
+        report = attach_diagnosis(store, report)
+    return report
 
 
 def write_summary_report(
@@ -99,12 +107,12 @@ __all__ = [
     "BoardReport",
     "Capability",
     "Plot",
-    "ReportError",
     "Rule",
     "Series",
     "SummaryReport",
     "Yield",
     "board_plots",
+    "board_report_of",
     "capability",
     "export_tables",
     "load_board_report",

@@ -19,9 +19,8 @@ from typing import Any
 import numpy as np
 
 from harness import __version__
-from harness.errors import AnalysisError, StoreError
+from harness.errors import AnalysisError, ReportError, StoreError
 from harness.report import html as h
-from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Band, Plot, Rule, Series, render_svg
 from harness.report.spectrum import spectrum_view, waveform_window
 from harness.store import MeasurementRow, RecordRow, ResultStore, RunRow, SweepPointRow
@@ -103,9 +102,13 @@ def load_board_report(
     sweeps = store.sweep_points(run.run_id)
     records = store.records(run.run_id)
     names: list[str] = []
-    for item in (*ms, *sweeps, *records):
-        if item.channel and item.channel not in names:
-            names.append(item.channel)
+    for channel in (
+        *(m.channel for m in ms),
+        *(p.channel for p in sweeps),
+        *(r.channel for r in records),
+    ):
+        if channel and channel not in names:
+            names.append(channel)
     channels = tuple(
         ChannelData(
             name,
@@ -123,11 +126,11 @@ def attach_diagnosis(store: ResultStore, report: BoardReport, top: int = 3) -> B
     ranking: the board file moved, the run holds nothing to diagnose from)."""
     from harness.diagnose import diagnose_run
     from harness.errors import StageproofError
-    from harness.io.toml import load_board
+    from harness.io.board import load_stored_board
 
     run = report.run
     try:
-        board = load_board(run.board_file, validate=False)
+        board = load_stored_board(run.board_text, run.board_file, validate=False)
         result: Any = diagnose_run(store, run.run_id, board, top=top)
     except StageproofError as exc:
         result = f"no fault diagnosis: {exc}"
@@ -200,7 +203,8 @@ def nominal_record(records: Sequence[RecordRow]) -> RecordRow | None:
     """The record labelled "nominal", else the first whose label starts with it."""
     exact = [r for r in records if r.label.lower() == NOMINAL_LABEL]
     loose = [r for r in records if r.label.lower().startswith(NOMINAL_LABEL)]
-    return (exact or loose or [None])[0]
+    found = exact or loose
+    return found[0] if found else None
 
 
 def clip_record(records: Sequence[RecordRow], threshold_vrms: float | None) -> RecordRow | None:
@@ -350,14 +354,20 @@ def channel_plots(ch: ChannelData) -> list[Plot]:
     )
     plots.append(_spectrum_plot(ch))
     plots.append(_clip_record_plot(ch, clip))
-    freq = _frequency_plot(ch)
+    freq = _frequency_plot(ch, gain)
     if freq is not None:
         plots.append(freq)
     return plots
 
 
-def _frequency_plot(ch: ChannelData) -> Plot | None:
-    """Gain at the extra frequencies (information: the limits hold at the nominal one)."""
+#: Least span of the gain-against-frequency axis (dB): a flat channel's few hundredths of a
+#: dB must not fill the plot and look like a steep response.
+MIN_GAIN_SPAN_DB = 2.0
+
+
+def _frequency_plot(ch: ChannelData, gain: MeasurementRow | None = None) -> Plot | None:
+    """Gain at the extra frequencies and at the test frequency (the limits hold there), on
+    an axis at least :data:`MIN_GAIN_SPAN_DB` tall."""
     pairs = []
     for p in ch.sweep:
         if p.sweep not in FREQUENCY_SWEEPS or p.gain_db is None or not p.extra_json:
@@ -370,14 +380,41 @@ def _frequency_plot(ch: ChannelData) -> Plot | None:
             pairs.append((float(f), p.gain_db))
     if not pairs:
         return None
+    series: list[Series] = []
+    test = _test_point(gain)
+    if test is not None:
+        pairs.append(test)
     pairs.sort()
+    series.append(Series(tuple(x for x, _ in pairs), tuple(y for _, y in pairs), "gain"))
+    if test is not None:
+        series.append(
+            Series((test[0],), (test[1],), f"test frequency {test[0]:.4g} Hz", line=False)
+        )
+    ys = [y for _, y in pairs]
+    mid, half = (max(ys) + min(ys)) / 2, max((max(ys) - min(ys)) / 2 * 1.1, MIN_GAIN_SPAN_DB / 2)
     return Plot(
         f"{ch.name}: gain against frequency",
         "frequency (Hz)",
         "gain (dB)",
-        series=(Series(tuple(x for x, _ in pairs), tuple(y for _, y in pairs), "gain"),),
+        series=tuple(series),
         x_log=True,
+        y_range=(mid - half, mid + half),
     )
+
+
+def _test_point(gain: MeasurementRow | None) -> tuple[float, float] | None:
+    """(frequency, gain) of the run's gain measurement at the test frequency."""
+    if gain is None or gain.value is None or not gain.detail_json:
+        return None
+    try:
+        doc = json.loads(gain.detail_json)
+    except json.JSONDecodeError:
+        return None
+    rec = doc.get("record") if isinstance(doc, dict) else None
+    f = rec.get("frequency_hz") if isinstance(rec, dict) else None
+    if isinstance(f, int | float) and f > 0:
+        return float(f), float(gain.value)
+    return None
 
 
 def _no_record(title: str, ch: ChannelData, what: str) -> Plot:
@@ -403,7 +440,16 @@ def _spectrum_plot(ch: ChannelData) -> Plot:
     f_hi = min(sv.sample_rate_hz / 2, 11.5 * sv.fundamental_hz)
     keep = sv.frequency_hz <= f_hi
     lo_db = max(float(np.min(sv.level_dbc[keep])) if keep.any() else -160.0, -160.0)
-    thd_text = f", THD {h.num(sv.thd_percent)} %" if sv.thd_percent is not None else ""
+    thd_text = ""
+    if sv.thd_percent is not None:
+        thd_text = f"; raw record THD {h.num(sv.thd_percent)} % (scope's own harmonics included)"
+        thd = find_measurement(ch.measurements, THD_NAMES)
+        if (
+            thd is not None
+            and thd.value is not None
+            and thd_record(thd).get("scope_harmonics_removed")
+        ):
+            thd_text += f"; table THD {h.num(thd.value)} % has the scope's own harmonics removed"
     return Plot(
         title,
         "frequency (Hz)",
@@ -456,6 +502,37 @@ def _clip_record_plot(ch: ChannelData, clip: MeasurementRow | None) -> Plot:
 # --- page -----------------------------------------------------------------------------------
 
 
+def thd_record(m: MeasurementRow | None) -> dict:
+    """What a THD measurement's detail says about it: ``scope_harmonics_removed``,
+    ``thd_raw_percent`` (empty when the run stored neither)."""
+    if m is None or not m.detail_json:
+        return {}
+    try:
+        doc = json.loads(m.detail_json)
+    except json.JSONDecodeError:
+        return {}
+    if not isinstance(doc, dict):
+        return {}
+    if "scope_harmonics_removed" not in doc and isinstance(doc.get("record"), dict):
+        doc = doc["record"]
+    return doc if "scope_harmonics_removed" in doc else {}
+
+
+def thd_note(m: MeasurementRow) -> str:
+    """What a THD value is: with the scope's own harmonics removed (and the raw record's
+    value beside it) or as recorded.  Empty for other measurements."""
+    if m.name not in THD_NAMES:
+        return ""
+    rec = thd_record(m)
+    if not rec:
+        return ""
+    if rec.get("scope_harmonics_removed"):
+        raw = rec.get("thd_raw_percent")
+        tail = f"; raw record {h.num(raw)} %" if isinstance(raw, int | float) else ""
+        return f"scope's own harmonics removed{tail}"
+    return "raw record (scope's own harmonics included)"
+
+
 def _detail(text: str | None) -> str:
     if not text:
         return ""
@@ -482,7 +559,7 @@ def measurement_table(ms: Sequence[MeasurementRow]) -> str:
             h.num(m.uncertainty),
             h.badge(m.decision),
             h.e(m.step),
-            _detail(m.detail_json),
+            "; ".join(x for x in (h.e(thd_note(m)), _detail(m.detail_json)) if x),
         )
         for m in ms
     ]

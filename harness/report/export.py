@@ -12,8 +12,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from harness.report.errors import ReportError
-from harness.report.summary import date_window, in_window
+from harness.errors import ReportError
+from harness.report.summary import date_window
 from harness.store import load_frame
 
 FORMATS: tuple[str, ...] = ("csv", "parquet")
@@ -60,13 +60,10 @@ def export_tables(
         raise ReportError(
             "-o", f"{out} is a file, not a folder", hint="give a folder for the exported tables"
         )
-    window = date_window(since, until)
-    frames: dict[str, pd.DataFrame] = {}
-    for table in TABLES:
-        df = load_frame(db, table)
-        if board is not None:
-            df = df[(df["part_number"] == board) | (df["board_name"] == board)]
-        frames[table] = df[in_window(df["started_at"], window)] if len(df) else df
+    date_window(since, until)  # a bad or empty range fails before the database is read
+    frames: dict[str, pd.DataFrame] = {
+        table: load_frame(db, table, since=since, until=until, board=board) for table in TABLES
+    }
     if board is not None and frames["runs"].empty:
         raise ReportError(
             "--board",

@@ -11,7 +11,7 @@ marker shape or dash pattern so it survives black-and-white printing.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from html import escape
 
@@ -410,26 +410,24 @@ def _legend_entries(plot: Plot) -> list[tuple[str, Callable[[float, float], str]
         entries.append((s.label, series_swatch))
     for b in plot.bands:
         if b.label:
-            entries.append(
-                (
-                    b.label,
-                    lambda x, y, b=b: (
-                        f'<rect x="{x:.1f}" y="{y:.1f}" width="22" height="12" fill="{b.colour}" '
-                        f'fill-opacity="{max(b.opacity, 0.25)}" stroke="#666" stroke-width="0.5"/>'
-                    ),
+
+            def band_swatch(x: float, y: float, b: Band = b) -> str:
+                return (
+                    f'<rect x="{x:.1f}" y="{y:.1f}" width="22" height="12" fill="{b.colour}" '
+                    f'fill-opacity="{max(b.opacity, 0.25)}" stroke="#666" stroke-width="0.5"/>'
                 )
-            )
+
+            entries.append((b.label, band_swatch))
     for r in plot.rules:
         if r.label:
-            entries.append(
-                (
-                    r.label,
-                    lambda x, y, r=r: (
-                        f'<line x1="{x:.1f}" y1="{y + 6:.1f}" x2="{x + 22:.1f}" y2="{y + 6:.1f}" '
-                        f'stroke="{r.colour}" stroke-width="1.5" stroke-dasharray="{r.dash}"/>'
-                    ),
+
+            def rule_swatch(x: float, y: float, r: Rule = r) -> str:
+                return (
+                    f'<line x1="{x:.1f}" y1="{y + 6:.1f}" x2="{x + 22:.1f}" y2="{y + 6:.1f}" '
+                    f'stroke="{r.colour}" stroke-width="1.5" stroke-dasharray="{r.dash}"/>'
                 )
-            )
+
+            entries.append((r.label, rule_swatch))
     if plot.bars is not None:
         bars = plot.bars
         entries.append(
@@ -468,7 +466,7 @@ def _legend(plot: Plot, top: float, width: int) -> str:
 
 
 def histogram(
-    values: Sequence[float], *, bins: int | None = None, include: Sequence[float] = ()
+    values: Iterable[float], *, bins: int | None = None, include: Sequence[float] = ()
 ) -> tuple[tuple[float, ...], tuple[int, ...]]:
     """Equal-width bins over the values (and ``include``, e.g. limits, so they show).
 

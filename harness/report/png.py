@@ -10,7 +10,7 @@ import itertools
 import re
 from pathlib import Path
 
-from harness.report.errors import ReportError
+from harness.errors import ReportError
 from harness.report.plot import DASHES, MARKERS, PALETTE, Plot
 
 _MPL_MARKERS = {"circle": "o", "square": "s", "triangle": "^", "diamond": "D"}
@@ -47,7 +47,7 @@ def write_pngs(plots: list[Plot], folder: str | Path, *, dpi: int = 110) -> list
     plt = _pyplot()
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)
-    paths = []
+    paths: list[Path] = []
     for plot in plots:
         fig, ax = plt.subplots(figsize=(6.4, 3.8))
         ax.set_title(plot.title)

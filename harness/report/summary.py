@@ -23,9 +23,8 @@ import numpy as np
 import pandas as pd
 
 from harness import __version__
-from harness.errors import ValueParseError
+from harness.errors import ReportError, ValueParseError
 from harness.report import html as h
-from harness.report.errors import ReportError
 from harness.report.plot import PALETTE, Bars, Plot, Rule, histogram, render_svg
 from harness.report.stats import (
     CPK_MIN_BOARDS,
@@ -35,7 +34,8 @@ from harness.report.stats import (
     capability,
     yields,
 )
-from harness.store import load_frame, parse_when
+from harness.store import RunFilter, open_store, parse_when
+from harness.store.frame import frame_of
 
 
 @dataclass(frozen=True)
@@ -130,19 +130,42 @@ def _limit_value(series: pd.Series) -> float | None:
 
 
 def load_summary(
-    db: str | Path, *, since: str | None = None, until: str | None = None, board: str | None = None
+    db: str | Path,
+    *,
+    since: str | None = None,
+    until: str | None = None,
+    board: str | None = None,
+    station: str | None = None,
 ) -> SummaryReport:
-    """Read the runs and measurements of a results database and summarise a range."""
+    """Read the runs and measurements of a results database and summarise a range.
+
+    The filters go into SQL: runs up to ``until`` of the board (earlier ones too, for a
+    serial's first test ever) and only the measurement columns the summary uses, of runs
+    started inside the range."""
     window = date_window(since, until)  # a bad date fails before the database is read
-    return summarise(
-        load_frame(db, "runs"),
-        lambda: load_frame(db, "measurements"),
-        since=since,
-        until=until,
-        board=board,
-        db=str(db),
-        window=window,
-    )
+    with open_store(db, readonly=True) as store:
+        runs = frame_of(
+            store,
+            "runs",
+            columns=_RUN_COLUMNS,
+            where=RunFilter(until=until, board=board, station=station),
+        )
+        if board is not None and runs.empty:  # say "no such board", not "no runs then"
+            runs = frame_of(store, "runs", columns=_RUN_COLUMNS, where=RunFilter(board=board))
+        return summarise(
+            runs,
+            lambda: frame_of(
+                store,
+                "measurements",
+                columns=_MEAS_COLUMNS,
+                where=RunFilter(since=since, until=until, board=board, station=station),
+            ),
+            since=since,
+            until=until,
+            board=board,
+            db=store.location,
+            window=window,
+        )
 
 
 def summarise(

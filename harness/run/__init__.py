@@ -1,7 +1,7 @@
-"""Run layer: fixture files, safety, decision rules and the test sequence.
+"""Run layer: safety, decision rules and the test sequence.
 
-Imports point down only: this package uses model, measure, instruments and store, and never
-talks SCPI itself (only driver calls).
+It uses the layers below it (README, "Layout of the code") and never talks SCPI itself
+(only driver calls).
 """
 
 from __future__ import annotations

@@ -24,8 +24,10 @@ import numpy as np
 
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.io.board import read_board_text
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
+from harness.measure.coherent import plan_coherent_within
 from harness.model.board import Board
 from harness.model.design import check_settle_time
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
@@ -248,6 +250,7 @@ def run_header(
         limits_provenance=jsontext.dumps(prov, sort_keys=True, default=json_default)
         if prov is not None
         else None,
+        board_text=read_board_text(board_file, board.digest),
     )
 
 
@@ -512,9 +515,60 @@ class GroupScope:
         self.scope_ranges = tuple(float(r) for r in scope.ranges_vpp)
         #: inputs to AC-couple (an output whose DC level is still moving after the wait)
         self.coupling: dict[int, str] = {}
-        self.timebase: tuple[float, int] | None = None
+        #: the timebase in force: (requested rate, points), (read-back rate, points)
+        self.timebase: tuple[tuple[float, int], tuple[float, int]] | None = None
         self.trigger: int | None = None
         self.acquisitions = 0
+
+    # --- timing: read back, never assume -------------------------------------------------
+    def _fits(self, plan: Any) -> bool:
+        """The timebase in force records ``plan``: same rate, at least its samples."""
+        if self.timebase is None:
+            return False
+        rate, points = self.timebase[1]
+        return math.isclose(rate, float(plan.sample_rate_hz), rel_tol=1e-9) and points >= int(
+            plan.n_samples
+        )
+
+    def realise(self, plan: Any, *, tolerance_rel: float = 0.01) -> Any:
+        """Set the scope's timebase for ``plan`` and return the plan the scope can record.
+
+        The scope reports the sample rate and record length it chose; where they differ
+        from the plan (a scope set by time per division picks its own), the coherent plan
+        is made again from what it reported: J cycles in the first N' <= N samples at the
+        reported rate, near the plan's frequency.
+        """
+        want = (float(plan.sample_rate_hz), int(plan.n_samples))
+        if self.timebase is not None and self.timebase[0] == want:
+            rate, points = self.timebase[1]
+        else:
+            got = self.scope.configure_timebase(*want)
+            rate, points = (float(got.sample_rate_hz), int(got.points)) if got is not None else want
+            self.timebase = (want, (rate, points))
+        if self._fits(plan):
+            return plan
+        new = plan_coherent_within(
+            float(plan.frequency_hz),
+            rate,
+            points,
+            tolerance_rel=tolerance_rel,
+            min_cycles=min(int(plan.cycles), 3),
+        )
+        if self.note is not None:
+            self.note(
+                f"scope chose {rate:g} S/s x {points} points for {want[0]:g} x {want[1]}: "
+                f"record {new.n_samples} points at {new.frequency_hz:.6g} Hz"
+            )
+        return new
+
+    def tune(self, plan: Any, set_frequency: Callable[[float], float | None]) -> Any:
+        """Realise ``plan`` on the scope, set the generator from it and return the plan with
+        the frequency the generator reports (the analysis uses that one)."""
+        plan = self.realise(plan)
+        got = set_frequency(float(plan.frequency_hz))
+        if got is not None and float(got) != float(plan.frequency_hz):
+            plan = replace(plan, frequency_hz=float(got))
+        return plan
 
     def tip_ranges(self, probe: float) -> tuple[float, ...]:
         """The scope's ranges in probe-tip volts."""
@@ -581,15 +635,22 @@ class GroupScope:
         for c in channels:
             probes.setdefault(c.input_scope, c.input_probe)
             probes.setdefault(c.output_scope, c.output_probe)
-        tb = (float(plan.sample_rate_hz), int(plan.n_samples))
-        if self.timebase != tb:
-            self.scope.configure_timebase(*tb)
-            self.timebase = tb
+        if not self._fits(plan) and self.realise(plan) is not plan:
+            raise AnalysisError(
+                f"the scope cannot record the planned {plan.n_samples} points at "
+                f"{plan.sample_rate_hz:g} S/s as it is set",
+                hint="tune the plan (GroupScope.tune) before acquiring",
+            )
+        whole = self.timebase is None or self.timebase[1][1] == int(plan.n_samples)
         if self.trigger != inputs[0]:
             self.scope.configure_trigger(inputs[0], 0.0)
             self.trigger = inputs[0]
         for attempt in range(self.max_rerange + 1):
-            acq = self._acquire_sound(inputs, [c.input_scope for c in channels])
+            acq = self._acquire_sound(
+                inputs,
+                [c.input_scope for c in channels],
+                None if whole else int(plan.n_samples),
+            )
             changed = False
             for n in inputs:
                 v = np.asarray(acq.volts[n], dtype=float)
@@ -647,15 +708,27 @@ class GroupScope:
                     x, y, plan, acq.adc_limits[c.input_scope], acq.adc_limits[c.output_scope]
                 )
                 if corr is not None:
-                    a = replace(a, thd_percent=corr)
+                    a = replace(
+                        a,
+                        thd_percent=corr,
+                        thd_db=float(20 * np.log10(corr / 100)) if corr > 0 else None,
+                        thd_raw_percent=a.thd_percent,
+                        scope_harmonics_removed=True,
+                    )
             out[c.board_channel] = a
         return out, acq
 
-    def _acquire_sound(self, inputs: list[int], input_probes: list[int]) -> Any:
-        """One acquisition taken with the generator as the run set it, its input levels
-        checked against the safe level."""
+    def _acquire_sound(
+        self, inputs: list[int], input_probes: list[int], points: int | None = None
+    ) -> Any:
+        """One acquisition (the first ``points`` samples of the record, None: all) taken with
+        the generator as the run set it, its input levels checked against the safe level."""
         for _ in range(MAX_RESTORES):
-            acq = self.scope.acquire(inputs)
+            acq = (
+                self.scope.acquire(inputs)
+                if points is None
+                else self.scope.acquire(inputs, points=points)
+            )
             self.acquisitions += 1
             if self.restore is None or not self.restore():
                 break

@@ -340,7 +340,7 @@ class Characterizer(BoardRun):
             f"level sweep at {plan.frequency_hz:.6g} Hz, "
             f"{self.opt.level_step_db:g} dB steps, up to {safe:g} V rms at most",
         )
-        self.safe.configure(plan.frequency_hz, min(nom, safe))
+        plan = self.scope_ops.tune(plan, lambda f: self.safe.configure(f, min(nom, safe)))
         gains = self._gains(group)
         small: dict[str, float | None] = {}
         pending = {c.board_channel for c in group}
@@ -422,7 +422,7 @@ class Characterizer(BoardRun):
                 rel = ch.relative_db()
                 ch.measured_corner_hz = found[0]
                 ch.corner_bracket_hz = (rel[found[1] - 1][0], rel[found[1]][0])
-        self.safe.set_frequency(self._plan(cond.frequency_hz).frequency_hz)
+        self.scope_ops.tune(self._plan(cond.frequency_hz), self.safe.set_frequency)
 
     def _freq_point(self, group, f: float, level: float, gains: dict) -> None:
         try:
@@ -431,7 +431,7 @@ class Characterizer(BoardRun):
         except AnalysisError as exc:
             self.progress.note(f"{f:.4g} Hz skipped: {exc}")
             return
-        self.safe.set_frequency(plan.frequency_hz)
+        plan = self.scope_ops.tune(plan, self.safe.set_frequency)
         self._settle()
         res = self._measure(group, level, plan, gains)
         for c in group:
@@ -452,7 +452,9 @@ class Characterizer(BoardRun):
             pts = [p for p in ch.frequency_points if p.gain_db is not None]
             if not pts:
                 return
-            g = [min(pts, key=lambda p: abs(math.log(p.frequency_hz / f_test))).gain_db]
+            nearest = min(pts, key=lambda p: abs(math.log(p.frequency_hz / f_test))).gain_db
+            assert nearest is not None  # pts hold only points with a gain
+            g = [nearest]
         ch.reference_gain_db = float(np.mean(g))
 
     # --- comparison rows -------------------------------------------------------------

@@ -10,15 +10,14 @@ are computed, and only then is a run begun in the store.
 
 from __future__ import annotations
 
-import importlib.resources
 import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from harness.errors import ValueParseError
+from harness.io.board import load_board
 from harness.io.fixture import FixtureConfig, check_station, load_fixture
-from harness.io.toml import load_board
 from harness.model.board import Board
 from harness.run.progress import Progress
 from harness.run.sequence import RunOptions, RunResult, run_board
@@ -58,13 +57,6 @@ def validate_serial(serial: str) -> str:
                 hint="retype it; scanners sometimes send control codes",
             )
     return s
-
-
-def packaged(kind: str, name: str) -> Path:
-    """A file shipped with the package (``harness/data/<kind>/<name>``), so the demo works
-    from any folder of an installed copy."""
-    ref = importlib.resources.files("harness") / "data" / kind / name
-    return Path(str(ref))
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ from contextlib import contextmanager
 from types import FrameType
 from typing import Any, Literal
 
-from harness.errors import RunAborted, SafetyError, StageproofError
+from harness.errors import ReadbackMismatch, RunAborted, SafetyError, StageproofError
 
 log = logging.getLogger("harness.run.safety")
 
@@ -144,7 +144,18 @@ class SafeGenerator:
     # --- commands ---------------------------------------------------------------------
     def _command(self, v: float) -> None:
         self.check(v)  # belt and braces: no path reaches the driver unchecked
-        self._gen.set_level(v, load_ohm=math.inf, output=self.output)
+        try:
+            self._gen.set_level(v, load_ohm=math.inf, output=self.output)
+        except ReadbackMismatch as exc:
+            # the driver's read-back: the generator does not report what it was sent
+            read = getattr(self._gen, "level_readback_vrms", None)
+            got = read(output=self.output) if read is not None else None
+            said = f"{got:.6g} V rms" if got is not None else repr(exc.read_back)
+            raise self.stop(
+                f"the generator reports {said} after {v:.6g} V rms was commanded "
+                f"(safe input level {self.safe_input_vrms:.6g} V rms; {exc.message})",
+                exc.hint,
+            ) from exc
         self.level_vrms = v
         self.max_commanded_vrms = max(self.max_commanded_vrms, v)
         self.steps += 1
@@ -201,21 +212,25 @@ class SafeGenerator:
             self._command(v)
         self.resync()
 
-    def configure(self, frequency_hz: float, level_vrms: float) -> None:
-        """Set a sine at ``frequency_hz`` with the output off, then the level."""
+    def configure(self, frequency_hz: float, level_vrms: float) -> float | None:
+        """Set a sine at ``frequency_hz`` with the output off, then the level.  Returns the
+        frequency the generator reports (None from a driver that cannot say)."""
         self.off()
-        self._gen.configure_sine(frequency_hz, output=self.output)
+        got = self._gen.configure_sine(frequency_hz, output=self.output)
         self._command(min(self.check(level_vrms), self.direct_vrms))
         if level_vrms > self.direct_vrms:
             self.set_level(level_vrms)
+        return got
 
-    def set_frequency(self, frequency_hz: float) -> None:
-        """Change the frequency; the level stays (the driver's configure keeps it)."""
+    def set_frequency(self, frequency_hz: float) -> float | None:
+        """Change the frequency; the level stays (the driver's configure keeps it).
+        Returns the frequency the generator reports."""
         level = self.level_vrms
-        self._gen.configure_sine(frequency_hz, output=self.output)
+        got = self._gen.configure_sine(frequency_hz, output=self.output)
         if level > 0:
             self._command(level)
         self.resync()
+        return got
 
     def on(self) -> None:
         """Switch the output on at the present level, at most ``direct_vrms``: a higher

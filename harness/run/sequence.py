@@ -36,6 +36,7 @@ import numpy as np
 from harness.errors import FixtureFileError, StageproofError
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import (
+    FLOOR_TO_READING_U,
     RecordAnalysis,
     SearchStep,
     clip_threshold,
@@ -49,9 +50,7 @@ from harness.model.design import MAX_SETTLE_S, check_settle_time
 from harness.model.settling import SETTLE_TAUS
 from harness.run.bench_ops import (
     RANGE_FILL,
-    RANGE_UNDERUSE,
     BoardRun,
-    added_thd_percent,
     choose_range,
     limit_get,
     plan_record,
@@ -72,16 +71,11 @@ from harness.run.decisions import (
 from harness.run.progress import NullProgress, Progress
 from harness.store import MeasurementRow
 
-#: Kept importable from here (public names of this module before the shared bench module).
 __all__ = [
-    "RANGE_FILL",
-    "RANGE_UNDERUSE",
     "ChannelVerdict",
     "RunOptions",
     "RunResult",
     "Sequencer",
-    "added_thd_percent",
-    "choose_range",
     "run_board",
 ]
 
@@ -680,8 +674,9 @@ class Sequencer(BoardRun):
             "nominal", f"gain, phase, THD at {self.plan.frequency_hz:.6g} Hz ({names})"
         )
         level = self.board.conditions.nominal_input_vrms
-        # the generator at the planned (coherent) frequency exactly, output still off
-        self.safe.configure(self.plan.frequency_hz, level)
+        # the scope's timebase read back and the plan made from it; the generator at the
+        # planned (coherent) frequency, output still off, and the frequency it reports used
+        self.plan = self.scope_ops.tune(self.plan, lambda f: self.safe.configure(f, level))
         res = self._measure_at(group, level, self.plan, "nominal")
         acq = self.last_acquisition
         wide = self._wide_look(group)
@@ -746,7 +741,16 @@ class Sequencer(BoardRun):
                 "%",
                 lim.thd_percent,
                 uthd,
-                {"thd_report": a.thd_report, "floor_percent": a.floor.thd_percent},
+                {
+                    "thd_report": a.thd_report,
+                    "floor_percent": a.floor.thd_percent,
+                    # what the value is: the record's THD, or with the scope's own
+                    # harmonics removed (the raw record's value kept beside it)
+                    "scope_harmonics_removed": a.scope_harmonics_removed,
+                    "thd_raw_percent": (
+                        a.thd_percent if a.thd_raw_percent is None else a.thd_raw_percent
+                    ),
+                },
             )
             st.points.append(a)
             st.levels_commanded.append(level)
@@ -766,7 +770,7 @@ class Sequencer(BoardRun):
         n = next((k for k in lengths if k >= want), lengths[-1])
         inputs = sorted({st.conn.output_scope for st in group})
         self.scope.configure_timebase(fast, n)
-        self.scope_ops.timebase = (fast, n)
+        self.scope_ops.timebase = None  # the next record sets its own again
         acq = self.scope.acquire(inputs)
         self.scope_ops.acquisitions += 1
         return {
@@ -896,6 +900,7 @@ class Sequencer(BoardRun):
         ratio = {}
         for s in active:
             a = s.nominal
+            assert a is not None  # active channels have a nominal record (see above)
             ratio[s.conn.board_channel] = a.input_vrms / self.board.conditions.nominal_input_vrms
         n = 0
         while any(not s.done for s in active) and n < self.opt.max_search_acquisitions:
@@ -933,6 +938,7 @@ class Sequencer(BoardRun):
 
     def _next(self, s: _ChannelState, max_measured: float):
         lim = s.limits.clip_input_vrms
+        assert s.nominal is not None  # only channels with a nominal record are searched
         start = float(lim.nominal) * (
             s.nominal.input_vrms / self.board.conditions.nominal_input_vrms
         )
@@ -1000,6 +1006,7 @@ class Sequencer(BoardRun):
         """While no bracket exists, aim past the crossing the two nearest points predict
         (secant on score vs level in dB, overshooting by half the expansion step), instead
         of creeping in fixed steps; the move stays between 0.5x and 4x the expansion."""
+        assert step.level_vrms is not None  # a step that is not done has a level
         up = step.level_vrms > max(p.input_vrms for p in pts)
         ordered = sorted(pts, key=lambda p: p.input_vrms)
         a, b = (ordered[-2], ordered[-1]) if up else (ordered[1], ordered[0])
@@ -1044,6 +1051,7 @@ class Sequencer(BoardRun):
                 [p.gain_db for p in s.points],
                 self.criterion,
                 s.nominal.gain_db if s.nominal else None,
+                [FLOOR_TO_READING_U * p.floor.thd_percent for p in s.points],
             )
         detail: dict[str, Any] = {
             "criterion": self.criterion.label,
@@ -1063,6 +1071,7 @@ class Sequencer(BoardRun):
                     "asymmetry": asym,
                 }
             )
+            assert s.nominal is not None  # as in _next
             u_rel = amplitude_rel_u(_resid_ratio(s.nominal, "in"), s.nominal.n_samples)
             u_db = threshold_uncertainty_db(
                 0.0, u_rel, self.opt.bench, settled=True, fit_u_db=th.uncertainty_db or 0.0
@@ -1148,8 +1157,7 @@ class Sequencer(BoardRun):
         level = self.board.conditions.nominal_input_vrms
         self.safe.set_level(level)
         for f in extra:
-            plan = self._plan(f)
-            self.safe.set_frequency(plan.frequency_hz)
+            plan = self.scope_ops.tune(self._plan(f), self.safe.set_frequency)
             self._wait_settle()
             res = self._measure_at(group, level, plan, f"{f:g} Hz")
             for s in group:
@@ -1177,7 +1185,7 @@ class Sequencer(BoardRun):
                     },
                     None if a.gain_db is not None else _why(a),
                 )
-        self.safe.set_frequency(self.plan.frequency_hz)
+        self.plan = self.scope_ops.tune(self.plan, self.safe.set_frequency)
 
     # --- the whole run --------------------------------------------------------------
     def station_text(self) -> str:

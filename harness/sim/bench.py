@@ -15,14 +15,20 @@ from __future__ import annotations
 
 import logging
 import math
-import re
 import time
 from collections.abc import Iterable, Mapping
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
-from harness.errors import FaultSpecError, StationFileError
+import tomli_w
+
+from harness.errors import FaultSpecError, ProfileError, StationFileError
+from harness.io.packaged import PROFILE_DIR
+from harness.io.profiles import profile_from_dict
+from harness.io.toml import read_toml
 from harness.model.board import Board
+from harness.sim.benchtop import BENCHTOP_SCOPE, SimBenchtopGenerator, SimBenchtopScope
 from harness.sim.faults import InstrumentFault, is_instrument_fault, parse_instrument_fault
 from harness.sim.instruments import (
     GeneratorEvent,
@@ -39,13 +45,17 @@ from harness.sim.scpi import ScpiDevice
 from harness.sim.server import LOOPBACK, ScpiServer
 from harness.sim.world import World
 
-__all__ = ["ROLES", "SimBench", "split_faults"]
+__all__ = ["DIALECTS", "ROLES", "SimBench", "split_faults"]
 
 log = logging.getLogger("harness.sim")
 
 ROLES: tuple[str, ...] = ("generator", "scope", "switch", "dmm", "supply")
 _PROFILES = {r: f"scpi-{r}" for r in ROLES}
-_DEFAULT_SCOPE_PROFILE = Path(__file__).resolve().parents[2] / "fixtures" / "instruments"
+#: The simulated bench's dialects: the profiles its station file names per role.
+DIALECTS: dict[str, dict[str, str]] = {
+    "default": dict(_PROFILES),
+    "benchtop": {**_PROFILES, "generator": "benchtop-generator", "scope": "benchtop-scope"},
+}
 
 
 def split_faults(
@@ -81,7 +91,16 @@ class SimBench:
         seed: int = 20240601,
         scope_settings: ScopeSettings | None = None,
         settling: bool | None = None,
+        dialect: str = "default",
     ) -> None:
+        if dialect not in DIALECTS:
+            raise FaultSpecError(
+                f"dialect {dialect!r}",
+                "no such simulated dialect",
+                hint=f"use one of: {', '.join(DIALECTS)}",
+            )
+        self.dialect = dialect
+        self.profiles = DIALECTS[dialect]
         self.board = board
         component, inst = split_faults(faults, board)
         _, more = split_faults(instrument_faults, board)
@@ -95,15 +114,21 @@ class SimBench:
         self.host = host
         self.port_base = port_base
         inputs = max(4, len(board.channels) + 1)
-        settings = scope_settings or ScopeSettings(inputs=inputs)
+        base = BENCHTOP_SCOPE if dialect == "benchtop" else ScopeSettings()
+        settings = scope_settings or replace(base, inputs=inputs)
         if settings.inputs < len(board.channels) + 1:
             raise FaultSpecError(
                 f"scope inputs={settings.inputs}",
                 f"the board needs {len(board.channels) + 1} scope inputs",
             )
         kw = {"latency": latency}
-        gen = SimGenerator(self.world, serial="SIM-G001", **kw)
-        scope = SimScope(self.world, settings, serial="SIM-S001", **kw)
+        gen_cls, scope_cls = (
+            (SimBenchtopGenerator, SimBenchtopScope)
+            if dialect == "benchtop"
+            else (SimGenerator, SimScope)
+        )
+        gen = gen_cls(self.world, serial="SIM-G001", **kw)
+        scope = scope_cls(self.world, settings, serial="SIM-S001", **kw)
         switch = SimSwitch(self.world, serial="SIM-W001", **kw)
         dmm = SimDmm(self.world, switch, serial="SIM-D001", **kw)
         supply = SimSupply(self.world, serial="SIM-P001", **kw)
@@ -263,7 +288,7 @@ class SimBench:
             raise StationFileError(
                 None, None, "the simulated bench is not started", hint="call start() first"
             )
-        profiles = {**_PROFILES, **(profiles or {})}
+        profiles = {**self.profiles, **(profiles or {})}
         lines = [
             "# Station file written by `stageproof sim serve`: the simulated bench's instruments.",
             "",
@@ -285,17 +310,15 @@ class SimBench:
         return "\n".join(lines) + "\n"
 
     def write_station(self, path: str | Path) -> Path:
-        """Write the station file; a scope with more than four inputs gets its own profile
-        (a copy of the default with ``inputs`` changed) beside it."""
+        """Write the station file; a scope with other than four inputs gets its own profile
+        (the shipped default with ``inputs`` changed) beside it."""
         p = Path(path)
         profiles: dict[str, str] = {}
         inputs = self.scope.settings.inputs
         if inputs != 4:
-            src = (_DEFAULT_SCOPE_PROFILE / "scpi-scope.toml").read_text()
-            text = re.sub(r"(?m)^inputs = \d+", f"inputs = {inputs}", src)
-            text = text.replace('name = "scpi-scope"', f'name = "scpi-scope-{inputs}"')
-            prof = p.with_name(f"scpi-scope-{inputs}.toml")
-            prof.write_text(text)
+            name = self.profiles["scope"]
+            prof = p.with_name(f"{name}-{inputs}.toml")
+            prof.write_text(scope_profile_text(inputs, name))
             profiles["scope"] = str(prof.resolve())
         p.write_text(self.station_text(profiles=profiles))
         return p
@@ -318,7 +341,8 @@ class SimBench:
             "[supply]",
             "output = 1",
             f"voltage_v = {b.supply.v_pos:g}",
-            f"current_limit_a = {limit:g}       # 4x the simulated quiescent current",
+            f"current_limit_a = {limit:g}       # {limit / i_q:.2g}x the simulated quiescent "
+            f"current of {i_q * 1e3:.3g} mA (4x, rounded up to 10 mA, at least 20 mA)",
         ]
         if b.supply.negative is not None:
             lines += [
@@ -361,6 +385,18 @@ class SimBench:
             if all(s._listener is not None for s in self.servers.values()):
                 return
             time.sleep(0.01)
+
+
+def scope_profile_text(inputs: int, name: str = _PROFILES["scope"]) -> str:
+    """The shipped scope profile ``name`` with ``inputs`` inputs, as a profile file: its
+    document with its name and ``settings.inputs`` changed, checked by the profile loader
+    before it is written, so the station written beside it always loads."""
+    doc, _ = read_toml(PROFILE_DIR / f"{name}.toml", ProfileError)
+    doc["profile"]["name"] = f"{name}-{inputs}"
+    doc["settings"]["inputs"] = inputs
+    profile_from_dict(doc)
+    head = f"# Scope profile written by `stageproof sim serve`: {name}, {inputs} inputs.\n"
+    return head + "\n" + tomli_w.dumps(doc)
 
 
 def _esc(text: str) -> str:

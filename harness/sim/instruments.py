@@ -1,7 +1,7 @@
 """The five simulated instruments, each a command table over :class:`ScpiDevice`.
 
 They implement exactly the commands of the default profiles in ``fixtures/instruments``
-(checked by tests/sim/test_profiles_accepted.py) plus the SCPI forms around them
+(checked by tests/sim/test_sim_bench_files.py) plus the SCPI forms around them
 (queries, MIN/MAX, optional nodes).  Capabilities match the profiles' ``[settings]``.
 
 Conventions worth knowing:
@@ -292,6 +292,8 @@ class _Record:
     inputs: dict[int, _Input]
     seed: int
     codes: dict[int, np.ndarray] = field(default_factory=dict)
+    bits: int = 8
+    noise_v_rms: float = 20e-6
 
 
 class SimScope(_BenchDevice):
@@ -472,10 +474,22 @@ class SimScope(_BenchDevice):
         t_trig, wait = self._trigger_time(sig, rng)
         t0 = t_trig + float(rng.uniform(0.0, ts))
         inputs = {n: _Input(**vars(i)) for n, i in self.inputs.items()}
+        bits, noise_v = self.resolution()
         self.record = _Record(
-            sig, t0, self.rate_hz, self.points, inputs, int(rng.integers(0, 2**31))
+            sig,
+            t0,
+            self.rate_hz,
+            self.points,
+            inputs,
+            int(rng.integers(0, 2**31)),
+            bits=bits,
+            noise_v_rms=noise_v,
         )
         self.busy_for(self.settings.rearm_s + wait + self.points * ts)
+
+    def resolution(self) -> tuple[int, float]:
+        """(ADC bits, input noise in V rms) of the next record: the front end's own."""
+        return self.settings.adc_bits, self.settings.noise_v_rms
 
     def _trigger_time(self, sig: SignalSet, rng: np.random.Generator) -> tuple[float, float]:
         """(time of the trigger point within one period, expected wait for it)."""
@@ -531,7 +545,7 @@ class SimScope(_BenchDevice):
         if not inp.on:
             raise ScpiFailure(-221, f"input {n} is off", reply=encode_block(b""))
         s = self.settings
-        full = 2**s.adc_bits
+        full = 2**rec.bits
         lsb = self.effective_range(inp) / full
         if n not in rec.codes:
             rng = np.random.default_rng([rec.seed, n])
@@ -542,7 +556,7 @@ class SimScope(_BenchDevice):
             u = np.clip(x / half, -1.5, 1.5)  # normalised input for the INL polynomial
             a2 = 2 * half * 10 ** (s.inl_hd2_dbc / 20)
             a3 = 4 * half * 10 ** (s.inl_hd3_dbc / 20)
-            sigma = math.hypot(s.noise_lsb_rms, s.noise_v_rms * inp.probe / lsb)
+            sigma = math.hypot(s.noise_lsb_rms, rec.noise_v_rms * inp.probe / lsb)
             x = x + a2 * u * u + a3 * u**3 + rng.normal(0.0, sigma, x.shape)
             rec.codes[n] = np.clip(np.rint(x), -half, half - 1).astype(np.int32)
         return rec.codes[n], lsb, inp.offset_v

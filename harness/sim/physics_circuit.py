@@ -574,6 +574,7 @@ def _shoot(
             known_part[:n] = x
             v_new = known_part[cap_a] - known_part[cap_b]
             # sensitivities: dx/dv_n = Y·diag(2C/h), dx/dv_{n-1} = −Y·diag(0.5C/h)
+            assert res.y is not None  # asked for with want_y
             w = inc_u_t @ res.y
             p_new = (w * cg2) @ p_top - (w * cg05) @ p_bot
             p_bot, p_top = p_top, p_new

@@ -159,7 +159,11 @@ def build_channel(
                 beta = float(f.value)  # type: ignore[arg-type]
         is_a = params.is_a if params.is_a is not None else params.pick(tr.is_a)
         vaf = params.vaf_v if params.vaf_v is not None else (tr.vaf_v or math.inf)
-        return BjtModel(is_a=is_a, beta_f=beta, beta_r=params.beta_r, vaf_v=vaf)
+        # the transistor data's reverse beta (board field beta_r) unless overridden here
+        beta_r = params.beta_r
+        if tr.beta_r is not None and params.beta_r == BETA_R_DEFAULT:
+            beta_r = params.pick(tr.beta_r)
+        return BjtModel(is_a=is_a, beta_f=beta, beta_r=beta_r, vaf_v=vaf)
 
     def junction_faults(stage_ref: str, name: str, b: str, c: str, e: str) -> None:
         for f in by_ref.get(stage_ref, ()):

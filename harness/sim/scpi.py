@@ -472,7 +472,7 @@ class ScpiDevice:
     an :class:`Outcome` for transports; ``handle`` is the in-process shortcut.
     """
 
-    IDN: ClassVar[tuple[str, str]] = ("stageproof-sim", "GENERIC")
+    IDN: tuple[str, str] = ("stageproof-sim", "GENERIC")
     COMMANDS: ClassVar[tuple[Command, ...]] = ()
     ERROR_QUEUE_SIZE: ClassVar[int] = 16
 
@@ -683,7 +683,7 @@ class ScpiDevice:
             raise _Abort
         m = _COMMON_RE.match(s)
         if m:
-            tokens = [("*" + m.group(1).upper(), None)]
+            tokens: list[tuple[str, int | None]] = [("*" + m.group(1).upper(), None)]
             new_path = path  # common commands leave the path alone (IEEE 488.2 §A.1.1)
             query = m.group(2) is not None
             rest = s[m.end() :]

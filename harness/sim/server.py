@@ -9,12 +9,16 @@ only frames lines, delays replies as the device asks and applies the connection 
 - a line longer than ``max_line`` bytes is discarded up to its LF with error -223 and
   the connection stays usable;
 - a client that vanishes mid-command or mid-reply ends only its own thread;
-- ``stop()`` closes every socket so no thread stays blocked.
+- ``stop()`` closes every socket so no thread stays blocked;
+- when the process runs out of file descriptors (EMFILE/ENFILE) or threads, the accept loop
+  backs off and keeps accepting, and says so (a warning on the ``harness.sim`` logger and
+  :attr:`ScpiServer.trouble`) until a connection is accepted again.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import logging
 import socket
 import threading
@@ -29,6 +33,11 @@ log = logging.getLogger("harness.sim")
 LOOPBACK = "127.0.0.1"
 #: Longest program message accepted (bytes, without the terminator).
 MAX_LINE = 64 * 1024
+#: accept() failures that pass once the process has resources again (accept(2), ERRORS:
+#: EMFILE per-process and ENFILE system-wide descriptor limits, ENOBUFS/ENOMEM memory).
+TRANSIENT_ACCEPT = frozenset({errno.EMFILE, errno.ENFILE, errno.ENOBUFS, errno.ENOMEM})
+#: Back-off between accept attempts while resources are short: first and longest wait.
+BACKOFF_S = (0.01, 0.5)
 
 
 class ScpiServer:
@@ -54,6 +63,8 @@ class ScpiServer:
         self._stop = threading.Event()
         self._threads: list[threading.Thread] = []
         self.connections_served = 0
+        #: Why new connections are not being accepted right now (None: accepting).
+        self.trouble: str | None = None
 
     @property
     def port(self) -> int:
@@ -82,24 +93,49 @@ class ScpiServer:
         log.debug("%s listening on %s", self.name, self.resource)
 
     def _accept_loop(self, sock: socket.socket) -> None:
+        backoff = BACKOFF_S[0]
         while not self._stop.is_set():
             try:
                 conn, _addr = sock.accept()
-            except OSError:
-                return  # listener closed (stop or power cycle)
-            conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-            with self._guard:
-                if self._stop.is_set() or sock is not self._listener:
-                    conn.close()
-                    return
-                self._conns.add(conn)
-                self.connections_served += 1
-                self._threads = [t for t in self._threads if t.is_alive()]
-                t = threading.Thread(
-                    target=self._serve, args=(conn,), name=f"sim-{self.name}-conn", daemon=True
-                )
-                self._threads.append(t)
-            t.start()
+            except OSError as exc:
+                if exc.errno not in TRANSIENT_ACCEPT or sock is not self._listener:
+                    return  # listener closed (stop or power cycle)
+                # Out of descriptors or memory: the connection waits in the backlog; try
+                # again when something is released, never give the port up.
+                self._short(f"cannot accept connections: {exc.strerror or exc} ({exc})")
+                self._stop.wait(backoff)
+                backoff = min(2 * backoff, BACKOFF_S[1])
+                continue
+            try:
+                conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+                with self._guard:
+                    if self._stop.is_set() or sock is not self._listener:
+                        conn.close()
+                        return
+                    self._threads = [t for t in self._threads if t.is_alive()]
+                    t = threading.Thread(
+                        target=self._serve, args=(conn,), name=f"sim-{self.name}-conn", daemon=True
+                    )
+                    t.start()
+                    self._conns.add(conn)
+                    self.connections_served += 1
+                    self._threads.append(t)
+            except (OSError, RuntimeError) as exc:  # RuntimeError: no thread could start
+                _close(conn)
+                self._short(f"cannot serve a new connection: {exc}")
+                self._stop.wait(backoff)
+                backoff = min(2 * backoff, BACKOFF_S[1])
+                continue
+            backoff = BACKOFF_S[0]
+            if self.trouble is not None:
+                log.warning("%s accepting connections again on %s", self.name, self.resource)
+                self.trouble = None
+
+    def _short(self, why: str) -> None:
+        """Record (and say once per episode) why connections are not being accepted."""
+        if self.trouble is None:
+            log.warning("%s on %s %s; retrying", self.name, self.resource, why)
+        self.trouble = why
 
     def _serve(self, conn: socket.socket) -> None:
         buf = bytearray()

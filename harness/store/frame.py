@@ -1,49 +1,114 @@
 """Results as a pandas DataFrame in one call, for analysis outside the bench.
 
 Timestamps come back as ``datetime64[ns, UTC]``, numbers as float64 (NULL -> NaN), run
-ids and retest numbers as int64, ``clipped`` as bool.  The limits document itself stays
-out of the frames (it can be tens of kilobytes per run); ``get_run`` returns it.
+ids and retest numbers as int64, ``clipped`` as bool.  The limits document and the board
+text stay out of the frames (tens of kilobytes per run); ``get_run`` returns them.
+
+Filters (dates, board, station, serial) go into the SQL, so a narrow question reads only
+the rows it needs; ``columns`` narrows what is read further.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 from harness.errors import StoreError
-from harness.store.sqlite import SQLiteStore
+from harness.store.protocol import When
+from harness.store.sql import RunFilter
 
 if TYPE_CHECKING:  # pandas is imported on use: station processes that only write skip it
     import pandas as pd
 
+    from harness.store.sql import SQLStore
+
 _RUN_FIELDS = (
-    "r.serial, r.part_number, r.board_name, r.status, r.verdict, r.retest, r.started_at, "
-    "r.ended_at, r.station, r.fixture, r.operator, r.software_version"
+    "serial",
+    "part_number",
+    "board_name",
+    "status",
+    "verdict",
+    "retest",
+    "started_at",
+    "ended_at",
+    "station",
+    "fixture",
+    "operator",
+    "software_version",
 )
 
-_QUERIES: dict[str, str] = {
+#: frame -> (table, the columns the frame may hold; run columns come from the joined run)
+_TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
     "runs": (
-        "SELECT run_id, serial, part_number, board_name, board_file, board_digest, "
-        "limits_digest, limits_provenance, station, fixture, operator, instruments_json, "
-        "software_version, settle_note, status, verdict, reason, retest, started_at, ended_at, "
-        "heartbeat_at, host, pid FROM runs ORDER BY run_id"
+        "runs",
+        (
+            "run_id",
+            "serial",
+            "part_number",
+            "board_name",
+            "board_file",
+            "board_digest",
+            "limits_digest",
+            "limits_provenance",
+            "station",
+            "fixture",
+            "operator",
+            "instruments_json",
+            "software_version",
+            "settle_note",
+            "status",
+            "verdict",
+            "reason",
+            "retest",
+            "started_at",
+            "ended_at",
+            "heartbeat_at",
+            "host",
+            "pid",
+        ),
     ),
     "measurements": (
-        f"SELECT m.id AS measurement_id, m.run_id, {_RUN_FIELDS}, m.channel, m.name, m.value, "
-        "m.unit, m.low, m.high, m.uncertainty, m.decision, m.step, m.measured_at, "
-        "m.detail_json FROM measurements AS m JOIN runs AS r ON r.run_id = m.run_id "
-        "ORDER BY m.id"
+        "measurements",
+        (
+            "measurement_id",
+            "run_id",
+            *_RUN_FIELDS,
+            "channel",
+            "name",
+            "value",
+            "unit",
+            "low",
+            "high",
+            "uncertainty",
+            "decision",
+            "step",
+            "measured_at",
+            "detail_json",
+        ),
     ),
     "sweeps": (
-        f"SELECT s.id AS point_id, s.run_id, {_RUN_FIELDS}, s.channel, s.sweep, s.level_vrms, "
-        "s.gain_db, s.thd_percent, s.thdn_percent, s.clipped, s.clip_side, s.extra_json, "
-        "s.measured_at FROM sweep_points AS s JOIN runs AS r ON r.run_id = s.run_id "
-        "ORDER BY s.id"
+        "sweep_points",
+        (
+            "point_id",
+            "run_id",
+            *_RUN_FIELDS,
+            "channel",
+            "sweep",
+            "level_vrms",
+            "gain_db",
+            "thd_percent",
+            "thdn_percent",
+            "clipped",
+            "clip_side",
+            "extra_json",
+            "measured_at",
+        ),
     ),
 }
 
 #: What ``load_frame`` can load.
-FRAMES: tuple[str, ...] = tuple(_QUERIES)
+FRAMES: tuple[str, ...] = tuple(_TABLES)
 
 _TIMES = ("started_at", "ended_at", "heartbeat_at", "measured_at")
 _FLOATS = (
@@ -57,17 +122,55 @@ _FLOATS = (
     "thdn_percent",
 )
 _INTS = ("run_id", "measurement_id", "point_id", "retest", "pid")
+_RUN_SET = {"run_id", *_RUN_FIELDS, *_TABLES["runs"][1]}
 
 
-def load_frame(path: str | Path, what: str = "measurements") -> pd.DataFrame:
-    """Load ``"measurements"`` (joined with their run's serial, status, verdict,
-    started_at...), ``"runs"`` or ``"sweeps"`` from a results database, read-only."""
+def frame_sql(what: str, columns: Sequence[str] | None, where: RunFilter) -> tuple[str, list]:
+    """The one SELECT of a frame: fixed column names only, every value a parameter."""
+    if what not in _TABLES:
+        raise StoreError(f"load_frame what={what!r}: choose one of {', '.join(FRAMES)}")
+    table, known = _TABLES[what]
+    cols = list(known if columns is None else columns)
+    unknown = [c for c in cols if c not in known]
+    if unknown:
+        raise StoreError(
+            f"load_frame {what}: no column {unknown[0]!r}", hint=f"choose from {', '.join(known)}"
+        )
+    conds, params = where.where("r.")
+    if what == "runs":
+        select = ", ".join(f"r.{c}" for c in cols)
+        sql = f"SELECT {select} FROM runs AS r"
+        order = "r.run_id"
+    else:
+        own_id = "measurement_id" if what == "measurements" else "point_id"
+        parts = []
+        for c in cols:
+            if c == own_id:
+                parts.append(f"t.id AS {own_id}")
+            elif c in _RUN_SET and c != "run_id":
+                parts.append(f"r.{c}")
+            else:
+                parts.append(f"t.{c}")
+        sql = f"SELECT {', '.join(parts)} FROM {table} AS t JOIN runs AS r ON r.run_id = t.run_id"
+        order = "t.id"
+    if conds:
+        sql += " WHERE " + " AND ".join(conds)
+    return sql + f" ORDER BY {order}", params
+
+
+def frame_of(
+    store: SQLStore,
+    what: str = "measurements",
+    *,
+    columns: Sequence[str] | None = None,
+    where: RunFilter | None = None,
+) -> pd.DataFrame:
+    """A frame from an open store (see :func:`load_frame`)."""
     import pandas as pd
 
-    if what not in _QUERIES:
-        raise StoreError(f"load_frame what={what!r}: choose one of {', '.join(FRAMES)}")
-    with SQLiteStore(path, readonly=True) as store, store._read(f"loading {what}") as conn:
-        frame = pd.read_sql_query(_QUERIES[what], conn)
+    sql, params = frame_sql(what, columns, where or RunFilter())
+    names, rows = store.query(sql, params, f"loading {what}")
+    frame = pd.DataFrame.from_records(rows, columns=names)
     for col in frame.columns:
         try:
             if col in _TIMES:
@@ -79,11 +182,37 @@ def load_frame(path: str | Path, what: str = "measurements") -> pd.DataFrame:
             elif col == "clipped":
                 frame[col] = frame[col].astype(bool)
         except (TypeError, ValueError, OverflowError) as exc:
-            raise _damaged(path, frame, col, exc) from None
+            raise _damaged(store.location, frame, col, exc) from None
     return frame
 
 
-def _damaged(path: str | Path, frame: pd.DataFrame, col: str, exc: Exception) -> StoreError:
+def load_frame(
+    path_or_url: str | Path,
+    what: str = "measurements",
+    *,
+    since: When | None = None,
+    until: When | None = None,
+    board: str | None = None,
+    station: str | None = None,
+    serial: str | None = None,
+    columns: Sequence[str] | None = None,
+) -> pd.DataFrame:
+    """Load ``"measurements"`` (joined with their run's serial, status, verdict,
+    started_at...), ``"runs"`` or ``"sweeps"`` from a results database, read-only.
+
+    The filters select runs (``since``/``until`` on the run's start, inclusive, a bare
+    date the whole UTC day; ``board`` the part number or board name) and are applied in
+    SQL."""
+    from harness.store import open_store
+
+    where = RunFilter(serial=serial, since=since, until=until, board=board, station=station)
+    if what not in _TABLES:
+        raise StoreError(f"load_frame what={what!r}: choose one of {', '.join(FRAMES)}")
+    with open_store(path_or_url, readonly=True) as store:
+        return frame_of(store, what, columns=columns, where=where)
+
+
+def _damaged(location: str, frame: pd.DataFrame, col: str, exc: Exception) -> StoreError:
     """A column holding what stageproof never writes there (a row edited by hand): the
     first such row named, so it can be found."""
     import pandas as pd
@@ -102,7 +231,7 @@ def _damaged(path: str | Path, frame: pd.DataFrame, col: str, exc: Exception) ->
         where = f"run {frame['run_id'][bad.index[0]]}: "
     shown = repr(bad.iloc[0]) if not bad.empty else str(exc)
     return StoreError(
-        f"results database {path}: {where}column {col} holds {shown}, not a {kind}",
+        f"results database {location}: {where}column {col} holds {shown}, not a {kind}",
         hint="the row was changed outside stageproof: restore the database from a backup, "
         "or delete that run",
     )

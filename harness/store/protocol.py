@@ -1,8 +1,8 @@
 """The one interface the rest of stageproof sees of the results store.
 
-SQLite (one file, several station processes) is the only backend today; a server
-database for lines with many stations will implement this same Protocol, so the
-sequencer and the CLI never learn which one they talk to.
+SQLite (one file, several station processes) and PostgreSQL (many stations on many hosts)
+implement it alike (:class:`harness.store.sql.SQLStore`), so the sequencer and the CLI
+never learn which one they talk to.
 """
 
 from __future__ import annotations
@@ -64,6 +64,7 @@ class ResultStore(Protocol):
         until: When | None = None,
         board: str | None = None,
         limit: int | None = None,
+        station: str | None = None,
     ) -> list[RunRow]: ...
 
     def get_run(self, run_id: int) -> RunRow: ...

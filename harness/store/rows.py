@@ -141,6 +141,8 @@ class RunHeader:
     software_version: str = __version__
     settle_note: str = ""
     limits_provenance: str | None = None
+    #: The board file's text, so reports and diagnosis work from the store alone.
+    board_text: str | None = None
 
     def __post_init__(self) -> None:
         _text(self.serial, "serial number")
@@ -157,6 +159,8 @@ class RunHeader:
             "settle_note",
         ):
             _text(getattr(self, name), name.replace("_", " "), allow_empty=True)
+        if self.board_text is not None:
+            _text(self.board_text, "board text", allow_empty=True)
         _json_text(self.limits_json, "limits_json")
         _json_text(self.limits_provenance, "limits_provenance")
         if not isinstance(self.instruments, dict) or not all(
@@ -301,6 +305,10 @@ class RunRow:
     host: str
     pid: int
     heartbeat_at: str
+    #: The board file as it was when the run began (None for runs stored before schema 2).
+    board_text: str | None = None
+    #: Unique across every database: what ``store copy`` recognises a run by.
+    run_token: str = ""
 
     def summary(self) -> dict[str, Any]:
         """The columns a listing shows (no limits document, no owner details)."""

@@ -21,13 +21,13 @@ from harness.errors import AnalysisError, StageproofError
 from harness.measure import ClipCriterion, analyze_uniform, next_search_level, plan_coherent
 from harness.model.board import Board
 from harness.model.design import design_channel
+from harness.run.bench_ops import choose_range
 from harness.run.decisions import (
     amplitude_rel_u,
     gain_uncertainty_db,
     thd_uncertainty_percent,
     threshold_uncertainty_db,
 )
-from harness.run.sequence import choose_range
 from harness.sim.physics import BoardSim
 
 RATES = (1e4, 2e4, 5e4, 1e5, 2e5, 5e5, 1e6)

@@ -20,7 +20,7 @@ from harness.diagnose import diagnose_run, rank_faults, tolerance_spread
 from harness.diagnose.names import from_rows
 from harness.diagnose.predict import predict_channel
 from harness.errors import AnalysisError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.store import MeasurementRow, RunHeader, open_store
 
 from .simmeasure import measure_board

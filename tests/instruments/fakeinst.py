@@ -68,6 +68,9 @@ class FakeInstrument:
         self.errors: deque[tuple[int, str]] = deque()
         self.replies: dict[str, Reply] = {}
         self.rejects: dict[str, tuple[int, str]] = {}
+        #: header -> last value set: a query of the same header with no fixed reply answers
+        #: it, as an instrument reads its settings back
+        self.settings: dict[str, str] = {}
         self.port = 0
         self._srv: _Server | None = None
         self._thread: threading.Thread | None = None
@@ -97,6 +100,11 @@ class FakeInstrument:
         rep = self.replies.get(line)
         if callable(rep):
             rep = rep(line)
+        if rep is None and not line.endswith("?") and " " in line and ";" not in line:
+            header, value = line.split(" ", 1)
+            self.settings[header.upper()] = value
+        if rep is None and line.endswith("?") and line[:-1].upper() in self.settings:
+            rep = self.settings[line[:-1].upper()]
         if rep is None:
             if line.endswith("?"):
                 self.errors.append((-113, "Undefined header"))

@@ -11,8 +11,8 @@ import pytest
 
 from harness.errors import IdentityMismatch, ScpiError
 from harness.instruments.bench import connect
+from harness.io.board import load_board
 from harness.io.station import load_station
-from harness.io.toml import load_board
 from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire
@@ -71,7 +71,8 @@ def test_dmm_through_switch(sim, rm):
 
 
 def test_scope_power_cycle_mid_run(sim, rm):
-    """NOTES pitfall 5: reconnect, re-identify, replay the settings, acquire again."""
+    """A power-cycled instrument (pyvisa-py 0.8.1 on a socket: a timeout on read, then a
+    refused write) is reconnected, re-identified, given its settings again and acquires."""
     bench, station = sim
     with connect(station, rm=rm) as ins:
         sc = ins.scope

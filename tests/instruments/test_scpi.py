@@ -25,13 +25,14 @@ from harness.instruments.scpi import (
     parse_number,
 )
 
-# NOTES.md, checked against pyvisa 1.16.2 on loopback: REAL,32 BORDer NORMal [1, -0.5, 0.25, 2].
+# IEEE 488.2 §8.7.9 block of REAL,32 BORDer NORMal [1, -0.5, 0.25, 2] (IEEE 754 bit patterns),
+# read back identically by pyvisa 1.16.2 query_binary_values on loopback.
 EXAMPLE = bytes.fromhex("233231363F800000BF0000003E80000040000000") + b"\n"
 
 
 def test_block_example_real32_big_endian():
     """IEEE 488.2 §8.7.9 definite-length block: '#', digit n, n digits of count, bytes.
-    Byte-exact example (21 bytes with LF) from NOTES.md; float bit patterns are IEEE 754."""
+    Byte-exact example (21 bytes with LF); float bit patterns are IEEE 754."""
     block = encode_values([1.0, -0.5, 0.25, 2.0], "float32", big_endian=True)
     assert block + b"\n" == EXAMPLE
     assert len(EXAMPLE) == 21
@@ -59,7 +60,7 @@ def test_block_header_digit_count(data, header):
 def test_bad_blocks_are_malformed(bad):
     """IEEE 488.2 §8.7.9: no '#', a digit outside 1-9, non-decimal count or a short payload
     are not definite-length blocks; '#0' (indefinite, §8.7.10) cannot be delimited on a
-    stream (NOTES.md), so it is refused too."""
+    stream (it ends only with END, which a socket has not), so it is refused too."""
     with pytest.raises(MalformedReply):
         parse_block(bad)
 
@@ -101,7 +102,7 @@ def test_ragged_payload_is_malformed():
     ],
 )
 def test_error_reply(reply, code, text):
-    """SCPI-99 SYSTem:ERRor? reply <code>,"<text>" with the codes listed in NOTES.md;
+    """SCPI-99 SYSTem:ERRor? reply <code>,"<text>" with SCPI-99 vol. 2 ch. 21 codes (from memory);
     doubled quotes inside string data stand for one (IEEE 488.2 §8.7.8)."""
     assert parse_error_reply(reply) == (code, text)
 
@@ -113,7 +114,7 @@ def test_error_reply_malformed(reply):
 
 
 def test_idn_four_fields():
-    """IEEE 488.2 §10.14 (clause number unverified, NOTES.md): *IDN? gives maker, model,
+    """IEEE 488.2 §10.14 (clause number from memory): *IDN? gives maker, model,
     serial, firmware separated by commas."""
     ident = parse_idn("stageproof-sim,DIG-4,SN042,1.2.3\n")
     assert ident == Identity("stageproof-sim", "DIG-4", "SN042", "1.2.3")
@@ -156,7 +157,7 @@ def test_identity_matches_leading_fields(expected, ok):
 )
 def test_format_number_plain_si(x, text):
     """SCPI-99 vol. 1 ch. 7 decimal numeric data: plain or exponent form.  No suffixes:
-    'M' is milli to SCPI (NOTES.md), so base units with exponents only."""
+    'M' is milli to SCPI (IEEE 488.2 §7.7.3, from memory), so base units with exponents only."""
     s = format_number(x)
     assert s == text
     assert not any(c.isalpha() and c != "E" for c in s)

@@ -1,7 +1,7 @@
 """Transport through real pyvisa-py (``ResourceManager('@py')``) to a tiny SCPI server on
 127.0.0.1: every failure a bench shows must come out as one typed error.
 
-Behaviours of pyvisa 1.16 / pyvisa-py 0.8 relied on are the pitfalls listed in NOTES.md
+Behaviours of pyvisa 1.16.2 / pyvisa-py 0.8.1 relied on, each reproduced on loopback
 (SOCKET termination, late replies after a timeout, closed connection seen as a timeout,
 refused port seen on first write)."""
 
@@ -46,7 +46,7 @@ def test_open_identifies_and_clears_status(fake, rm):
 
 
 def test_timeout_is_typed_and_session_resynchronises(fake, rm):
-    """NOTES pitfall 4: after a timeout a late reply would be read by the next query;
+    """pyvisa-py 0.8.1 on a socket: after a timeout a late reply would be read by the next query;
     the session drains it and re-checks *IDN? so the next answer is the right one."""
 
     def late(_line: str) -> str:
@@ -124,8 +124,18 @@ def test_block_not_followed_by_lf_is_malformed(fake, rm):
         s.query_block_bytes("BLK?")
 
 
+def test_binary_bytes_for_a_text_query_are_a_malformed_reply(fake, rm):
+    """Bytes that are not ASCII where a text reply is due (a late binary block read by the
+    next query) are the project's typed MalformedReply, never a UnicodeDecodeError."""
+    fake.replies["TXT?"] = b"\xfe\xff\x00\x01\n"
+    with _session(fake, rm) as s, pytest.raises(MalformedReply, match="not text") as ei:
+        s.query("TXT?", retry=False)
+    assert ei.value.command == "TXT?"
+
+
 def test_server_closes_mid_block(fake, rm):
-    """NOTES pitfall 5: a closed connection shows as a timeout on read; with no answer to
+    """pyvisa-py 0.8.1 on a socket: a closed connection shows as a timeout on read; with no answer
+    to
     *IDN? afterwards it is a lost connection, not a slow instrument."""
     block = encode_values(list(range(100)) * 40, "int8") + b"\n"
     fake.replies["FETCh:ARRay:VOLTage? (@1)"] = Cut(block[:1000])
@@ -136,7 +146,7 @@ def test_server_closes_mid_block(fake, rm):
 
 
 def test_power_cycle_reconnects_and_replays_settings(fake, rm):
-    """NOTES pitfall 5: catch (VisaIOError, OSError), close, reopen, re-identify,
+    """pyvisa-py 0.8.1: a lost socket raises VisaIOError or OSError; close, reopen, re-identify,
     re-configure.  The restarted instrument must receive the settings again."""
     s = _session(fake, rm, retries=2)
     s.open()
@@ -184,7 +194,8 @@ def test_identity_changed_after_power_cycle_is_refused(fake, rm):
 
 
 def test_unreachable_port_is_connection_lost_naming_resource(rm):
-    """NOTES pitfall 5: opening a port nobody listens on succeeds; the first write raises
+    """pyvisa-py 0.8.1 on a socket: opening a port nobody listens on succeeds; the first write
+    raises
     ConnectionRefusedError.  Must fail fast (a hang check, not a speed target)."""
     resource = f"TCPIP::127.0.0.1::{free_port()}::SOCKET"
     s = Session(resource, GEN, rm=rm, timeout_ms=TMO_MS, retries=1)
@@ -197,7 +208,8 @@ def test_unreachable_port_is_connection_lost_naming_resource(rm):
 
 
 def test_two_threads_get_their_own_replies(fake, rm):
-    """NOTES pitfall 6: one lock per instrument around each write+read."""
+    """Two threads querying one pyvisa resource interleave their writes and reads (observed
+    with pyvisa 1.16.2): one lock per instrument around each write+read."""
     fake.replies.update({"A?": "alpha", "B?": "beta"})
     bad: list[str] = []
     with _session(fake, rm, timeout_ms=2000) as s:

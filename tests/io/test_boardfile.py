@@ -8,7 +8,7 @@ import pytest
 
 from harness.cli.main import main
 from harness.errors import BoardFileError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import design_channel, validate_board
 from tests.support.boards import CE_STAGE, board_text, write_board
 

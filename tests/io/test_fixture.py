@@ -7,8 +7,8 @@ from pathlib import Path
 import pytest
 
 from harness.errors import FixtureFileError, StationFileError
+from harness.io.board import load_board
 from harness.io.fixture import check_station, load_fixture
-from harness.io.toml import load_board
 
 REPO = Path(__file__).resolve().parents[2]
 BOARD = REPO / "limits" / "demo-twin-preamp.toml"

@@ -19,7 +19,8 @@ import pytest
 
 from harness.cli.main import main
 from harness.errors import BoardFileError, ValueParseError
-from harness.io.toml import TomlLines, load_board
+from harness.io.board import load_board
+from harness.io.toml import TomlLines
 from harness.values import parse_quantity, split_value_tolerance
 
 DEMO = Path(__file__).resolve().parents[2] / "limits" / "demo-twin-preamp.toml"

@@ -34,7 +34,8 @@ def test_ideal_quantiser_snr_matches_6_02n_plus_1_76(bits):
 
 
 def test_floor_8bit_full_and_half_scale():
-    """NOTES.md [calc] after ADI MT-001: an 8-bit scope's THD+N floor is about 0.32 % at full
+    """Kester, ADI tutorial MT-001 (ideal N-bit SNR = 6.02 N + 1.76 dB), computed with numpy: an
+    8-bit scope's THD+N floor is about 0.32 % at full
     scale over Nyquist and 6 dB worse at half scale.  The THD floor (9 coherent bins of
     2σ²/N each) is √(9·2/N) times the THD+N floor."""
     full = measurement_floor(8, 2.0, 1.0, 0.0, 4096, 10)

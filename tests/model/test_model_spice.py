@@ -14,7 +14,7 @@ import math
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import design_channel, large_signal_harmonics, operating_point
 from harness.model.spice import channel_netlist, parse_fourier, parse_values
 from tests.support.boards import make_board

@@ -13,7 +13,7 @@ from pathlib import Path
 import pytest
 
 from harness.errors import BoardFileError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model import compute_limits
 
 LIMITS = Path(__file__).resolve().parents[2] / "limits"

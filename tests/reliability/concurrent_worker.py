@@ -38,9 +38,9 @@ def _header(serial: str, worker: int) -> object:
 
 def main(argv: list[str]) -> int:
     from harness.instruments.bench import connect
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.station import load_station
-    from harness.io.toml import load_board
     from harness.model import compute_limits
     from harness.run.sequence import RunOptions, run_board
     from harness.store import MeasurementRow, SweepPointRow, open_store

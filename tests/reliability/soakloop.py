@@ -89,9 +89,9 @@ def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) ->
     import psutil
 
     from harness.instruments.bench import connect
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.station import load_station
-    from harness.io.toml import load_board
     from harness.model import compute_limits
     from harness.run.sequence import RunOptions, run_board
     from harness.store import open_store

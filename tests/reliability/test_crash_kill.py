@@ -34,7 +34,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.reliability.rig import (
     LiveRun,
     integrity,

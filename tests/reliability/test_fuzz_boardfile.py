@@ -18,8 +18,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from harness.errors import BoardFileError, StageproofError
-from harness.io.toml import load_board
-from harness.model.board import Board, board_from_dict
+from harness.io.board import board_from_dict, load_board
+from harness.model.board import Board
 
 LIMITS = Path(__file__).resolve().parents[2] / "limits"
 DEMOS = sorted(LIMITS.glob("demo-*.toml"))

@@ -26,6 +26,7 @@ from hypothesis import strategies as st
 
 from harness.errors import StageproofError
 from harness.instruments import scpi
+from harness.io.profiles import PREAMBLE_FIELDS
 from tests.reliability.rig import REPO, scaled, write_rig
 
 pytestmark = pytest.mark.reliability
@@ -114,7 +115,13 @@ def _typed_only(fn: Any, *args: Any, **kw: Any) -> Any:
 
 @pytest.mark.parametrize(
     "parser",
-    [scpi.parse_error_reply, scpi.parse_idn, scpi.parse_number, scpi.parse_bool],
+    [
+        scpi.parse_error_reply,
+        scpi.parse_idn,
+        scpi.parse_number,
+        scpi.parse_bool,
+        scpi.parse_ascii_values,
+    ],
     ids=lambda f: f.__name__,
 )
 @_SETTINGS
@@ -125,6 +132,36 @@ def test_scpi_text_replies(parser: Any, raw: str) -> None:
     out = _typed_only(parser, raw)
     if parser is scpi.parse_number and isinstance(out, float) and not math.isnan(out):
         assert math.isinf(out) or math.isfinite(out)
+
+
+_preamble_field = st.one_of(
+    st.floats(allow_nan=True, allow_infinity=True).map(repr),
+    st.integers(-(2**40), 2**40).map(str),
+    st.sampled_from(["", " ", "BYTE", "9.91E37", "-9.9E37", '"1E-3"', "1e", "0", "-0.0", "nan"]),
+    st.text(max_size=6),
+)
+
+
+@_SETTINGS
+@given(
+    fields=st.lists(_preamble_field, max_size=9).map(",".join)
+    | st.text(max_size=80)
+    | st.binary(max_size=60).map(lambda b: b.decode("latin-1")),
+    positions=st.dictionaries(
+        st.sampled_from(PREAMBLE_FIELDS),
+        st.integers(0, 10),
+        max_size=6,
+    ),
+)
+def test_preamble_parser(fields: str, positions: dict[str, int]) -> None:
+    """A preamble either parses into finite numbers for every named field (increments
+    positive, points a whole count) or raises the project's MalformedReply."""
+    out = _typed_only(scpi.parse_preamble, fields, positions)
+    if isinstance(out, dict):
+        assert set(out) == set(positions)
+        assert all(math.isfinite(v) for v in out.values())
+        for k in ("x_increment", "y_increment"):
+            assert k not in out or out[k] > 0
 
 
 _block_like = st.one_of(
@@ -221,8 +258,8 @@ def _load_or_error(path: Path, loader: Any, *args: Any) -> Any:
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_fixture_file(rig_files: Any, tmp_path: Path, data: st.DataObject) -> None:
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
-    from harness.io.toml import load_board
 
     board = load_board(rig_files.board)
     doc = tomllib.loads(rig_files.fixture.read_text())
@@ -242,13 +279,16 @@ def test_mutated_station_file(tmp_path: Path, data: st.DataObject) -> None:
     _load_or_error(path, load_station)
 
 
-@pytest.mark.parametrize("role", ["generator", "scope", "supply"])
+@pytest.mark.parametrize(
+    "role",
+    ["scpi-generator", "scpi-scope", "scpi-supply", "benchtop-generator", "benchtop-scope"],
+)
 @_SETTINGS
 @given(data=st.data())
 def test_mutated_profile(role: str, tmp_path: Path, data: st.DataObject) -> None:
     from harness.io.profiles import load_profile
 
-    src = REPO / "fixtures" / "instruments" / f"scpi-{role}.toml"
+    src = REPO / "fixtures" / "instruments" / f"{role}.toml"
     doc = tomllib.loads(src.read_text())
     path = tmp_path / f"p-{role}.toml"
     _write_toml(path, _mutated(doc, data))
@@ -259,10 +299,10 @@ def test_mutated_profile(role: str, tmp_path: Path, data: st.DataObject) -> None
 @_SETTINGS
 @given(raw=st.binary(max_size=300))
 def test_random_bytes_as_config(name: str, rig_files: Any, tmp_path: Path, raw: bytes) -> None:
+    from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.profiles import load_profile
     from harness.io.station import load_station
-    from harness.io.toml import load_board
 
     path = tmp_path / name
     path.write_bytes(raw)

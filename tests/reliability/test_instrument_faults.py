@@ -25,8 +25,8 @@ from typing import Any
 import pytest
 
 from harness.errors import RunAborted
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
-from harness.io.toml import load_board
 from harness.run.progress import NullProgress
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.faults import FAULT_KINDS

@@ -26,9 +26,9 @@ import pytest
 from harness.cli.main import main
 from harness.errors import BoardFileError, CaptureFileError, MalformedReply, MemoryBudgetError
 from harness.instruments.session import Session, resource_manager
+from harness.io.board import load_board
 from harness.io.capture import read_capture, write_capture_csv
 from harness.io.profiles import load_profile
-from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.model.board import MAX_SAMPLES
 from harness.model.limits import limits_memory_bytes

@@ -32,7 +32,7 @@ from typing import Any
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.reliability.rig import REPO, LiveRun, safe_vpp, started_bench, write_rig
 
 pytestmark = [pytest.mark.reliability, pytest.mark.wire]

@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 
 from harness.instruments.scpi import parse_idn
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.bench import ROLES, SimBench
 from harness.sim.server import MAX_LINE
 from tests.reliability.rig import scaled, write_rig

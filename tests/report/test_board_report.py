@@ -7,7 +7,8 @@ import re
 import numpy as np
 import pytest
 
-from harness.report import ReportError, load_board_report, write_board_report
+from harness.errors import ReportError
+from harness.report import load_board_report, write_board_report
 from harness.report.board import channel_plots
 from harness.report.spectrum import spectrum_view
 from harness.store import open_store

@@ -17,19 +17,9 @@ from pathlib import Path
 import pytest
 
 from harness.report import write_board_report, write_summary_report
+from tests.support.cdp import FLAGS
 
 pytestmark = pytest.mark.browser
-
-FLAGS = (
-    "--headless",
-    "--no-sandbox",
-    "--disable-gpu",
-    "--disable-quic",
-    "--no-first-run",
-    "--disable-background-networking",
-    "--disable-component-update",
-    "--disable-sync",
-)
 
 
 def _chromium(binary: str, tmp: Path, page: Path, *extra: str) -> subprocess.CompletedProcess:

@@ -2,7 +2,7 @@
 
 The fake board is an ideal inverting amplifier of gain G followed by a hard symmetric
 clipper at +-L volts: its THD-1 % threshold is known in closed form (describing function
-of a hard limiter, see NOTES.md "Clipping criteria differ": THD_F(2..10) reaches 1 % at
+of a hard limiter, Gelb & Vander Velde 1968, from memory: THD_F(2..10) reaches 1 % at
 drive A/L = 1.031, computed with numpy here rather than trusted).
 """
 

@@ -88,7 +88,7 @@ def test_policy_default_is_strict():
 
 
 def test_conformance_probability_worked_example():
-    """JCGM 106:2012 §7.3 formula; NOTES.md worked example [calc]: upper limit 1.0 %,
+    """JCGM 106:2012 §7.3 formula, example value computed with scipy.stats.norm: upper limit 1.0 %,
     y = 0.92 %, u = 0.05 % -> p_c = 94.5 %."""
     assert conformance_probability(0.92, None, 1.0, 0.05) == pytest.approx(0.9452, abs=5e-4)
 

@@ -53,7 +53,8 @@ def _run(tmp_path, bench, limits, board=None, fixture=None, options=None, progre
 
 
 def test_hard_clip_reference_value():
-    """NOTES.md [calc]: a hard symmetric clipper reaches THD_F(2-10) = 1 % at drive
+    """Describing function of a hard limiter (Gelb & Vander Velde, 1968, from memory), value
+    computed with numpy: a hard symmetric clipper reaches THD_F(2-10) = 1 % at drive
     A/L = 1.031; the fakes' numpy reference reproduces it."""
     thr = hard_clip_threshold_vrms(1.0, 1.0) * math.sqrt(2)
     assert thr == pytest.approx(1.031, abs=0.002)

@@ -11,8 +11,8 @@ from __future__ import annotations
 import pytest
 
 from harness.errors import BoardFileError
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
-from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.model.design import MAX_SETTLE_S
 from harness.run.bench_ops import settle_time_s

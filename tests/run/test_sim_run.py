@@ -2,8 +2,8 @@
 
 External checks: the faults a technician expects (common practice: an open emitter
 bypass capacitor leaves the unbypassed emitter resistance in the gain, A_v ≈ R_C/R_E';
-a drifted bias resistor moves the operating point and limits one half-cycle first, see
-NOTES.md "Amplifier facts"), and the clipping threshold of the simulated board computed
+a drifted bias resistor moves the operating point and limits one half-cycle first), and the
+clipping threshold of the simulated board computed
 directly from its physics on a fine level grid with the measure layer.
 """
 
@@ -18,7 +18,7 @@ import pytest
 from harness.io.fixture import load_fixture
 from harness.run.sequence import RunOptions, run_board
 from harness.store import open_store
-from tests.support.bench import FIXTURE_FILE, sim_bench
+from tests.support.bench import FIXTURE_FILE, ends_off, measurement, sim_bench
 
 pytestmark = pytest.mark.wire
 
@@ -45,25 +45,33 @@ def _run(board, limits, tmp_path, faults=(), options=FAST):
     return res, sweep, log, max_on
 
 
-def _row(res, ch, name):
-    return next(m for m in res.measurements if m.channel == ch and m.name == name)
-
-
-def _ends_off(log) -> bool:
-    outs = [e for e in log if e.what in ("output", "reset")]
-    return not outs or outs[-1].what == "reset" or outs[-1].value == 0.0
+@pytest.fixture(scope="module")
+def good_folder(tmp_path_factory):
+    return tmp_path_factory.mktemp("good")
 
 
 @pytest.fixture(scope="module")
-def good(board, limits, tmp_path_factory):
-    return _run(board, limits, tmp_path_factory.mktemp("good"))
+def good(board, limits, good_folder):
+    return _run(board, limits, good_folder)
+
+
+def test_run_keeps_the_board_file_text(good, board, good_folder):
+    """The stored board text is the exact file the limits came from: its SHA-256
+    (FIPS 180-4, Python's hashlib) is the board's digest."""
+    import hashlib
+
+    res = good[0]
+    with open_store(good_folder / "r.db", readonly=True) as store:
+        text = store.get_run(res.run_id).board_text
+    assert text is not None
+    assert hashlib.sha256(text.encode("utf-8")).hexdigest() == board.digest
 
 
 def test_good_board_passes(good, board):
     res, _sweep, log, max_on = good
     assert res.verdict == "PASS", [(m.channel, m.name, m.decision) for m in res.failing()]
     assert res.status == "complete"
-    assert _ends_off(log)
+    assert ends_off(log)
     safe_vpp = board.conditions.safe_input_vrms * 2 * math.sqrt(2)
     assert max_on <= safe_vpp * (1 + 1e-6)
     assert res.acquisitions <= 12
@@ -78,7 +86,7 @@ def test_threshold_agrees_with_physics(good, board):
     from harness.sim.physics import BoardSim
 
     res = good[0]
-    found = _row(res, "A", "clip_input").value
+    found = measurement(res, "A", "clip_input").value
     sim = BoardSim(board)
     plan = plan_coherent(board.conditions.frequency_hz, [2e5], [8192])
     t = np.arange(plan.n_samples) / plan.sample_rate_hz
@@ -107,10 +115,12 @@ def test_open_bypass_capacitor_lowers_gain(board, limits, tmp_path):
     ≈ 16 dB less in the simple formula, less with the follower's loading; B is untouched."""
     res, *_ = _run(board, limits, tmp_path, faults=("C102:open",), options=FAULT)
     assert res.verdict == "FAIL"
-    ga = _row(res, "A", "gain")
+    ga = measurement(res, "A", "gain")
     assert ga.decision == "fail" and ga.value < ga.low - 3.0
-    assert _row(res, "B", "gain").decision == "pass"
-    assert res.channels["B"].verdict in ("PASS", "FAIL")  # B's verdict is its own
+    assert measurement(res, "B", "gain").decision == "pass"
+    # A's fault leaves B alone: its own verdict, drawn from its own rows only, is a pass
+    assert res.channels["B"].verdict == "PASS"
+    assert res.channels["A"].verdict == "FAIL"
     assert "gain (fail)" in res.channels["A"].failing
 
 
@@ -119,11 +129,11 @@ def test_drifted_bias_resistor_lowers_threshold_on_one_side(board, limits, tmp_p
     threshold is low on B, every clipped record of B limits on the same half-cycle, and A
     still passes its threshold."""
     res, sweep, log, _ = _run(board, limits, tmp_path, faults=("R201:drift=1.5",), options=FAULT)
-    cb = _row(res, "B", "clip_input")
+    cb = measurement(res, "B", "clip_input")
     assert cb.decision == "fail" and cb.value < cb.low
-    assert _row(res, "A", "clip_input").decision == "pass"
+    assert measurement(res, "A", "clip_input").decision == "pass"
     sides = {p.clip_side for p in sweep if p.channel == "B" and p.clipped}
     assert len(sides) == 1 and None not in sides
-    side_row = _row(res, "B", "clip_side")
+    side_row = measurement(res, "B", "clip_side")
     assert json.loads(side_row.detail_json)["side"] in ("positive", "negative")
-    assert _ends_off(log)
+    assert ends_off(log)

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from harness.errors import FaultSpecError, StageproofError
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.physics import BoardSim, Fault, component_refs, parse_fault
 
 REPO = Path(__file__).resolve().parents[2]
@@ -42,8 +42,9 @@ def _stage(board, channel, kind):
 
 def test_open_bypass_lowers_gain(twin, good):
     """Removing the emitter bypass puts R_E,bypassed in the signal path: the gain falls
-    towards (R_C∥R_L')/(r_e + R_E + R_E,byp) (voltage-divider CE stage, NOTES; common
-    practice).  Both fault spellings (stage and designator) must give the same board."""
+    towards (R_C∥R_L')/(r_e + R_E + R_E,byp) (voltage-divider CE stage,
+    Boylestad & Nashelsky §5.6; common practice).  Both fault spellings (stage and designator) must
+    give the same board."""
     ce = _stage(twin, "A", "common_emitter")
     g0 = _gain(good.respond("A", 1e-3, 1000.0))
     by_stage = _gain(BoardSim(twin, ["A.gain:open_bypass"]).respond("A", 1e-3, 1000.0))
@@ -63,10 +64,11 @@ def _half_swings(r) -> tuple[float, float]:
 
 def test_drifted_bias_resistor_moves_bias_and_one_clipping_side(twin, good):
     """R1 (supply to base) drifted up by 30 %: V_B and I_C fall, the collector rises towards
-    the rail (Thevenin bias formula, NOTES).  The stage then meets cutoff sooner: under a drive
+    the rail (Thevenin bias formula, Boylestad & Nashelsky §4 voltage-divider bias).  The stage
+    then meets cutoff sooner: under a drive
     that clips, the output's positive half-cycle (follower of the collector going up) shrinks
-    a lot while the negative one does not (NOTES: a drifted bias resistor moves the clipping
-    threshold on one side only)."""
+    a lot while the negative one does not (common practice: a drifted bias resistor moves the
+    clipping threshold on one side only)."""
     ce = _stage(twin, "A", "common_emitter")
     bad = BoardSim(twin, [f"{ce.r1.ref}:drift=1.3"])
     op_g, op_b = good.operating_point("A"), bad.operating_point("A")
@@ -80,7 +82,7 @@ def test_drifted_bias_resistor_moves_bias_and_one_clipping_side(twin, good):
 
 def test_low_beta_shifts_bias_as_the_divider_formula_says(twin, good):
     """β = 40: I_B = (V_TH − V_BE)/(R_TH + (β+1)R_E) (Boylestad & Nashelsky §4 voltage-divider
-    bias, exact analysis; NOTES) with V_BE read from the simulated stage; the simulated
+    bias, exact analysis) with V_BE read from the simulated stage; the simulated
     collector voltage agrees within 1 %, and is well above the good board's."""
     ce = _stage(twin, "A", "common_emitter")
     bad = BoardSim(twin, ["A.gain:low_beta=40"])

@@ -14,8 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness.io.toml import load_board
-from harness.model.board import board_from_dict
+from harness.io.board import board_from_dict, load_board
 from harness.sim.physics import BETA_R_DEFAULT, BoardSim
 
 _spec = importlib.util.spec_from_file_location(
@@ -129,7 +128,7 @@ def _last_period(data: np.ndarray, col: int) -> tuple[np.ndarray, np.ndarray]:
 
 def test_saturation_shape_matches_ngspice(board, ngspice_tran):
     """Driven into saturation, the collector's low half-cycle bends back (Ebers-Moll: with both
-    junctions forward the collector follows the emitter, which follows the base drive; NOTES,
+    junctions forward the collector follows the emitter, which follows the base drive;
     common practice).  In both simulators: (1) at the input's positive peak (t = T/4, the
     deepest drive) the collector is above its minimum; (2) that level rises with the drive;
     (3) the collector's minimum agrees within 15 mV (sampling of a sharp corner at 512
@@ -186,7 +185,7 @@ name = "X"
 def test_saturated_collector_follows_drive_direct_coupled(spice, tmp_path):
     """A CE stage with no coupling or bypass capacitor (base driven directly at its bias
     voltage, so no bias shift).  In saturation the collector sits at V_E + V_CE and V_E
-    follows the base (NOTES, common practice; Ebers-Moll with both junctions forward), so:
+    follows the base (common practice; Ebers-Moll with both junctions forward), so:
     the collector at the deepest drive (t = T/4) RISES with the drive, by a good fraction of
     the extra base drive, while its minimum stays at the saturation-onset level (it is
     reached on the flanks, where saturation begins, at the same base voltage for any

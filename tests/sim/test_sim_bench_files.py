@@ -19,16 +19,18 @@ from pathlib import Path
 import pytest
 
 from harness.errors import FaultSpecError
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.profiles import load_profile
 from harness.io.station import load_station
-from harness.io.toml import load_board, read_toml
+from harness.io.toml import read_toml
 from harness.sim.bench import ROLES, SimBench
 from harness.sim.faults import InstrumentFault, parse_instrument_fault
 
 REPO = Path(__file__).resolve().parents[2]
 TWIN = REPO / "limits" / "demo-twin-preamp.toml"
 OPAMP = REPO / "limits" / "demo-opamp-line.toml"
+FIXTURE = REPO / "fixtures" / "fixture-twin-preamp.toml"
 
 #: Plausible values for every placeholder of the default profiles.
 VALUES = {
@@ -67,6 +69,47 @@ def test_every_default_profile_command_is_accepted(role: str) -> None:
         text = profile.render(op, **VALUES)
         dev.handle(text.encode())
         assert dev.handle(b"SYST:ERR?") == b'0,"No error"\n', (op, text)
+
+
+@pytest.mark.parametrize("role", ["generator", "scope"])
+def test_every_benchtop_profile_command_is_accepted(role: str) -> None:
+    """Each operation of fixtures/instruments/benchtop-<role>.toml runs on the benchtop
+    dialect's instrument without an error."""
+    profile = load_profile(f"benchtop-{role}")
+    dev = SimBench(load_board(TWIN), dialect="benchtop").devices[role]
+    values = {
+        **VALUES,
+        "load": 50,
+        "amplitude": -10,
+        "scale_v_div": 0.2,
+        "position_div": 0,
+        "time_s_div": 1e-3,
+        "points": 10000,
+        "source": "VIEW1",
+        "format": "BYTE",
+        "start": 1,
+        "stop": 5000,
+        "count": 5000,
+    }
+    for op in profile.commands:
+        if op == "fetch":
+            dev.handle(b"VIEW2:ENABle ON;:RUN:SINGle")
+        text = profile.render(op, **values)
+        dev.handle(text.encode())
+        assert dev.handle(b"SYST:ERR?") == b'0,"No error"\n', (op, text)
+
+
+def test_benchtop_station_names_its_profiles(tmp_path: Path) -> None:
+    with SimBench(load_board(TWIN), dialect="benchtop") as bench:
+        station = load_station(bench.write_station(tmp_path / "st.toml"))
+    assert station.instruments["scope"].profile.name == "benchtop-scope"
+    assert station.instruments["generator"].profile.name == "benchtop-generator"
+    assert station.instruments["dmm"].profile.name == "scpi-dmm"
+
+
+def test_unknown_dialect_is_a_typed_error() -> None:
+    with pytest.raises(FaultSpecError, match="benchtop"):
+        SimBench(load_board(TWIN), dialect="vintage")
 
 
 @pytest.mark.parametrize("path", [TWIN, OPAMP])
@@ -213,3 +256,66 @@ def test_cli_bad_fault_is_one_line_exit_2(tmp_path: Path) -> None:
     )
     assert proc.returncode == 2
     assert proc.stderr.startswith("stageproof: error:") and "Traceback" not in proc.stderr
+
+
+def test_a_four_channel_board_gets_a_five_input_scope_profile(tmp_path: Path) -> None:
+    """Four channels and the common input need five scope inputs: the station names a
+    profile written beside it, the shipped default with only its name and inputs changed."""
+    from tests.support.boards import four_channel_board_text
+
+    path = tmp_path / "four.toml"
+    path.write_text(four_channel_board_text())
+    board = load_board(path)
+    with SimBench(board) as bench:
+        station = load_station(bench.write_station(tmp_path / "station.toml"))
+        load_fixture(bench.write_fixture(tmp_path / "fixture.toml"), board, scope_inputs=5)
+    scope = station.get("scope").profile
+    default = load_profile("scpi-scope")
+    assert Path(scope.path) == (tmp_path / "scpi-scope-5.toml").resolve()
+    assert scope.name == "scpi-scope-5"
+    assert scope.settings["inputs"] == 5
+    assert {k: v for k, v in scope.settings.items() if k != "inputs"} == {
+        k: v for k, v in default.settings.items() if k != "inputs"
+    }
+    assert dict(scope.commands) == dict(default.commands)
+
+
+@pytest.mark.parametrize(("faults", "status"), [((), 0), (("C102:open",), 1)])
+def test_cli_serve_benchtop_then_run_on_the_files_it_writes(tmp_path: Path, faults, status):
+    """``sim serve --dialect benchtop`` and ``run`` on the station file it writes: a good
+    board passes (exit 0), one with an open emitter bypass fails (exit 1).  The run uses the
+    repository's fixture: the written one also routes the buffer collectors (at the 12 V
+    rail), which the simulated DMM's default range reads as an overload on either dialect."""
+    from harness.cli.main import main
+
+    station, fixture = tmp_path / "st.toml", tmp_path / "fx.toml"
+    argv = [sys.executable, "-m", "harness.cli.main", "sim", "serve", str(TWIN), "--dialect",
+            "benchtop", "--station-out", str(station), "--fixture-out", str(fixture)]  # fmt: skip
+    for f in faults:
+        argv += ["--fault", f]
+    proc = subprocess.Popen(
+        argv,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        cwd=REPO,
+        env={**os.environ, "PYTHONUNBUFFERED": "1"},
+    )
+    try:
+        assert proc.stdout is not None
+        head = ""
+        for line in proc.stdout:
+            head += line
+            if line.startswith("serving"):
+                break
+        assert "benchtop dialect" in head
+        assert 'profile = "benchtop-scope"' in station.read_text()
+        load_fixture(fixture, load_board(TWIN))
+        code = main(
+            ["run", "--station", str(station), "--fixture", str(FIXTURE), "--board", str(TWIN),
+             "--serial", "SN-SERVE", "--db", str(tmp_path / "r.db"), "--settle-wait", "0"]
+        )  # fmt: skip
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        proc.communicate(timeout=10)
+    assert code == status

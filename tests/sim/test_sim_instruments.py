@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from harness.instruments.scpi import parse_block
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.bench import SimBench
 from harness.sim.physics import BoardSim
 
@@ -131,7 +131,8 @@ def test_noise_floor_of_an_unconnected_input(bench: SimBench) -> None:
 
 
 def test_adc_nonlinearity_makes_about_minus_60_dbc_at_full_scale(board) -> None:
-    """Coherent record (fs 100 kS/s, N 4096, J 41 -> 1000.9765625 Hz, NOTES.md) of a
+    """Coherent record (fs 100 kS/s, N 4096, J 41 -> 1000.9765625 Hz, coherent
+    sampling after Maxim/ADI application note 1040) of a
     near-full-scale input: HD2 and HD3 from numpy.fft.rfft bins 82 and 123 sit near the
     configured -60 dBc (HD2 scales with amplitude: -60 dB + 20 log10(A/FS))."""
     bench = SimBench(board)

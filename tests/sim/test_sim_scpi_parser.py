@@ -5,7 +5,7 @@ suffixes, the header path rule of §6.2.4) and ch. 7 (parameters, MINimum/MAXimu
 IEEE 488.2-1992 ch. 7 (decimal numeric data and suffix multipliers, Table 7-1), §6.1.6
 (a parser error discards the rest of the message), §6.3.2.2 / §6.3.2.3 (query
 INTERRUPTED / UNTERMINATED), §11.5.1 (event status bits); SCPI-99 vol. 2 ch. 21 (error
-queue, codes and texts).  Clause numbers are from memory where not stated in NOTES.md.
+queue, codes and texts).  Clause numbers are from memory unless a test says otherwise.
 """
 
 from __future__ import annotations
@@ -138,7 +138,7 @@ def test_header_forms_accepted(toy: Toy, message: str, expected: float) -> None:
 )
 def test_neither_long_nor_short_form_is_113(toy: Toy, message: str) -> None:
     """Only the long or the short form is a mnemonic: FREQU is -113 Undefined header
-    (SCPI-99 vol. 1 §6.2.1, NOTES.md)."""
+    (SCPI-99 vol. 1 §6.2.1, from memory for the clause)."""
     toy.handle(message)
     assert errors(toy) == [-113]
     assert toy.freq[1] == 1000.0
@@ -184,7 +184,7 @@ def test_queries_in_one_message_answer_in_one_line(toy: Toy) -> None:
 @pytest.mark.parametrize(
     ("token", "unit", "expected"),
     [
-        # IEEE 488.2 §7.7.3 Table 7-1 (from memory); MHZ / MOHM exceptions per NOTES.md
+        # IEEE 488.2 §7.7.3 Table 7-1 (from memory), with its MHZ / MOHM exceptions to M = milli
         ("100 MV", "V", 0.1),
         ("100mV", "V", 0.1),
         ("1.5 V", "V", 1.5),
@@ -273,7 +273,8 @@ def test_failed_query_still_answers_so_clients_do_not_hang(toy: Toy) -> None:
 
 def test_error_queue_fifo_texts_overflow_and_cls(toy: Toy) -> None:
     """FIFO order, ``<code>,"<text>"``, ``0,"No error"`` when empty; when full the newest
-    entry becomes -350 Queue overflow; *CLS empties it (SCPI-99 vol. 2 §21.8, NOTES.md)."""
+    entry becomes -350 Queue overflow; *CLS empties it (SCPI-99 vol. 2 §21.8, from memory for the
+    clause)."""
     assert toy.handle("SYST:ERR?") == b'0,"No error"\n'
     toy.handle("FREQU 1")
     toy.handle("FREQ 1,2")

@@ -1,8 +1,9 @@
 """The simulated bench over loopback sockets: pyvisa-py as the client, raw SCPI strings.
 
 Proves the wire protocol with a client outside the project: pyvisa 1.16 /
-pyvisa-py 0.8 (``ResourceManager('@py')``, SOCKET resources with LF terminations, NOTES.md
-pitfall 1), ``query_binary_values`` reading IEEE 488.2 §8.7.9 definite-length blocks.
+pyvisa-py 0.8 (``ResourceManager('@py')``, SOCKET resources with LF read and write
+terminations, which pyvisa's documentation on termination characters requires for raw sockets),
+``query_binary_values`` reading IEEE 488.2 §8.7.9 definite-length blocks.
 Robustness: garbage, an oversized line, clients vanishing mid-command and mid-reply, 50
 reconnects in a row and power cycles must never crash or wedge a server.
 """
@@ -19,7 +20,7 @@ import numpy as np
 import pytest
 import pyvisa
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire
@@ -36,9 +37,11 @@ def bench():
 
 @pytest.fixture(scope="module")
 def rm():
-    manager = pyvisa.ResourceManager("@py")
-    yield manager
-    manager.close()
+    """The process's one pyvisa-py manager: pyvisa shares its session between managers of
+    one library, so closing a manager here would close every other test's resources."""
+    from harness.instruments.session import resource_manager
+
+    return resource_manager("@py")
 
 
 def open_res(rm, resource: str):
@@ -70,7 +73,8 @@ def idn_ok(port: int) -> bool:
 
 def test_pyvisa_drives_the_whole_bench_with_raw_scpi(bench: SimBench, rm) -> None:
     """Generator, supply and scope driven only through pyvisa-py with SCPI text; the
-    waveform read with query_binary_values (datatype 'b', big-endian: NOTES.md pitfall 2)."""
+    waveform read with query_binary_values (datatype 'b', is_big_endian=True: pyvisa's
+    query_binary_values assumes little-endian, SCPI-99 FORMat:BORDer NORMal is big-endian)."""
     res = bench.resources
     gen, scope, psu = (open_res(rm, res[r]) for r in ("generator", "scope", "supply"))
     try:
@@ -104,7 +108,7 @@ def test_pyvisa_drives_the_whole_bench_with_raw_scpi(bench: SimBench, rm) -> Non
         assert vin.size == vout.size == 4096
         spec_in = np.abs(np.fft.rfft(vin * 0.2 / 256))
         spec_out = np.abs(np.fft.rfft(vout * 4 / 256))
-        gain = spec_out[41] / spec_in[41]  # coherent: J = 41 (NOTES.md check value)
+        gain = spec_out[41] / spec_in[41]  # coherent: J = 41 (Maxim/ADI app note 1040)
         assert 5 < gain < 15
         scope.write("FORMat:DATA REAL,32")
         volts = scope.query_binary_values(
@@ -199,7 +203,8 @@ def test_many_clients_at_once(bench: SimBench) -> None:
 
 def test_no_reply_fault_then_recovery_via_pyvisa(bench: SimBench, rm) -> None:
     """A query that is never answered times out in pyvisa; the next query works (the
-    lost reply does not come late: NOTES.md pitfall 4)."""
+    lost reply does not come late; pyvisa documents timeouts in milliseconds and a late reply
+    as read by the next query, observed with pyvisa 1.16.2 / pyvisa-py 0.8.1)."""
     inst = open_res(rm, bench.resources["dmm"])
     inst.timeout = 300
     try:

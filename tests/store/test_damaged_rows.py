@@ -63,7 +63,8 @@ def _one_line(capsys, argv) -> str:
         ("pid", ["results"]),
         ("retest", ["results", "--serial", "SN-DMG-1"]),
         ("detail_json", ["results", "--run", "1"]),
-        ("pid", ["report", "summary"]),
+        # the summary reads only the columns it uses (pid is not one); the export reads all
+        ("pid", ["report", "export", "--format", "csv", "-o", "out"]),
         ("started_at", ["report", "summary"]),
     ],
 )

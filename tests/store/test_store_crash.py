@@ -25,6 +25,7 @@ from store_worker import RECORD_LEN, header, measurement
 
 from harness.store import open_store
 from harness.store.owner import Owner, owner_alive, start_token
+from tests.support.db import is_pg, reap
 
 WORKER = Path(__file__).with_name("store_worker.py")
 needs_proc = pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")
@@ -40,13 +41,14 @@ def _spawn(*args: str) -> subprocess.Popen[str]:
     )
 
 
-@needs_proc
-def test_sigkill_mid_write_loses_nothing_and_is_recovered(tmp_path: Path) -> None:
-    db = tmp_path / "crash.db"
+def test_sigkill_mid_write_loses_nothing_and_is_recovered(store_url: str) -> None:
+    """On SQLite and on PostgreSQL: the killed station's lock goes with it (flock(2); the
+    server ends the session and its advisory locks), so its run is found aborted."""
+    db = store_url
     rng = random.Random(20240501)
     kills: list[tuple[int | None, int]] = []  # (run id, commits the child reported)
     for k in range(10):
-        child = _spawn("crash", str(db), "SN-CRASH")
+        child = _spawn("crash", db, "SN-CRASH")
         assert child.stdout is not None
         run_id: int | None = None
         reported = 0
@@ -74,11 +76,12 @@ def test_sigkill_mid_write_loses_nothing_and_is_recovered(tmp_path: Path) -> Non
             child.stdin.close()
         kills.append((run_id, reported))
 
-    conn = sqlite3.connect(db)
-    try:
-        assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
-    finally:
-        conn.close()
+    if not is_pg(db):
+        conn = sqlite3.connect(db)
+        try:
+            assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+        finally:
+            conn.close()
 
     with open_store(db) as store:
         running = {r.run_id for r in store.list_runs(status="running")}
@@ -136,24 +139,21 @@ def test_live_process_run_is_not_marked_aborted(tmp_path: Path) -> None:
                 3,
             )
     finally:
-        if child.poll() is None:
-            child.kill()
-            child.wait()
-        for stream in (child.stdin, child.stdout, child.stderr):
-            if stream:
-                stream.close()
+        reap(child)
 
 
 @needs_proc
 def test_reused_pid_and_foreign_host(tmp_path: Path) -> None:
-    """A live pid with another start token is not the owner (pid reuse after a reboot);
-    a run owned on another host is left alone unless its heartbeat is stale."""
+    """Runs written by schema version 1 (no run lock, token 'v1:...') keep the pid rule: a
+    live pid with another start token is not the owner (pid reuse after a reboot); a run
+    owned on another host is left alone unless its heartbeat is stale."""
     db = tmp_path / "owner.db"
     with open_store(db) as store:
         reused = store.begin_run(header("SN-R"))
         foreign = store.begin_run(header("SN-F"))
         raw = sqlite3.connect(db)
         try:
+            raw.execute("UPDATE runs SET run_token = 'v1:' || run_id")
             raw.execute("UPDATE runs SET start_token = 'boot:1' WHERE run_id = ?", (reused,))
             raw.execute("UPDATE runs SET host = 'station-elsewhere' WHERE run_id = ?", (foreign,))
             raw.commit()
@@ -208,3 +208,69 @@ def test_four_processes_share_one_file(tmp_path: Path) -> None:
         assert len(by_serial) == 25
         assert all(sorted(v) == [0, 1, 2, 3] for v in by_serial.values())
         assert {r.station for r in runs} == {f"station-{w}" for w in range(4)}
+
+
+def test_eight_stations_on_one_postgresql_server(pg_url: str) -> None:
+    """8 station processes x 12 runs x 8 measurements at once on one server, every serial
+    tested by all eight: every run and row present, no run left running, and per serial
+    the retest numbers exactly 0..7 (the unique (serial, part, retest) index settles each
+    race; the loser takes the next number).  The eight race to create the schema too."""
+    workers = [_spawn("load", pg_url, str(w), "12", "8") for w in range(8)]
+    for w in workers:
+        out, err = w.communicate(timeout=300)
+        assert w.returncode == 0, err[-2000:]
+        assert out.strip() == "ok"
+    with open_store(pg_url, readonly=True) as store:
+        runs = store.list_runs()
+        assert len(runs) == 96
+        assert not [r for r in runs if r.status != "complete"]
+        for r in runs:
+            assert [m.value for m in store.measurements(r.run_id)] == [float(i) for i in range(8)]
+        by_serial: dict[str, list[int]] = {}
+        for r in runs:
+            by_serial.setdefault(r.serial, []).append(r.retest)
+        assert len(by_serial) == 12
+        assert all(sorted(v) == list(range(8)) for v in by_serial.values())
+        assert {r.station for r in runs} == {f"station-{w}" for w in range(8)}
+
+
+def test_two_stations_killed_and_restarted_at_random(pg_url: str) -> None:
+    """Two stations test one serial on one server and are SIGKILLed and restarted at
+    random, five times: nothing reported stored is lost, retest numbers stay 0..n-1,
+    and every killed run is found aborted by the next station."""
+    rng = random.Random(20240502)
+    reported: dict[int, int] = {}
+    for _ in range(5):
+        kids = [_spawn("crash", pg_url, "SN-TWO") for _ in range(2)]
+        first: list[str] = []
+        for child in kids:  # both writing (a kill during start-up is the test above)
+            assert child.stdout is not None
+            first.append(child.stdout.readline())
+        time.sleep(rng.uniform(0.0, 0.3))
+        for child in kids:
+            child.send_signal(signal.SIGKILL)
+        for child, head in zip(kids, first, strict=True):
+            child.wait(timeout=10)
+            assert child.stdout is not None and child.stderr is not None
+            run_id, count = None, 0
+            for line in [head, *child.stdout.read().splitlines()]:
+                if line.startswith("run "):
+                    run_id = int(line.split()[1])
+                elif line.strip():
+                    count = int(line)
+            if run_id is not None:
+                reported[run_id] = count
+            for s in (child.stdin, child.stdout, child.stderr):
+                if s:
+                    s.close()
+        with open_store(pg_url) as store:  # the next station starts: recovers first
+            store.recover_aborted()
+    assert reported
+    with open_store(pg_url, readonly=True) as store:
+        runs = store.list_runs(serial="SN-TWO")
+        assert sorted(r.retest for r in runs) == list(range(len(runs)))
+        assert all(r.status == "aborted" for r in runs)
+        for run_id, count in reported.items():
+            values = [m.value for m in store.measurements(run_id)]
+            assert len(values) in (count, count + 1)
+            assert values == [float(i) for i in range(len(values))]

@@ -22,11 +22,13 @@ def fast_station(path: Path, timeout_ms: int = 1000) -> Path:
 
 
 @contextmanager
-def sim_bench(board, tmp_path: Path, faults=(), timeout_ms: int = 2000) -> Iterator:
+def sim_bench(
+    board, tmp_path: Path, faults=(), timeout_ms: int = 2000, dialect: str = "default"
+) -> Iterator:
     """A started SimBench (127.0.0.1, ephemeral ports, no latency) and its station file."""
     from harness.sim.bench import SimBench
 
-    with SimBench(board, faults=faults, latency=False, host="127.0.0.1") as bench:
+    with SimBench(board, faults=faults, latency=False, host="127.0.0.1", dialect=dialect) as bench:
         station = fast_station(bench.write_station(tmp_path / "station.toml"), timeout_ms)
         yield bench, station
 
@@ -41,3 +43,14 @@ def free_port() -> int:
 def connections(bench) -> dict[str, int]:
     """TCP connections each simulated instrument has accepted so far."""
     return {role: srv.connections_served for role, srv in bench.servers.items()}
+
+
+def measurement(res, channel: str, name: str):
+    """The run result's measurement row of ``name`` on ``channel``."""
+    return next(m for m in res.measurements if m.channel == channel and m.name == name)
+
+
+def ends_off(log) -> bool:
+    """The simulated generator's last output event is off (or a reset, which is off)."""
+    outs = [e for e in log if e.what in ("output", "reset")]
+    return not outs or outs[-1].what == "reset" or outs[-1].value == 0.0

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model.board import Board
 
 HEAD = """
@@ -103,3 +103,21 @@ def write_board(tmp_path: Path, text: str, name: str = "board.toml") -> Path:
 
 def make_board(tmp_path: Path, **kw) -> Board:
     return load_board(write_board(tmp_path, board_text(**kw)))
+
+
+def four_channel_board_text() -> str:
+    """The demo twin preamp with its two channels fitted twice (channels C and D copy A and
+    B with their own designators and connectors): a board whose scope needs five inputs."""
+    text = (Path(__file__).resolve().parents[2] / "limits" / "demo-twin-preamp.toml").read_text()
+    head, sep, channels = text.partition("[[channel]]")
+    copy = (
+        channels.replace('name = "A"', 'name = "C"')
+        .replace('name = "B"', 'name = "D"')
+        .replace('ref = "R1', 'ref = "R3')
+        .replace('ref = "C1', 'ref = "C3')
+        .replace('ref = "R2', 'ref = "R4')
+        .replace('ref = "C2', 'ref = "C4')
+    )
+    for old, new in (("J1", "J5"), ("J2", "J6"), ("J3", "J7"), ("J4", "J8")):
+        copy = copy.replace(f'"{old}"', f'"{new}"')
+    return head + sep + channels.rstrip() + "\n\n" + sep + copy

@@ -1,5 +1,5 @@
-"""Stepped-level analysis: THD and gain-compression curves, the clipping threshold and the
-search the sequencer runs to find it.
+"""Bracketed level search: THD and gain-compression curves over drive levels, the clipping
+threshold and the bracketing search the sequencer runs to find it.
 
 Criteria differ by about 2 dB on a hard clipper (THD 1 % at +0.27 dB over the clip level,
 1 dB compression at +2 dB), so every result names its criterion.  Crossings are
@@ -14,7 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Literal
+from typing import Literal, cast
 
 import numpy as np
 
@@ -46,11 +46,22 @@ class ClipCriterion:
         return f"{self.db:g} dB gain compression"
 
 
+#: Harmonics 2..10 in THD: the reading's noise floor is the root-sum-square of their 9 bins'
+#: noise, two quadrature components each; only the component along the distortion phasor
+#: moves the reading, so one reading's standard uncertainty is the floor over sqrt(18)
+#: (noise projected on a phasor, common practice).
+FLOOR_TO_READING_U = 1.0 / math.sqrt(18.0)
+
+
 @dataclass(frozen=True)
 class StepPoint:
+    """One level of the search.  ``thd_u_percent``: standard uncertainty of the THD reading
+    from the record's noise (0 when unknown)."""
+
     level_vrms: float
     thd_percent: float
     gain_db: float
+    thd_u_percent: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -65,6 +76,7 @@ class Threshold:
     criterion: ClipCriterion
     below_vrms: float | None = None
     above_vrms: float | None = None
+    noise_u_db: float = 0.0  # the part of uncertainty_db the THD readings' noise makes
 
 
 @dataclass(frozen=True)
@@ -75,6 +87,7 @@ class SweepCurves:
     gain_db: np.ndarray
     compression_db: np.ndarray
     small_signal_gain_db: float
+    thd_u_percent: np.ndarray | None = None
 
 
 def _as_points(points: Sequence[object]) -> list[StepPoint]:
@@ -83,15 +96,26 @@ def _as_points(points: Sequence[object]) -> list[StepPoint]:
         if isinstance(p, StepPoint):
             sp = p
         elif hasattr(p, "thd_percent") and hasattr(p, "gain_db") and hasattr(p, "input_vrms"):
-            sp = StepPoint(float(p.input_vrms), p.thd_percent, p.gain_db)  # a RecordAnalysis
+            floor = getattr(p, "floor", None)  # a RecordAnalysis: its noise floor sets u
+            u = FLOOR_TO_READING_U * float(getattr(floor, "thd_percent", 0.0) or 0.0)
+            sp = StepPoint(float(p.input_vrms), p.thd_percent, p.gain_db, u)
         else:
             try:
-                lv, thd, g = p  # type: ignore[misc]
+                lv, thd, g, *rest = cast("tuple[float, float | None, float | None, float]", p)
             except (TypeError, ValueError):
                 raise AnalysisError(
-                    f"a step point must be (level_vrms, thd, gain_db): {p!r}"
+                    f"a step point must be (level_vrms, thd, gain_db[, thd_u]): {p!r}"
                 ) from None
-            sp = StepPoint(float(lv), float(thd), float(g))
+            if len(rest) > 1:
+                raise AnalysisError(
+                    f"a step point must be (level_vrms, thd, gain_db[, thd_u]): {p!r}"
+                )
+            if thd is None or g is None:
+                raise AnalysisError(
+                    f"step at {float(lv):.4g} V rms has no valid THD/gain (over-range record?)",
+                    hint="re-measure with a wider scope range",
+                )
+            sp = StepPoint(float(lv), float(thd), float(g), float(rest[0]) if rest else 0.0)
         if sp.thd_percent is None or sp.gain_db is None:
             raise AnalysisError(
                 f"step at {sp.level_vrms:.4g} V rms has no valid THD/gain (over-range record?)",
@@ -116,7 +140,13 @@ def sweep_curves(
     g = np.array([p.gain_db for p in pts])
     g0 = float(g[0]) if small_signal_gain_db is None else float(small_signal_gain_db)
     return SweepCurves(
-        lv, np.asarray(vrms_to_dbu(lv)), np.array([p.thd_percent for p in pts]), g, g0 - g, g0
+        lv,
+        np.asarray(vrms_to_dbu(lv)),
+        np.array([p.thd_percent for p in pts]),
+        g,
+        g0 - g,
+        g0,
+        np.array([p.thd_u_percent for p in pts]),
     )
 
 
@@ -124,7 +154,8 @@ def _score(c: SweepCurves, criterion: ClipCriterion) -> np.ndarray:
     """Signed distance to the criterion: >= 0 means the criterion is met (clipping)."""
     if criterion.kind == "thd":
         thd = np.maximum(c.thd_percent, 1e-12)
-        return np.log10(thd) - math.log10(criterion.threshold_percent)
+        score: np.ndarray = np.log10(thd) - math.log10(criterion.threshold_percent)
+        return score
     return c.compression_db - criterion.db
 
 
@@ -137,23 +168,30 @@ def _first_crossing(score: np.ndarray) -> int | None:
 
 
 def clip_threshold(
-    levels_vrms: Sequence[float],
-    thd_percent: Sequence[float],
-    gain_db: Sequence[float],
+    levels_vrms: Sequence[float] | np.ndarray,
+    thd_percent: Sequence[float | None] | np.ndarray,
+    gain_db: Sequence[float | None] | np.ndarray,
     criterion: ClipCriterion | None = None,
     small_signal_gain_db: float | None = None,
+    thd_u_percent: Sequence[float] | None = None,
 ) -> Threshold:
     """Level at which ``criterion`` is first met, interpolated between the bracketing steps.
 
-    Uncertainty (a model-difference estimate, not a statistical one): the root-sum-square
-    of the bracket width/√12 and the difference between interpolating log THD and linear
-    THD (or, for compression, a quadratic through three points where available).
+    Standard uncertainty: the root-sum-square of the bracket width/√12, the difference
+    between interpolating log THD and linear THD (or, for compression, a quadratic through
+    three points where available), and the THD readings' own noise (``thd_u_percent``, one
+    standard uncertainty per reading) carried through the interpolation: near the criterion
+    that is the reading noise over the slope of log THD against level (GUM, JCGM 100:2008
+    §5.1.2, law of propagation of uncertainty).
     """
     crit = criterion or ClipCriterion()
     if not (len(levels_vrms) == len(thd_percent) == len(gain_db)):
         raise AnalysisError("levels, THD and gain must have the same length")
+    us = list(thd_u_percent) if thd_u_percent is not None else [0.0] * len(levels_vrms)
+    if len(us) != len(levels_vrms):
+        raise AnalysisError("thd_u_percent must have one value per level")
     c = sweep_curves(
-        list(zip(levels_vrms, thd_percent, gain_db, strict=True)), small_signal_gain_db
+        list(zip(levels_vrms, thd_percent, gain_db, us, strict=True)), small_signal_gain_db
     )
     s = _score(c, crit)
     i = _first_crossing(s)
@@ -174,7 +212,13 @@ def clip_threshold(
         alt = roots[0] if roots else xc
     else:
         alt = xc
-    u = math.hypot((x1 - x0) / math.sqrt(12), xc - alt)
+    u_noise = 0.0
+    if crit.kind == "thd" and c.thd_u_percent is not None:
+        t0, t1 = max(c.thd_percent[i - 1], 1e-12), max(c.thd_percent[i], 1e-12)
+        su0 = c.thd_u_percent[i - 1] / (t0 * math.log(10))  # u of log10 THD
+        su1 = c.thd_u_percent[i] / (t1 * math.log(10))
+        u_noise = float((x1 - x0) / (s1 - s0) ** 2 * math.hypot(s1 * su0, s0 * su1))
+    u = math.sqrt(((x1 - x0) / math.sqrt(12)) ** 2 + (xc - alt) ** 2 + u_noise**2)
     level = float(10 ** (xc / 20) * math.sqrt(0.6))
     return Threshold(
         level,
@@ -184,6 +228,7 @@ def clip_threshold(
         crit,
         below_vrms=float(c.levels_vrms[i - 1]),
         above_vrms=float(c.levels_vrms[i]),
+        noise_u_db=u_noise,
     )
 
 
@@ -220,8 +265,13 @@ def next_search_level(
     if not (start_vrms > 0 and max_vrms > 0 and resolution_db > 0 and expand_db > 0):
         raise AnalysisError("start_vrms, max_vrms, resolution_db and expand_db must be positive")
     lo_lim = min_vrms if min_vrms is not None else start_vrms / 100
-    to_db = lambda v: 20 * math.log10(v)  # noqa: E731
-    from_db = lambda d: 10 ** (d / 20)  # noqa: E731
+
+    def to_db(v: float) -> float:
+        return 20 * math.log10(v)
+
+    def from_db(d: float) -> float:
+        return float(10 ** (d / 20))
+
     max_db, min_db = to_db(max_vrms), to_db(lo_lim)
     order = _as_points(points)
     if not order:
@@ -230,7 +280,12 @@ def next_search_level(
     s = _score(curves, crit)
     x = 20 * np.log10(curves.levels_vrms)
     th = clip_threshold(
-        curves.levels_vrms, curves.thd_percent, curves.gain_db, crit, curves.small_signal_gain_db
+        curves.levels_vrms,
+        curves.thd_percent,
+        curves.gain_db,
+        crit,
+        curves.small_signal_gain_db,
+        None if curves.thd_u_percent is None else [float(v) for v in curves.thd_u_percent],
     )
     i = _first_crossing(s)
     if i is None:
@@ -247,6 +302,11 @@ def next_search_level(
     width = b - a
     if width <= resolution_db:
         return SearchStep(None, True, True, f"bracket {width:.3g} dB <= resolution", th)
+    if th.noise_u_db > 0 and width <= 2.0 * th.noise_u_db:
+        # narrower steps would only resolve the readings' noise
+        return SearchStep(
+            None, True, True, f"bracket {width:.3g} dB inside the readings' noise (k = 2)", th
+        )
     # Illinois: if the last two measured points fell on the same side, halve the score of
     # the endpoint that stayed (the classic fix for false position's one-sided stall).
     last = [to_db(p.level_vrms) for p in order[-2:]]

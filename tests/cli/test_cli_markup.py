@@ -15,7 +15,7 @@ import sys
 import pytest
 
 from harness.cli.main import main
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
 
 pytestmark = pytest.mark.wire

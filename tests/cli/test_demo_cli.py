@@ -83,8 +83,8 @@ def test_measurement_lines_read_in_words(demo_run):
     """The progress lines: the clipping side as a half-cycle, one-sided limits as ``≤``,
     a threshold the criterion never reached as above the board's safe level."""
     from harness.cli.cmd_demo import DEMO_BOARD
-    from harness.io.toml import load_board
-    from harness.run.runner import packaged
+    from harness.io.board import load_board
+    from harness.io.packaged import packaged
 
     _cwd, out = demo_run
     safe = load_board(packaged("limits", DEMO_BOARD)).conditions.safe_input_vrms

@@ -1,4 +1,4 @@
-"""Clipping evidence (flat and bending-back), over-range, and the stepped-level search."""
+"""Clipping evidence (flat and bending-back), over-range, and the bracketed level search."""
 
 from __future__ import annotations
 
@@ -31,7 +31,8 @@ def ce_stage(x: np.ndarray, gain: float = 10.0, k_sat: float = 3.0) -> np.ndarra
     Linear: v_out = -gain·v_in.  In saturation the collector cannot go below
     V_E + V_CE(sat), and V_E follows the base (v_E ≈ v_in), so the floor is
     -k_sat + v_in: it RISES with the input.  The negative output half-cycle therefore bends
-    back up past the knee instead of staying flat (NOTES.md, amplifier facts)."""
+    back up past the knee instead of staying flat (common practice; Ebers-Moll with both
+    junctions forward)."""
     return np.maximum(-gain * x, -k_sat + x)
 
 
@@ -95,7 +96,7 @@ def test_over_range_is_flagged_not_measured(adc, rng):
 @pytest.mark.parametrize("ratio", [1.031, 1.2595, 2.0, 5.0])
 def test_hard_clip_fundamental_matches_describing_function(ratio):
     """Describing function of an ideal saturation (Gelb & Vander Velde, 1968, from memory):
-    A₁ = (2A/π)(asin r + r√(1−r²)), r = L/A.  NOTES.md [calc]: THD 1 % at A/L 1.031 and
+    A₁ = (2A/π)(asin r + r√(1−r²)), r = L/A.  Computed with numpy: THD 1 % at A/L 1.031 and
     1 dB compression at A/L 1.2595.  Coherent noiseless record; the clipped wave's harmonics
     fall as k⁻² (slope steps), and orders N ± 1 alias onto the fundamental's bin: relative
     error ~ 1/N² ≈ 6e-8, so the match is held to 2e-7."""
@@ -111,7 +112,7 @@ def test_hard_clip_fundamental_matches_describing_function(ratio):
 
 
 def _clipper(level_vrms: float, gain: float = 10.0, clip_v: float = 1.0) -> StepPoint:
-    """One stepped-level measurement of a symmetric hard clipper (coherent, noiseless)."""
+    """One level of the ladder on a symmetric hard clipper (coherent, noiseless)."""
     n, j = 4096, 127
     x = math.sqrt(2) * level_vrms * np.sin(2 * np.pi * j * np.arange(n) / n)
     y = np.clip(gain * x, -clip_v, clip_v)
@@ -136,7 +137,8 @@ def _search(criterion, start, max_v, measure=_clipper, limit=40):
 )
 def test_search_finds_hard_clipper_threshold(criterion, ratio):
     """Hard clipper, clip level 1 V, gain 10: THD reaches 1 % at A/L = 1.031 and 1 dB
-    compression at A/L = 1.2595 (NOTES.md [calc], describing function).  The search must
+    compression at A/L = 1.2595 (describing function of a hard limiter, Gelb & Vander Velde
+    1968, from memory; values computed with numpy).  The search must
     bracket to 0.1 dB, stay below max_vrms and land within its stated uncertainty (plus the
     ±0.0005 rounding of the quoted ratio, 0.005 dB)."""
     expected_vrms = ratio * 1.0 / 10.0 / math.sqrt(2)
@@ -199,3 +201,51 @@ def test_clip_threshold_interpolates_log_thd():
         [StepPoint(v, t, g) for v, t, g in zip(levels, thd, [20, 20, 19.9], strict=True)]
     )
     assert curves.compression_db[-1] == pytest.approx(0.1)
+
+
+def test_threshold_uncertainty_carries_the_thd_readings_noise() -> None:
+    """GUM (JCGM 100:2008) §5.1.2 law of propagation: the crossing of log10 THD interpolated
+    between two readings with standard uncertainty u moves by u/(THD ln 10) over the slope of
+    log10 THD per dB; checked against a numerical derivative of the same interpolation."""
+    from harness.measure import clip_threshold
+
+    lv = [0.2, 0.2 * 10 ** (0.5 / 20)]
+    thd = [0.8, 1.3]
+    u = [0.02, 0.03]
+    th = clip_threshold(lv, thd, [20.0, 19.9], thd_u_percent=u)
+    quiet = clip_threshold(lv, thd, [20.0, 19.9])
+    assert quiet.noise_u_db == 0.0
+
+    def xc(t0: float, t1: float) -> float:
+        return clip_threshold(lv, [t0, t1], [20.0, 19.9]).level_dbu  # type: ignore[return-value]
+
+    h = 1e-6
+    d0 = (xc(thd[0] + h, thd[1]) - xc(thd[0] - h, thd[1])) / (2 * h)
+    d1 = (xc(thd[0], thd[1] + h) - xc(thd[0], thd[1] - h)) / (2 * h)
+    assert th.noise_u_db == pytest.approx(math.hypot(d0 * u[0], d1 * u[1]), rel=1e-5)
+    assert th.uncertainty_db == pytest.approx(math.hypot(quiet.uncertainty_db, th.noise_u_db))
+
+
+def test_search_stops_once_the_bracket_is_inside_the_readings_noise() -> None:
+    """A bracket of 0.4 dB is wider than the 0.1 dB resolution, but readings whose noise
+    makes a crossing uncertainty of more than 0.2 dB cannot narrow it usefully: the search
+    stops there (and does not with quiet readings)."""
+    from harness.measure import next_search_level
+
+    a, b = 0.2, 0.2 * 10 ** (0.4 / 20)
+    noisy = [(a, 0.9, 20.0, 0.15), (b, 1.1, 19.9, 0.15)]
+    step = next_search_level(noisy, start_vrms=a, max_vrms=1.0, resolution_db=0.1)
+    assert step.done and step.bracketed and "noise" in step.reason
+    assert step.threshold is not None and 2 * step.threshold.noise_u_db >= 0.4
+    quiet = [p[:3] for p in noisy]
+    step = next_search_level(quiet, start_vrms=a, max_vrms=1.0, resolution_db=0.1)
+    assert not step.done
+
+
+def test_a_step_without_thd_is_a_typed_error_not_a_crash():
+    """An over-range record has no THD: the threshold search names the step instead of
+    failing inside float()."""
+    from harness.errors import AnalysisError
+
+    with pytest.raises(AnalysisError, match="no valid THD/gain"):
+        clip_threshold([0.1, 0.2, 0.4], [0.1, None, 2.0], [20.0, 20.0, 19.0])

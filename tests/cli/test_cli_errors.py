@@ -14,7 +14,6 @@ import re
 import signal
 import subprocess
 import sys
-import threading
 import time
 
 import pytest
@@ -23,6 +22,7 @@ from harness.cli.main import main
 from harness.store import open_store
 from tests.instruments.test_connect_timeout import full_backlog
 from tests.support.bench import BOARD_FILE, FIXTURE_FILE, REPO, sim_bench
+from tests.support.streams import LineCollector
 
 pytestmark = pytest.mark.wire
 
@@ -52,27 +52,6 @@ def _run_cmd(station, db, serial: str) -> list[str]:
     ]
 
 
-class _Reader(threading.Thread):
-    """Collects a child's stdout so the test can wait for a step to begin."""
-
-    def __init__(self, stream) -> None:
-        super().__init__(daemon=True)
-        self.stream = stream
-        self.text = ""
-
-    def run(self) -> None:
-        for line in self.stream:
-            self.text += line
-
-    def wait_for(self, what: str, timeout_s: float = 60.0) -> None:
-        deadline = time.monotonic() + timeout_s
-        while time.monotonic() < deadline:
-            if what in self.text:
-                return
-            time.sleep(0.02)
-        raise AssertionError(f"{what!r} not seen; output so far:\n{self.text}")
-
-
 def _interrupt(cmd: list[str], when: str, delay_s: float = 0.0) -> tuple[int, str, str]:
     proc = subprocess.Popen(
         cmd,
@@ -82,7 +61,7 @@ def _interrupt(cmd: list[str], when: str, delay_s: float = 0.0) -> tuple[int, st
         encoding="utf-8",
         env=_env(),
     )
-    reader = _Reader(proc.stdout)
+    reader = LineCollector(proc.stdout)
     reader.start()
     try:
         reader.wait_for(when)
