@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model.core import parallel
 from harness.model.design import design_channel
 from harness.model.limits import compute_limits

@@ -17,9 +17,9 @@ from pathlib import Path
 import pytest
 
 from harness.instruments.bench import connect
+from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.station import load_station
-from harness.io.toml import load_board
 from harness.model import compute_limits
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.bench import SimBench

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from harness.io.toml import load_board
+from harness.io.board import load_board
 from harness.model.design import design_channel
 from harness.sim.bench import SimBench
 from harness.sim.physics import BoardSim
