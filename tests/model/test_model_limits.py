@@ -297,3 +297,27 @@ def test_limits_carry_the_models_own_uncertainty() -> None:
         assert op.nominal - op.low >= u["bias_v"] - 1e-12
     again = type(lim).from_dict(json.loads(json.dumps(lim.to_dict())))
     assert again.digest == lim.digest
+
+
+def test_threshold_band_from_the_search_subsample_matches_the_full_search(monkeypatch) -> None:
+    """The criterion threshold is searched on the first MC_SEARCH_SAMPLES draws only.  The
+    draws are independent and identically distributed, so the first n are an unbiased
+    subsample (common practice in Monte Carlo estimation); the band they give must sit
+    within the 0.1 dB model uncertainty of the band the full search gives, and every other
+    quantity must be untouched by the subsample."""
+    import harness.model.limits as lm
+
+    board = load_board("limits/demo-twin-preamp.toml")
+    monkeypatch.setattr(lm, "MC_SEARCH_SAMPLES", 1500)
+    sub = compute_limits(board, samples=6000, seed=11)
+    assert sub.provenance.search_samples == 1500
+    monkeypatch.setattr(lm, "MC_SEARCH_SAMPLES", 10**9)
+    full = compute_limits(board, samples=6000, seed=11)
+    assert full.provenance.search_samples == 6000
+    for name, ch in full.channels.items():
+        s = sub.channels[name]
+        for a, b in ((s.clip_input_vrms.low, ch.clip_input_vrms.low),
+                     (s.clip_input_vrms.high, ch.clip_input_vrms.high)):  # fmt: skip
+            assert abs(20 * math.log10(a / b)) < 0.1, (name, a, b)
+        assert s.gain_db == ch.gain_db and s.thd_percent == ch.thd_percent
+        assert s.swing_clip_input_vrms == ch.swing_clip_input_vrms
