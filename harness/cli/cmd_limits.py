@@ -203,6 +203,24 @@ def _print_tables(board, limits: BoardLimits) -> None:
                 f"level change; workable boards {ch.workable_fraction:.2%}",
             )
         )
+        if ch.time_constants:
+            shape = [
+                f"{k} {v['tau_s'] * 1e3:.3g} ms"
+                for k, v in ch.time_constants.items()
+                if v["kind"] == "operating_point"
+            ]
+            dc = [
+                f"{k} {v['tau_s']:.3g} s"
+                for k, v in ch.time_constants.items()
+                if v["kind"] == "dc_level"
+            ]
+            console.print(
+                "  time constants that move the operating point (waited for): "
+                + (", ".join(shape) or "none")
+                + "; that only move the output's DC level (removed by AC coupling or the "
+                "fit's offset term): "
+                + (", ".join(dc) or "none")
+            )
         for s in design.stages:
             if s.vc_v is not None:
                 console.print(

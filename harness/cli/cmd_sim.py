@@ -63,7 +63,14 @@ def register(subparsers: Any) -> None:
         "--latency",
         action="store_true",
         help="realistic timing: 1-3 ms per command, acquisition and transfer "
-        "times (default: instant)",
+        "times, and a board that settles after each change (default: instant and settled)",
+    )
+    serve.add_argument(
+        "--settling",
+        action=argparse.BooleanOptionalAction,
+        default=None,
+        help="the board's capacitors move toward each new balance with its time constants "
+        "(default: with --latency)",
     )
     serve.add_argument("--seed", type=int, default=20240601, help="noise seed")
     serve.add_argument(
@@ -101,6 +108,7 @@ def _serve(
         board,
         faults=args.fault,
         latency=args.latency,
+        settling=args.settling,
         host=args.host,
         port_base=args.port_base,
         seed=args.seed,

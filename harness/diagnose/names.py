@@ -20,6 +20,10 @@ key                             meaning (value, U = expanded uncertainty, k = 2)
 ``<ch>.<stage>.<quantity>``     DC test point (collector_v, emitter_v, base_v, output_v), V
 ``supply_current_a``            quiescent current of the whole board, A
 ==============================  =========================================================
+
+A dead channel's gain (the run's ``condition`` row says ``dead`` or ``stuck``) is
+``-inf``: the ranking floors it at its dead level.  :func:`channel_modes` reads the modes
+themselves (an oscillation or hum is not a component fault the stage model can predict).
 """
 
 from __future__ import annotations
@@ -44,6 +48,11 @@ STORE_FREQ_PREFIX = "gain@"
 STORE_FREQ_SUFFIX = "Hz"
 #: Board-wide quantities (stored with an empty channel).
 BOARD_QUANTITIES = frozenset({"supply_current_a"})
+
+#: Channel modes (the run's ``condition`` row) in which the output carries no signal.
+DEAD_MODES = frozenset({"dead", "stuck"})
+#: The run's stored name of a channel's mode at the nominal step.
+STORE_CONDITION = "condition"
 
 #: Diagnosis quantities scored on a log scale (dB): their spread is relative.
 LOG_QUANTITIES = frozenset({"gain_db", "thd_percent", "clip_input_vrms"})
@@ -137,6 +146,10 @@ def from_rows(rows: Iterable[RowLike]) -> dict[str, tuple[Any, float | None]]:
             elif below is not None:
                 out[key(r.channel, "clip_below_vrms")] = (below, u)
             continue
+        if quantity == "gain_db" and value is None and d.get("mode") in DEAD_MODES:
+            # a dead channel (or one stuck at a rail): no output above the floor
+            out[key(r.channel, quantity)] = (-math.inf, None)
+            continue
         if value is None:
             continue
         out[key(r.channel, quantity)] = (value, u)
@@ -144,6 +157,17 @@ def from_rows(rows: Iterable[RowLike]) -> dict[str, tuple[Any, float | None]]:
             floor = _finite(d.get("floor_percent"))
             if floor is not None:
                 out[key(r.channel, "thd_floor_percent")] = (floor, None)
+    return out
+
+
+def channel_modes(rows: Iterable[RowLike]) -> dict[str, dict[str, Any]]:
+    """Channel -> its stored condition (``mode``, ``text``, ``evidence``) where not working."""
+    out: dict[str, dict[str, Any]] = {}
+    for r in rows:
+        if r.name == STORE_CONDITION:
+            d = _detail(r)
+            if d.get("mode") not in (None, "working"):
+                out[r.channel] = d
     return out
 
 

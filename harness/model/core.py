@@ -37,6 +37,12 @@ from harness.model.board import (
     OpAmpNonInverting,
 )
 from harness.model.periodic import PeriodicState, solve_periodic
+from harness.model.settling import (
+    TimeConstant,
+    settle_times,
+    supply_settle_time,
+    time_constants,
+)
 
 Arrays = Mapping[str, np.ndarray]
 
@@ -139,6 +145,9 @@ class ChannelArrays:
     supply_current_a: np.ndarray = field(default_factory=lambda: np.zeros(1))
     low_corner_hz: np.ndarray = field(default_factory=lambda: np.zeros(1))
     settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    dc_settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    supply_settle_time_s: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    time_constants: list[TimeConstant] = field(default_factory=list)
     thd_percent: np.ndarray | None = None
     thd_clip_input_vpk: np.ndarray | None = None
     problems: list[Problem] = field(default_factory=list)
@@ -581,8 +590,9 @@ def _swing(ch: Channel, p: Arrays, stages: list[StageArrays], n: int) -> None:
 
 def _low_end(
     ch: Channel, p: Arrays, stages: list[StageArrays], n: int, f_test: float
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Low-frequency factor |H(f_test)|, the -3 dB low corner and the longest time constant.
+) -> tuple[np.ndarray, np.ndarray]:
+    """Low-frequency factor |H(f_test)| and the -3 dB low corner (time constants, and which
+    of them the test waits for: :mod:`harness.model.settling`).
 
     Each coupling capacitor is a first-order high-pass with the resistance it sees; an emitter
     bypass and an op-amp C_G are shelves (pole and zero).  The product is evaluated exactly and
@@ -591,7 +601,6 @@ def _low_end(
     v_t = _b(p["v_t"], n)
     highpass: list[np.ndarray] = []  # pole frequencies of pure high-passes
     shelves: list[tuple[np.ndarray, np.ndarray]] = []  # (zero, pole) frequencies
-    taus: list[np.ndarray] = []
     r_src = _b(p["source_ohm"], n)
     two_pi = 2.0 * np.pi
     for st, s in zip(ch.stages, stages, strict=True):
@@ -600,15 +609,6 @@ def _low_end(
             c = _b(p[f"{nm}.c_in"], n)
             r = r_src + s.input_ohm
             highpass.append(1.0 / (two_pi * c * r))
-            taus.append(c * r)
-            # bias recovery after a level step: C_in recharges through the bias network
-            if isinstance(st, CommonEmitter) or (
-                isinstance(st, EmitterFollower) and not st.dc_coupled
-            ):
-                r_th = parallel(_b(p[f"{nm}.r1"], n), _b(p[f"{nm}.r2"], n))
-                taus.append(c * (r_src + r_th))
-            elif isinstance(st, OpAmpNonInverting) and st.r_bias is not None:
-                taus.append(c * (r_src + _b(p[f"{nm}.r_bias"], n)))
         if isinstance(st, CommonEmitter) and st.c_e is not None and st.re_bypassed is not None:
             c = _b(p[f"{nm}.c_e"], n)
             r_byp = _b(p[f"{nm}.re_bypassed"], n)
@@ -616,17 +616,14 @@ def _low_end(
             r_look = _b(p[f"{nm}.re"], n) + (s.beta * v_t / s.ic_a + r_b) / (s.beta + 1.0)
             r_seen = parallel(r_byp, r_look)
             shelves.append((1.0 / (two_pi * c * r_byp), 1.0 / (two_pi * c * r_seen)))
-            taus.append(c * r_seen)
         if isinstance(st, OpAmpNonInverting) and st.c_g is not None:
             c = _b(p[f"{nm}.c_g"], n)
             r_g, r_f = _b(p[f"{nm}.r_g"], n), _b(p[f"{nm}.r_f"], n)
             shelves.append((1.0 / (two_pi * c * (r_g + r_f)), 1.0 / (two_pi * c * r_g)))
-            taus.append(c * r_g)
         if st.c_out is not None:
             c = _b(p[f"{nm}.c_out"], n)
             r = s.output_ohm + s.r_next
             highpass.append(1.0 / (two_pi * c * r))
-            taus.append(c * r)
         r_src = s.output_ohm
 
     hp2 = [fp * fp for fp in highpass]
@@ -650,8 +647,7 @@ def _low_end(
         lo = np.where(below, mid, lo)
         hi = np.where(below, hi, mid)
     corner = np.exp(0.5 * (lo + hi)) if (highpass or shelves) else np.zeros(n)
-    tau_max = np.max(np.stack(taus), axis=0) if taus else np.zeros(n)
-    return factor, corner, tau_max
+    return factor, corner
 
 
 # --- large signal ------------------------------------------------------------------------------
@@ -1096,7 +1092,7 @@ def evaluate_channel(
         clip_stage = np.where(better, j, clip_stage)
         clip_pos = np.where(better, out_pos, clip_pos)
     res.gain_midband = cum
-    factor, corner, tau = _low_end(channel, p, stages, n, board.conditions.frequency_hz)
+    factor, corner = _low_end(channel, p, stages, n, board.conditions.frequency_hz)
     res.gain = cum * factor
     res.input_ohm = stages[0].input_ohm
     res.output_ohm = stages[-1].output_ohm
@@ -1104,7 +1100,10 @@ def evaluate_channel(
     res.clip_stage = clip_stage
     res.clip_positive = clip_pos
     res.low_corner_hz = corner
-    res.settle_time_s = 5.0 * tau
+    res.time_constants = time_constants(channel, p, stages, n)
+    res.settle_time_s, res.dc_settle_time_s = settle_times(res.time_constants, n)
+    span = _b(p["supply.positive_v"], n) - _b(p.get("supply.negative_v", np.zeros(n)), n)
+    res.supply_settle_time_s = supply_settle_time(res.time_constants, res.settle_time_s, span)
     res.supply_current_a = sum((s.supply_a for s in stages), np.zeros(n))
 
     nominal_vpk = board.conditions.nominal_input_vrms * np.sqrt(2.0)

@@ -77,7 +77,10 @@ class ChannelDesign:
     output_vrms_nominal: float
     supply_current_a: float
     low_corner_hz: float
-    settle_time_s: float
+    settle_time_s: float  # wait after a level change: operating-point time constants
+    dc_settle_time_s: float = 0.0  # the output's DC level (last C_out into the load)
+    supply_settle_time_s: float = 0.0  # wait after supply on (see harness.model.settling)
+    time_constants: tuple[tuple[str, str, float], ...] = ()  # (name, kind, tau_s)
 
     @property
     def phase_deg(self) -> float:
@@ -181,6 +184,9 @@ def to_design(board: Board, ch: Channel, res: ChannelArrays, i: int) -> ChannelD
         supply_current_a=float(res.supply_current_a[i]),
         low_corner_hz=float(res.low_corner_hz[i]),
         settle_time_s=float(res.settle_time_s[i]),
+        dc_settle_time_s=float(res.dc_settle_time_s[i]),
+        supply_settle_time_s=float(res.supply_settle_time_s[i]),
+        time_constants=tuple((t.name, t.kind, float(t.tau_s[i])) for t in res.time_constants),
     )
 
 

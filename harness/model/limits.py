@@ -191,6 +191,12 @@ class ChannelLimits:
     output_vrms_nominal: float
     workable_fraction: float
     worst_case: dict[str, WorstCase] = field(default_factory=dict)
+    #: time for the output's DC level to settle (a DC shift only; harness.model.settling)
+    dc_settle_time_s: float = 0.0
+    #: wait after supply on (operating point within 0.5 % of the supply span)
+    supply_settle_time_s: float = 0.0
+    #: the nominal design's time constants: name -> {"kind": ..., "tau_s": ...}
+    time_constants: dict[str, dict[str, Any]] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -212,6 +218,12 @@ class ChannelLimits:
             "output_vrms_nominal": _r(self.output_vrms_nominal),
             "workable_fraction": _r(self.workable_fraction),
             "worst_case": {k: v.to_dict() for k, v in self.worst_case.items()},
+            "dc_settle_time_s": _r(self.dc_settle_time_s),
+            "supply_settle_time_s": _r(self.supply_settle_time_s),
+            "time_constants": {
+                k: {"kind": v["kind"], "tau_s": _r(v["tau_s"])}
+                for k, v in self.time_constants.items()
+            },
         }
 
     @classmethod
@@ -244,6 +256,9 @@ class ChannelLimits:
                 k: WorstCase(v["low"], v["high"], v["covered"])
                 for k, v in d.get("worst_case", {}).items()
             },
+            dc_settle_time_s=d.get("dc_settle_time_s", 0.0),
+            supply_settle_time_s=d.get("supply_settle_time_s", d["settle_time_s"]),
+            time_constants={k: dict(v) for k, v in d.get("time_constants", {}).items()},
         )
 
 
@@ -493,6 +508,10 @@ def _channel_limits(
             )
             wc[key] = WorstCase(lo, hi, bool(covered))
     settle = float(np.max(res.settle_time_s[ok])) if ok.any() else design.settle_time_s
+    dc_settle = float(np.max(res.dc_settle_time_s[ok])) if ok.any() else design.dc_settle_time_s
+    on_settle = (
+        float(np.max(res.supply_settle_time_s[ok])) if ok.any() else design.supply_settle_time_s
+    )
     return ChannelLimits(
         channel=ch.name,
         gain_db=gain,
@@ -517,6 +536,11 @@ def _channel_limits(
         output_vrms_nominal=design.output_vrms_nominal,
         workable_fraction=float(ok.mean()),
         worst_case=wc,
+        dc_settle_time_s=max(dc_settle, design.dc_settle_time_s),
+        supply_settle_time_s=max(on_settle, design.supply_settle_time_s),
+        time_constants={
+            name: {"kind": kind, "tau_s": tau} for name, kind, tau in design.time_constants
+        },
     )
 
 

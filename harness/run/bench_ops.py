@@ -513,6 +513,8 @@ class GroupScope:
         self.ranges: dict[int, float] = {}
         self.fill: dict[int, float] = {}
         self.scope_ranges = tuple(float(r) for r in scope.ranges_vpp)
+        #: inputs to AC-couple (an output whose DC level is still moving after the wait)
+        self.coupling: dict[int, str] = {}
         #: the timebase in force: (requested rate, points), (read-back rate, points)
         self.timebase: tuple[tuple[float, int], tuple[float, int]] | None = None
         self.trigger: int | None = None
@@ -576,7 +578,13 @@ class GroupScope:
         """Configure an input for a full-scale range in probe-tip volts (only on change)."""
         if self.ranges.get(scope_input) == range_vpp:
             return
-        setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        cpl = self.coupling.get(scope_input)
+        if cpl is None:
+            setup = self.scope.configure_input(scope_input, range_vpp=range_vpp, probe=probe)
+        else:
+            setup = self.scope.configure_input(
+                scope_input, range_vpp=range_vpp, probe=probe, coupling=cpl
+            )
         self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
 
     def preset(
@@ -613,12 +621,15 @@ class GroupScope:
         *,
         correct_adc: bool = True,
         fill_match: float | None = FILL_MATCH,
-    ) -> tuple[dict[str, RecordAnalysis], Any]:
+        tolerant: bool = False,
+    ) -> tuple[dict[str, RecordAnalysis | None], Any]:
         """One acquisition of every input of the group (re-ranged and repeated when a record
         is over-range or uses too little of its range, at most ``max_rerange`` times), each
         channel analysed.  With ``correct_adc`` the THD is the board's added THD; with
         ``fill_match`` only where input and output fill their ranges within that factor of
-        each other.  Returns the analyses by channel and the last acquisition."""
+        each other.  With ``tolerant`` a channel whose record cannot be analysed (a dead
+        output holds no sine) gets None instead of stopping the group; the caller classifies
+        it from the raw record.  Returns the analyses by channel and the last acquisition."""
         inputs = scope_inputs(channels)
         probes: dict[int, float] = {}
         for c in channels:
@@ -667,21 +678,27 @@ class GroupScope:
                     changed = True
             if not changed:
                 break
-        out: dict[str, RecordAnalysis] = {}
+        out: dict[str, RecordAnalysis | None] = {}
         for c in channels:
             x = np.asarray(acq.volts[c.input_scope], dtype=float)
             y = np.asarray(acq.volts[c.output_scope], dtype=float)
             in_adc = tuple(acq.adc_limits[c.input_scope])
             out_adc = tuple(acq.adc_limits[c.output_scope])
-            a = analyze_uniform(
-                x,
-                y,
-                acq.sample_rate_hz,
-                in_adc=in_adc,
-                out_adc=out_adc,
-                adc_bits=int(acq.bits),
-                frequency_hz=plan.frequency_hz,
-            )
+            try:
+                a = analyze_uniform(
+                    x,
+                    y,
+                    acq.sample_rate_hz,
+                    in_adc=in_adc,
+                    out_adc=out_adc,
+                    adc_bits=int(acq.bits),
+                    frequency_hz=plan.frequency_hz,
+                )
+            except AnalysisError:
+                if not tolerant:
+                    raise
+                out[c.board_channel] = None
+                continue
             if (
                 a.thd_percent is not None
                 and correct_adc

@@ -43,8 +43,11 @@ from harness.measure import (
     measurement_floor,
     next_search_level,
 )
+from harness.measure.condition import ChannelCondition, classify_channel
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
+from harness.model.design import MAX_SETTLE_S, check_settle_time
+from harness.model.settling import SETTLE_TAUS
 from harness.run.bench_ops import (
     RANGE_FILL,
     BoardRun,
@@ -94,6 +97,8 @@ SEARCH_FILL = 0.4
 PHASE_TOLERANCE_DEG = 45.0
 #: Expanded uncertainty of a phase reading (degrees); small against the tolerance.
 PHASE_U_DEG = 1.0
+#: Most repeated records when settling is verified instead of waited for.
+VERIFY_RECORDS = 8
 
 
 @dataclass(frozen=True)
@@ -109,6 +114,9 @@ class RunOptions:
     bench: BenchUncertainty = field(default_factory=BenchUncertainty)
     settle: Literal["wait", "verify"] = "wait"
     settle_wait_s: float | None = None
+    #: a model settle time longer than this is not waited out after every level change:
+    #: settling is verified by repeated records instead (stated in the run record)
+    max_settle_wait_s: float = 5.0
     max_step_up_db: float = 6.0
     resolution_db: float = 0.1
     max_search_acquisitions: int = 24
@@ -143,6 +151,8 @@ class RunResult:
     elapsed_s: float
     instrument_s: float
     waiting_s: float
+    #: settling waits asked for, in the board's time (equal to waiting_s with a real sleep)
+    settle_waited_s: float = 0.0
 
     @property
     def overhead_s(self) -> float:
@@ -167,6 +177,7 @@ class RunResult:
             "search_acquisitions": self.search_acquisitions,
             "generator_state": self.generator_state,
             "settle_note": self.settle_note,
+            "settle_waited_s": round(self.settle_waited_s, 3),
             "elapsed_s": round(self.elapsed_s, 3),
             "measurements": [
                 {
@@ -201,6 +212,7 @@ class _Clock:
     def __init__(self) -> None:
         self.instrument_s = 0.0
         self.waiting_s = 0.0
+        self.settle_s = 0.0  # settling waits asked for (what the board saw pass)
 
 
 class _Timed:
@@ -240,6 +252,12 @@ class _ChannelState:
     done: bool = False
     step: Any = None
     nominal: RecordAnalysis | None = None
+    condition: ChannelCondition | None = None
+
+    @property
+    def failed(self) -> bool:
+        """The channel is in a failure mode (dead, oscillating, ...): no clipping search."""
+        return self.condition is not None and not self.condition.working
 
 
 class Sequencer(BoardRun):
@@ -282,10 +300,41 @@ class Sequencer(BoardRun):
         )
         self.station_file = station_file
         self.search_acquisitions = 0
-        if options.settle == "verify":
+        self.supply_settle_s = (
+            self.settle_s
+            if options.settle_wait_s is not None
+            else max(
+                [self.settle_s]
+                + [
+                    float(getattr(limits.channels[c.board_channel], "supply_settle_time_s", 0.0))
+                    for c in fixture.channels
+                    if c.board_channel in limits.channels
+                ]
+            )
+        )
+        if options.settle_wait_s is None and self.supply_settle_s > MAX_SETTLE_S:
+            # a wrong capacitor value must not keep the supply on for days (see bench_ops)
+            for c in fixture.channels:
+                ch_lim = limits.channels.get(c.board_channel)
+                wait = float(getattr(ch_lim, "supply_settle_time_s", 0.0))
+                with contextlib.suppress(AttributeError):
+                    check_settle_time(board, board.channel(c.board_channel), wait)
+        self.settle_mode: Literal["wait", "verify"] = options.settle
+        long_wait = options.settle_wait_s is None and self.settle_s > options.max_settle_wait_s
+        if long_wait:
+            self.settle_mode = "verify"
+        #: between repeated records: one time constant of the slowest operating-point mode
+        self.verify_interval_s = self.settle_s / SETTLE_TAUS
+        if self.settle_mode == "verify":
             self.settle_note = (
-                "settling verified by repeating the record after each level "
-                "change until gain and THD agree"
+                "settling verified by repeating the record after each level change, "
+                f"{self.verify_interval_s:.3g} s apart, until gain and THD agree"
+                + (
+                    f" (the model's settle time {self.settle_s:.3g} s is longer than "
+                    f"{options.max_settle_wait_s:g} s)"
+                    if long_wait
+                    else ""
+                )
             )
         elif options.settle_wait_s is not None:
             self.settle_note = (
@@ -296,8 +345,32 @@ class Sequencer(BoardRun):
             self.settle_note = (
                 f"waited the model's settle time {self.settle_s:.3g} s after each level change"
             )
+        if self.supply_settle_s > self.settle_s and fixture.supply is not None:
+            self.settle_note += (
+                f"; {self.supply_settle_s:.3g} s after supply on (the output capacitors "
+                "charging into the load move the operating point until then)"
+            )
+        ac = sorted(
+            {
+                c.output_scope
+                for c in fixture.channels
+                if c.board_channel in limits.channels
+                and float(getattr(limits.channels[c.board_channel], "dc_settle_time_s", 0.0))
+                > (0.0 if self.settle_mode == "verify" else self.settle_s)
+            }
+        )
+        for n in ac:
+            self.scope_ops.coupling[n] = "AC"
+        if ac:
+            self.settle_note += (
+                "; outputs AC-coupled (scope inputs "
+                + ", ".join(str(n) for n in ac)
+                + "): their DC level, set by the output capacitor into the load, is still "
+                "moving when the wait ends"
+            )
         self.plan = self._plan(board.conditions.frequency_hz)
         self.step_name = "setup"
+        self.last_acquisition: Any = None
 
     # --- helpers --------------------------------------------------------------------
     @property
@@ -363,12 +436,16 @@ class Sequencer(BoardRun):
             for r in self.rows
         )
 
-    def _wait_settle(self, *, always: bool = False) -> None:
-        """Wait the settle time after a change (in "verify" mode only when ``always``)."""
-        if (always or self.opt.settle == "wait") and self.settle_s > 0:
+    def _wait_settle(self, *, always: bool = False, seconds: float | None = None) -> None:
+        """Wait the settle time (or ``seconds``) after a change; in "verify" mode only when
+        ``always`` or ``seconds`` is given.  The wait is counted as simulated or real, as
+        the sleep given in the options makes it."""
+        wait = self.settle_s if seconds is None else seconds
+        if (always or seconds is not None or self.settle_mode == "wait") and wait > 0:
             t0 = time.perf_counter()
-            self.opt.sleep(self.settle_s)
+            self.opt.sleep(wait)
             self.clock.waiting_s += time.perf_counter() - t0
+            self.clock.settle_s += wait
         self.run_log.heartbeat()
 
     # --- acquisition ----------------------------------------------------------------
@@ -390,13 +467,15 @@ class Sequencer(BoardRun):
 
     def _acquire(
         self, group: list[_ChannelState], plan: Any, label: str
-    ) -> dict[str, RecordAnalysis]:
+    ) -> dict[str, RecordAnalysis | None]:
         """One acquisition of every input of the group (see GroupScope.acquire); the raw
-        records stored too with ``keep_records``."""
+        records stored too with ``keep_records``.  A channel whose record cannot be analysed
+        gets None (it is classified at the nominal step, never an abort of the run)."""
         conns = [st.conn for st in group]
         out, acq = self.scope_ops.acquire(
-            conns, plan, correct_adc=self.opt.correct_adc_nonlinearity
+            conns, plan, correct_adc=self.opt.correct_adc_nonlinearity, tolerant=True
         )
+        self.last_acquisition = acq
         if self.opt.keep_records:
             for c in conns:
                 self.store.add_record(
@@ -418,7 +497,7 @@ class Sequencer(BoardRun):
         plan: Any,
         label: str,
         fill: float = RANGE_FILL,
-    ) -> dict[str, RecordAnalysis]:
+    ) -> dict[str, RecordAnalysis | None]:
         """Move the generator (ramped), let the board settle, record."""
         changed = abs(level_vrms - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
         self.scope_ops.preset(self._gains(group), level_vrms, fill)
@@ -428,10 +507,13 @@ class Sequencer(BoardRun):
         if changed:
             self._wait_settle()
         res = self._acquire(group, plan, label)
-        if self.opt.settle == "verify" and changed:
-            for _ in range(4):
+        if self.settle_mode == "verify" and changed:
+            # records one time constant apart that agree leave less than about 0.6 of the
+            # agreement tolerance still to settle (e^-1 / (1 - e^-1)); 8 of them span 8 tau
+            for _ in range(VERIFY_RECORDS):
+                self._wait_settle(seconds=self.verify_interval_s)
                 again = self._acquire(group, plan, label + " (settling check)")
-                if all(_agree(res[k], again[k]) for k in res):
+                if all(_agree(res[k], again[k]) for k in res if not _failed(group, k)):
                     res = again
                     break
                 res = again
@@ -495,15 +577,9 @@ class Sequencer(BoardRun):
                     },
                 )
             if self.criterion.kind == "thd" and self.criterion.threshold_percent < resolvable_at:
-                clim = lim.clip_input_vrms
-                self._row(
+                self._clip_row(
                     c.board_channel,
-                    "clip_input",
-                    None,
-                    "V rms",
-                    limit_get(clim, "low"),
-                    limit_get(clim, "high"),
-                    None,
+                    lim,
                     "not resolvable",
                     {"why": "clip criterion THD below the bench's floor"},
                 )
@@ -529,7 +605,9 @@ class Sequencer(BoardRun):
         self.step_name = "supply"
         self.progress.step("supply", "supply on, quiescent current")
         self.supply.on()
-        self._wait_settle(always=True)  # coupling capacitors charge: wait in every mode
+        # coupling capacitors charge: wait in every mode, until even the output capacitor's
+        # charging current no longer moves a stage's operating point (the model's figure)
+        self._wait_settle(seconds=self.supply_settle_s)
         tripped = self.supply.tripped()
         current = self.supply.current_a()
         lim = self.limits.supply_current_a
@@ -563,21 +641,31 @@ class Sequencer(BoardRun):
             lim = self.limits.channels[tp.board_channel].operating_point.get(tp.key)
             if tp.route and self.switch is not None:
                 self.switch.close(list(tp.route))
+            range_v = dmm_range_v(lim)
             try:
-                v = float(self.dmm.dc_volts())
+                v = float(self.dmm.dc_volts(range_v))
             finally:
                 if tp.route and self.switch is not None:
                     self.switch.open(list(tp.route))
+            detail: dict[str, Any] = {"test_point": tp.name, "quantity": tp.key, "range_v": range_v}
+            if not math.isfinite(v):
+                # SCPI's 9.9E37 (overload): no number to decide, and never an infinite U
+                detail["result"] = f"over-range at {tp.name}"
+                self.progress.note(f"DMM over-range at {tp.name} ({tp.key})")
+                self._row(
+                    tp.board_channel,
+                    f"dc.{tp.key}",
+                    None,
+                    "V",
+                    limit_get(lim, "low"),
+                    limit_get(lim, "high"),
+                    None,
+                    "fail",
+                    detail,
+                )
+                continue
             u = 2 * (0.0005 * abs(v) + 0.5e-3)  # DMM read-back: common practice figure
-            self._decide_row(
-                tp.board_channel,
-                f"dc.{tp.key}",
-                v,
-                "V",
-                lim,
-                u,
-                {"test_point": tp.name, "quantity": tp.key},
-            )
+            self._decide_row(tp.board_channel, f"dc.{tp.key}", v, "V", lim, u, detail)
 
     def nominal(self, group: list[_ChannelState]) -> None:
         self.step_name = "nominal"
@@ -590,12 +678,34 @@ class Sequencer(BoardRun):
         # planned (coherent) frequency, output still off, and the frequency it reports used
         self.plan = self.scope_ops.tune(self.plan, lambda f: self.safe.configure(f, level))
         res = self._measure_at(group, level, self.plan, "nominal")
+        acq = self.last_acquisition
+        wide = self._wide_look(group)
         b = self.opt.bench
         for st in group:
             ch = st.conn.board_channel
             a = res[ch]
-            st.nominal = a
             lim = st.limits
+            cond = self._classify(st, acq, wide)
+            if cond.working and a is None:  # the output's sine did not stand out of the noise
+                cond = ChannelCondition("dead", "no sine wave above the noise", cond.evidence)
+            st.condition = cond
+            self._row(
+                ch,
+                "condition",
+                None,
+                "",
+                None,
+                None,
+                None,
+                "pass" if cond.working else "fail",
+                cond.to_dict(),
+            )
+            if not cond.working:
+                self.progress.note(f"channel {ch}: {cond.text}")
+                self._failed_rows(st, a, level)
+                continue
+            assert a is not None  # a working channel's record analyses (see above)
+            st.nominal = a
             detail = {"record": a.to_dict(), "level_vrms": level}
             if a.gain_db is None:
                 for name, unit, limit in (
@@ -646,6 +756,115 @@ class Sequencer(BoardRun):
             st.levels_commanded.append(level)
             self._sweep_point(ch, a, level)
 
+    def _wide_look(self, group: list[_ChannelState]) -> dict[str, tuple[np.ndarray, float]]:
+        """One short record of the outputs at the scope's highest sample rate, so an
+        oscillation far above the test frequency shows at its own frequency (the nominal
+        record, sampled for the test signal, would alias it, even onto DC)."""
+        rates = sorted(float(r) for r in self.scope.sample_rates_hz)
+        lengths = sorted(int(n) for n in self.scope.record_lengths)
+        fast = rates[-1]
+        if fast <= self.plan.sample_rate_hz * (1 + 1e-9):
+            return {}
+        # about ten test-signal periods, within the scope's lengths (100,000 at most)
+        want = min(max(10 * fast / self.plan.frequency_hz, 4096), 100_000)
+        n = next((k for k in lengths if k >= want), lengths[-1])
+        inputs = sorted({st.conn.output_scope for st in group})
+        self.scope.configure_timebase(fast, n)
+        self.scope_ops.timebase = None  # the next record sets its own again
+        acq = self.scope.acquire(inputs)
+        self.scope_ops.acquisitions += 1
+        return {
+            st.conn.board_channel: (
+                np.asarray(acq.volts[st.conn.output_scope], dtype=float),
+                float(acq.sample_rate_hz),
+            )
+            for st in group
+        }
+
+    def _classify(
+        self, st: _ChannelState, acq: Any, wide: dict[str, tuple[np.ndarray, float]]
+    ) -> ChannelCondition:
+        """The channel's mode from the nominal record (and the wide look)."""
+        c = st.conn
+        lim = st.limits
+        expected = float(lim.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
+        # a stuck output shows as a DC level only where nothing blocks DC on its way
+        dc_coupled = False
+        with contextlib.suppress(AttributeError, KeyError, IndexError):
+            dc_coupled = self.board.channel(c.board_channel).stages[-1].c_out is None
+        rails = (self.board.supply.v_neg, self.board.supply.v_pos) if dc_coupled else None
+        return classify_channel(
+            np.asarray(acq.volts[c.input_scope], dtype=float),
+            np.asarray(acq.volts[c.output_scope], dtype=float),
+            float(acq.sample_rate_hz),
+            float(self.plan.frequency_hz),
+            expected_gain=expected,
+            expected_phase_deg=float(lim.phase_deg),
+            rails_v=rails,
+            wide=wide.get(c.board_channel),
+        )
+
+    def _clip_row(self, ch: str, lim: Any, decision: str, detail: dict) -> None:
+        """A clipping-threshold row with no value (not resolvable, or not searched)."""
+        clim = lim.clip_input_vrms
+        self._row(
+            ch,
+            "clip_input",
+            None,
+            "V rms",
+            limit_get(clim, "low"),
+            limit_get(clim, "high"),
+            None,
+            decision,
+            detail,
+        )
+
+    def _failed_rows(self, st: _ChannelState, a: RecordAnalysis | None, level: float) -> None:
+        """A channel in a failure mode: its measurements stored as failed, with the mode and
+        its evidence; a gain still measurable (reversed polarity, gross gain error, hum) is
+        kept as the value, since the diagnosis can use it."""
+        ch = st.conn.board_channel
+        cond = st.condition
+        assert cond is not None
+        lim = st.limits
+        detail = {"mode": cond.mode, "why": cond.text, "evidence": cond.evidence}
+        keep = cond.mode in ("reversed_polarity", "gain_error", "hum") and a is not None
+        gain = a.gain_db if keep and a is not None else None
+        thd = a.thd_percent if keep and a is not None else None
+        for name, unit, limit, value in (
+            ("gain", "dB", lim.gain_db, gain),
+            ("thd", "%", lim.thd_percent, thd),
+        ):
+            self._row(
+                ch,
+                name,
+                value,
+                unit,
+                limit_get(limit, "low"),
+                limit_get(limit, "high"),
+                None,
+                "fail",
+                detail,
+            )
+        phase = cond.evidence.get("phase_deg")
+        expected = float(lim.phase_deg)
+        self._row(
+            ch,
+            "phase",
+            _wrap_near(phase, expected) if phase is not None else None,
+            "deg",
+            expected - PHASE_TOLERANCE_DEG,
+            expected + PHASE_TOLERANCE_DEG,
+            None,
+            "fail",
+            detail,
+        )
+        self._clip_row(
+            ch, lim, "fail", {**detail, "result": f"clipping search skipped: channel {cond.mode}"}
+        )
+        if a is not None:
+            self._sweep_point(ch, a, level)
+
     def _sweep_point(
         self, ch: str, a: RecordAnalysis, commanded: float, sweep: str = "clip"
     ) -> None:
@@ -668,7 +887,8 @@ class Sequencer(BoardRun):
         active = [
             s
             for s in group
-            if s.nominal is not None
+            if not s.failed
+            and s.nominal is not None
             and s.nominal.gain_db is not None
             and not self._unresolvable(s.conn.board_channel, "clip_input")
         ]
@@ -707,6 +927,8 @@ class Sequencer(BoardRun):
             self.search_acquisitions += 1
             for s in group:
                 a = res[s.conn.board_channel]
+                if a is None or s.failed:
+                    continue
                 self._sweep_point(s.conn.board_channel, a, level)
                 if a.gain_db is not None and a.thd_percent is not None:
                     s.points.append(a)
@@ -941,6 +1163,8 @@ class Sequencer(BoardRun):
             for s in group:
                 ch = s.conn.board_channel
                 a = res[ch]
+                if a is None or s.failed:
+                    continue
                 self._sweep_point(ch, a, level, sweep="frequency")
                 rel = None
                 if a.gain_db is not None and s.nominal is not None and s.nominal.gain_db:
@@ -1011,6 +1235,7 @@ class Sequencer(BoardRun):
             elapsed_s=time.perf_counter() - t0,
             instrument_s=self.clock.instrument_s,
             waiting_s=self.clock.waiting_s,
+            settle_waited_s=self.clock.settle_s,
         )
         if error is not None:
             raise_aborted(error, self.step_name)
@@ -1046,6 +1271,22 @@ class Sequencer(BoardRun):
                 log.warning("switch open_all failed: %s", exc)
 
 
+#: Margin between a test point's highest expected voltage and the DMM range asked for, so
+#: a board at the edge of its limits still reads on range (common practice).
+DMM_RANGE_MARGIN = 1.25
+
+
+def dmm_range_v(limit: Any) -> float | None:
+    """The DMM range that fits a test point's expected voltage from the model (its largest
+    magnitude, nominal or limit, with margin); None (the meter's own choice) when the model
+    gives no figure."""
+    values = [limit_get(limit, k) for k in ("nominal", "low", "high")]
+    known = [abs(v) for v in values if v is not None and math.isfinite(v)]
+    if not known or max(known) <= 0:
+        return None
+    return DMM_RANGE_MARGIN * max(known)
+
+
 def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
     """A board that must not see a signal: the supply is limiting (within 10 % of its
     current limit) or the current is off by more than a factor of two (a short, a missing
@@ -1056,9 +1297,13 @@ def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
     return (high is not None and current > 2 * high) or (low is not None and current < low / 2)
 
 
-def _agree(a: RecordAnalysis, b: RecordAnalysis) -> bool:
+def _failed(group: list[_ChannelState], channel: str) -> bool:
+    return any(s.failed for s in group if s.conn.board_channel == channel)
+
+
+def _agree(a: RecordAnalysis | None, b: RecordAnalysis | None) -> bool:
     """Two records after a level change agree: settled."""
-    if a.gain_db is None or b.gain_db is None:
+    if a is None or b is None or a.gain_db is None or b.gain_db is None:
         return False
     if abs(a.gain_db - b.gain_db) > 0.02:
         return False

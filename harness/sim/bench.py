@@ -90,6 +90,7 @@ class SimBench:
         port_base: int = 0,
         seed: int = 20240601,
         scope_settings: ScopeSettings | None = None,
+        settling: bool | None = None,
         dialect: str = "default",
     ) -> None:
         if dialect not in DIALECTS:
@@ -105,7 +106,10 @@ class SimBench:
         _, more = split_faults(instrument_faults, board)
         self.faults = tuple(component)
         self.sim = BoardSim(board, self.faults)
-        self.world = World(board, self.sim, rng_seed=seed)
+        # the realistic bench (latency) has a board that takes its time to settle too;
+        # without latency the board is always in its periodic steady state
+        self.settling = latency if settling is None else bool(settling)
+        self.world = World(board, self.sim, rng_seed=seed, settling=self.settling)
         self.latency = latency
         self.host = host
         self.port_base = port_base
@@ -138,9 +142,16 @@ class SimBench:
         self.world.drive = gen.drive
         self.world.rails = supply.rails
         self.world.closed_relays = lambda: tuple(switch.closed)
+        if self.settling:
+            self.world.follow_now()  # the board has sat unpowered until now
         self.servers: dict[str, ScpiServer] = {}
         for f in [*inst, *more]:
             self.devices[f.role].inject(f)
+
+    def sleep(self, seconds: float) -> None:
+        """A wait on the board's clock only (no real time passes): pass it as the harness's
+        ``sleep`` to test the settling waits fast."""
+        self.world.advance(seconds)
 
     # -- typed views ----------------------------------------------------------------------------
 

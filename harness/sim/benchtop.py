@@ -356,7 +356,7 @@ class SimBenchtopGenerator(SimGenerator):
             raise ScpiFailure(-222, f"level {value:g} {self.unit}")
         self.emf_rms = emf
         self.amplitude_vpp = emf * 2 * math.sqrt(2)  # the log's unit: EMF Vpp (at high Z)
-        self.log.append(GeneratorEvent(time.monotonic(), "amplitude_vpp", self.amplitude_vpp))
+        self._note(GeneratorEvent(time.monotonic(), "amplitude_vpp", self.amplitude_vpp))
 
     def _level_q(self, ctx: Ctx) -> str:
         self._out(ctx)

@@ -31,6 +31,7 @@ from dataclasses import dataclass, field
 from typing import Any, ClassVar
 
 import numpy as np
+from scipy.signal import lfilter
 
 from harness.instruments.scpi import encode_block, format_number
 from harness.sim.scpi import (
@@ -78,6 +79,12 @@ class _BenchDevice(ScpiDevice):
         super().__init__(serial=serial, lock=world.lock)
         self.latency = latency
 
+    def _note(self, event: Any) -> None:
+        """Log a change of what the board sees, and tell the world when it happened (the
+        board's capacitors start moving toward the new balance at that moment)."""
+        self.log.append(event)  # type: ignore[attr-defined]
+        self.world.changed()
+
     def busy_for(self, seconds: float) -> None:
         """An overlapped operation: *OPC? / *WAI / the next data query wait for it."""
         if self.latency:
@@ -123,9 +130,9 @@ class SimGenerator(_BenchDevice):
         self.amplitude_vpp = 0.1
         self.offset_v = 0.0
         self.output_on = False
-        self.log.append(GeneratorEvent(time.monotonic(), "reset", 0.0))
-        self.log.append(GeneratorEvent(time.monotonic(), "amplitude_vpp", self.amplitude_vpp))
-        self.log.append(GeneratorEvent(time.monotonic(), "output", 0.0))
+        self._note(GeneratorEvent(time.monotonic(), "reset", 0.0))
+        self._note(GeneratorEvent(time.monotonic(), "amplitude_vpp", self.amplitude_vpp))
+        self._note(GeneratorEvent(time.monotonic(), "output", 0.0))
 
     def drive(self) -> Drive:
         """EMF peak = Vpp setting / 2 (calibrated at high impedance)."""
@@ -155,7 +162,7 @@ class SimGenerator(_BenchDevice):
     def _frequency(self, ctx: Ctx, value: float) -> None:
         self._out(ctx)
         self.frequency_hz = value
-        self.log.append(GeneratorEvent(time.monotonic(), "frequency_hz", value))
+        self._note(GeneratorEvent(time.monotonic(), "frequency_hz", value))
 
     def _frequency_q(self, ctx: Ctx, which: str | None) -> str:
         self._out(ctx)
@@ -166,7 +173,7 @@ class SimGenerator(_BenchDevice):
         if abs(self.offset_v) + value / 2 > self.MAX_VPP / 2 + 1e-12:
             raise ScpiFailure(-221, "amplitude + offset exceed 10 V")
         self.amplitude_vpp = value
-        self.log.append(GeneratorEvent(time.monotonic(), "amplitude_vpp", value, out))
+        self._note(GeneratorEvent(time.monotonic(), "amplitude_vpp", value, out))
 
     def _amplitude_q(self, ctx: Ctx, which: str | None) -> str:
         self._out(ctx)
@@ -177,7 +184,7 @@ class SimGenerator(_BenchDevice):
         if abs(value) + self.amplitude_vpp / 2 > self.MAX_VPP / 2 + 1e-12:
             raise ScpiFailure(-221, "amplitude + offset exceed 10 V")
         self.offset_v = value
-        self.log.append(GeneratorEvent(time.monotonic(), "offset_v", value, out))
+        self._note(GeneratorEvent(time.monotonic(), "offset_v", value, out))
 
     def _offset_q(self, ctx: Ctx, which: str | None) -> str:
         self._out(ctx)
@@ -186,7 +193,7 @@ class SimGenerator(_BenchDevice):
     def _output(self, ctx: Ctx, on: bool) -> None:
         out = self._out(ctx)
         self.output_on = on
-        self.log.append(GeneratorEvent(time.monotonic(), "output", 1.0 if on else 0.0, out))
+        self._note(GeneratorEvent(time.monotonic(), "output", 1.0 if on else 0.0, out))
 
     def _output_q(self, ctx: Ctx) -> str:
         self._out(ctx)
@@ -261,6 +268,7 @@ class ScopeSettings:
     inl_hd3_dbc: float = -60.0
     link_bytes_per_s: float = 12.5e6  # transfer time at 100 Mbit/s when latency is on
     rearm_s: float = 1e-3
+    ac_corner_hz: float = 10.0  # AC coupling's high-pass corner (our choice; common practice)
 
 
 @dataclass
@@ -460,7 +468,7 @@ class SimScope(_BenchDevice):
 
     def acquire(self) -> None:
         """Take one record of every input now (samples are computed when fetched)."""
-        sig = self.world.signals()
+        sig = self.world.signals(self.points / self.rate_hz)
         rng = self.world.rng
         ts = 1.0 / self.rate_hz
         t_trig, wait = self._trigger_time(sig, rng)
@@ -501,14 +509,32 @@ class SimScope(_BenchDevice):
         frac = (level - a[i]) / (b[i] - a[i]) if b[i] != a[i] else 0.0
         return float(t[i] + frac * (period / n)), float(rng.uniform(0, period))
 
-    def _front(self, sig: SignalSet, n: int, inp: _Input, t: np.ndarray) -> np.ndarray:
-        """Probe-tip volts the input sees (AC coupling removes the mean over a period)."""
+    def _front(
+        self, sig: SignalSet, n: int, inp: _Input, t: np.ndarray, *, record: bool = False
+    ) -> np.ndarray:
+        """Probe-tip volts the input sees.  AC coupling is a first-order high-pass at
+        ``ac_corner_hz``: the mean over a period goes (the filter's long-run state for a
+        steady level); on a ``record`` (uniform ``t``) the filter also runs over a pre-roll
+        of three time constants, so a DC level still moving is attenuated as a real
+        coupling capacitor attenuates it, not passed whole."""
         v = sig.signal(n, t)
-        if inp.coupling == "AC":
-            period = 1.0 / sig.frequency_hz
-            grid = np.arange(1024) * (period / 1024)
-            v = v - float(np.mean(sig.signal(n, grid)))
-        return v
+        if inp.coupling != "AC":
+            return v
+        period = 1.0 / sig.frequency_hz
+        grid = np.arange(1024) * (period / 1024)
+        mean = float(np.mean(sig.signal(n, grid)))
+        v = v - mean
+        if not record or len(t) < 2:
+            return v
+        dt = float(t[1] - t[0])
+        tau = 1.0 / (2 * math.pi * self.settings.ac_corner_hz)
+        pre = min(int(3 * tau / dt), 200_000)
+        before = sig.signal(n, t[0] - dt * np.arange(pre, 0, -1)) - mean
+        x = np.concatenate([before, v])
+        # RC high-pass, backward Euler: y[i] = a (y[i-1] + x[i] - x[i-1]), a = tau/(tau + dt)
+        a = tau / (tau + dt)
+        y = lfilter([a, -a], [1.0, -a], x - x[0])
+        return y[pre:]
 
     def codes(self, n: int) -> tuple[np.ndarray, float, float]:
         """(ADC codes, lsb volts, offset volts) of input ``n`` in the last record."""
@@ -524,7 +550,7 @@ class SimScope(_BenchDevice):
         if n not in rec.codes:
             rng = np.random.default_rng([rec.seed, n])
             t = rec.t0_s + np.arange(rec.points) / rec.rate_hz
-            v = self._front(rec.signals, n, inp, t)
+            v = self._front(rec.signals, n, inp, t, record=True)
             x = (v - inp.offset_v) / lsb  # ideal code, LSB units
             half = full / 2
             u = np.clip(x / half, -1.5, 1.5)  # normalised input for the INL polynomial
@@ -718,6 +744,11 @@ class SimDmm(_BenchDevice):
             rng = next((r for r in self.RANGES_V if r >= range_v * (1 - 1e-9)), self.RANGES_V[-1])
             if abs(v) > 1.2 * rng:
                 return "9.9E37"  # overload (SCPI infinity)
+        # No range, DEF or AUTO: the meter picks its range itself (SCPI-99 vol. 1 MEASure,
+        # from memory: DEFault leaves the range to the instrument), so it never overloads
+        # below its top range.
+        elif abs(v) > 1.2 * self.RANGES_V[-1]:
+            return "9.9E37"
         return format_number(round(v, 7))
 
     def _measure(self, ctx: Ctx, range_v: Any, resolution: Any) -> str:
@@ -732,7 +763,8 @@ class SimDmm(_BenchDevice):
             "MEASure[:SCALar]:VOLTage[:DC]?",
             _measure,
             (
-                Num("V", 0.0, 1000.0, 10.0, optional=True, keywords=("AUTO",)),
+                # DEF and AUTO both mean autorange here: no default number stands in
+                Num("V", 0.0, 1000.0, None, optional=True, keywords=("AUTO", "DEF", "DEFAULT")),
                 Num("V", 0.0, 1000.0, 1e-5, optional=True),
             ),
             name="measure_dc_volts",
@@ -777,7 +809,7 @@ class SimSupply(_BenchDevice):
 
     def reset(self) -> None:
         self.outputs = {n: _Output() for n in range(1, self.OUTPUTS + 1)}
-        self.log.append(SupplyEvent(time.monotonic(), "reset", 0.0, 0))
+        self._note(SupplyEvent(time.monotonic(), "reset", 0.0, 0))
 
     def _n(self, ctx: Ctx) -> int:
         for node in ("SOURce", "OUTPut", "MEASure"):
@@ -818,7 +850,7 @@ class SimSupply(_BenchDevice):
     def _voltage(self, ctx: Ctx, value: float) -> None:
         n = self._n(ctx)
         self.outputs[n].voltage_v = value
-        self.log.append(SupplyEvent(time.monotonic(), "voltage_v", value, n))
+        self._note(SupplyEvent(time.monotonic(), "voltage_v", value, n))
 
     def _voltage_q(self, ctx: Ctx, which: str | None) -> str:
         return _bound(self.VOLT, which, self.outputs[self._n(ctx)].voltage_v)
@@ -826,7 +858,7 @@ class SimSupply(_BenchDevice):
     def _current(self, ctx: Ctx, value: float) -> None:
         n = self._n(ctx)
         self.outputs[n].current_a = value
-        self.log.append(SupplyEvent(time.monotonic(), "current_limit_a", value, n))
+        self._note(SupplyEvent(time.monotonic(), "current_limit_a", value, n))
 
     def _current_q(self, ctx: Ctx, which: str | None) -> str:
         return _bound(self.CURR, which, self.outputs[self._n(ctx)].current_a)
@@ -834,7 +866,7 @@ class SimSupply(_BenchDevice):
     def _output(self, ctx: Ctx, on: bool) -> None:
         n = self._n(ctx)
         self.outputs[n].on = on
-        self.log.append(SupplyEvent(time.monotonic(), "output", 1.0 if on else 0.0, n))
+        self._note(SupplyEvent(time.monotonic(), "output", 1.0 if on else 0.0, n))
 
     def _output_q(self, ctx: Ctx) -> str:
         return "1" if self.outputs[self._n(ctx)].on else "0"

@@ -46,6 +46,7 @@ from harness.sim.physics_circuit import (
     OpAmpModel,
     periodic_steady_state,
     thermal_voltage,
+    transient_period,
 )
 from harness.sim.physics_faults import (
     FAULT_KINDS,
@@ -100,6 +101,12 @@ class PeriodicResponse:
     nodes: Mapping[str, np.ndarray] = field(default_factory=dict)
     shooting_iterations: int = 0
     periodicity_error_v: float = 0.0
+    #: capacitor state (v_C(0), v_C(−h)) of this period's start, the period map's
+    #: monodromy matrix about it and the unknowns over the period (steps, n): what
+    #: :meth:`BoardSim.transient` needs to follow the board from another state
+    state: np.ndarray | None = field(default=None, repr=False)
+    monodromy: np.ndarray | None = field(default=None, repr=False)
+    x_unknown: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def period_s(self) -> float:
@@ -315,28 +322,20 @@ class BoardSim:
         lst = sol.warm.setdefault(wkey, [])
         lst.append((amplitude_vpk, state, np.vstack([per.x[1:], per.x[:1]])))
         del lst[:-8]
-        xs = per.x
-        full = np.empty((steps, circ.nf))
-        full[:, : circ.n] = xs
-        full[:, circ.n :] = circ.known_values
-        nodes = {
-            name: _ro(full[:, circ.index[name]].copy())
-            for name in circ.index
-            if not name.endswith("#p")
-        }
-        resp = PeriodicResponse(
+        resp = _response(
+            circ,
+            per.x,
             channel=channel,
             amplitude_vpk=amplitude_vpk,
             frequency_hz=frequency_hz,
             offset_v=offset_v,
             source_ohm=source_ohm,
             supply_v=v_pos,
-            t_s=_ro(np.arange(steps) / (steps * frequency_hz)),
-            v_in=nodes[circ.netlist.input_node],
-            v_out=nodes[circ.netlist.output_node],
-            nodes=nodes,
             shooting_iterations=per.iterations,
             periodicity_error_v=per.residual_v,
+            state=_ro(state.copy()),
+            monodromy=None if per.monodromy is None else _ro(per.monodromy),
+            x_unknown=_ro(per.x.copy()),
         )
         self._cache[key] = resp
         if len(self._cache) > _CACHE_SIZE:
@@ -360,15 +359,19 @@ class BoardSim:
         """DC bias keyed ``"<stage>.<quantity>"``: collector_v, emitter_v, base_v for BJT
         stages, output_v for op-amp stages (volts to ground)."""
         v = self.node_voltages(channel, supply_v=supply_v)
+        return {key: v[node] for key, node in self.test_point_nodes(channel, supply_v).items()}
+
+    def test_point_nodes(self, channel: str, supply_v: float | None = None) -> dict[str, str]:
+        """``"<stage>.<quantity>"`` -> the netlist node it is read at."""
         v_pos, v_neg = self._rails(supply_v)
-        out: dict[str, float] = {}
+        out: dict[str, str] = {}
         for sn in self._solver(channel, v_pos, v_neg).stage_nodes:
             if sn.output is not None:
-                out[f"{sn.name}.output_v"] = v[sn.output]
+                out[f"{sn.name}.output_v"] = sn.output
             else:
-                out[f"{sn.name}.collector_v"] = v[sn.collector]  # type: ignore[index]
-                out[f"{sn.name}.emitter_v"] = v[sn.emitter]  # type: ignore[index]
-                out[f"{sn.name}.base_v"] = v[sn.base]  # type: ignore[index]
+                out[f"{sn.name}.collector_v"] = sn.collector  # type: ignore[assignment]
+                out[f"{sn.name}.emitter_v"] = sn.emitter  # type: ignore[assignment]
+                out[f"{sn.name}.base_v"] = sn.base  # type: ignore[assignment]
         return out
 
     def supply_current_a(self, v_supply: float | None = None) -> float:
@@ -391,8 +394,81 @@ class BoardSim:
                 total += max(i_out, 0.0)
         return total
 
+    def transient(
+        self, resp: PeriodicResponse, state: np.ndarray
+    ) -> tuple[PeriodicResponse, np.ndarray]:
+        """One period of ``resp``'s channel under ``resp``'s drive, started from capacitor
+        state ``state`` instead of the periodic one: the board still settling after a level
+        change or supply on.  Returns that period (``evaluate`` reads it as if it repeated)
+        and the state it ends in."""
+        if resp.x_unknown is None:
+            raise SimulationError("the response carries no period solution to start from")
+        v_neg = self._rails(resp.supply_v)[1]
+        circ = self._solver(resp.channel, resp.supply_v, v_neg).circuit
+        omega = 2.0 * math.pi * resp.frequency_hz
+
+        def emf(t: np.ndarray) -> np.ndarray:
+            return resp.offset_v + resp.amplitude_vpk * np.sin(omega * t)
+
+        steps = len(resp.x_unknown)
+        try:
+            xs, end = transient_period(
+                circ,
+                emf,
+                1.0 / max(resp.source_ohm, 1e-3),
+                1.0 / resp.frequency_hz,
+                steps,
+                np.asarray(state, dtype=float),
+                resp.x_unknown,
+            )
+        except (ConvergenceError, np.linalg.LinAlgError) as exc:
+            raise SimulationError(f"channel {resp.channel}: transient not solved: {exc}") from None
+        # samples at h … T; the table wants 0 … T−h: the end of the period stands for its start
+        x_period = np.vstack([xs[-1:], xs[:-1]])
+        out = _response(
+            circ,
+            x_period,
+            channel=resp.channel,
+            amplitude_vpk=resp.amplitude_vpk,
+            frequency_hz=resp.frequency_hz,
+            offset_v=resp.offset_v,
+            source_ohm=resp.source_ohm,
+            supply_v=resp.supply_v,
+        )
+        return out, end
+
+    def stage_output_node(self, channel: str, stage: str) -> str:
+        """The netlist node a stage drives (collector, follower emitter, op-amp output)."""
+        v_pos, v_neg = self._rails(None)
+        for sn in self._solver(channel, v_pos, v_neg).stage_nodes:
+            if sn.name == stage:
+                node = sn.output or (sn.emitter if sn.kind == "emitter_follower" else sn.collector)
+                assert node is not None
+                return node
+        raise FaultSpecError(f"{channel}.{stage}", f"no stage {stage!r} on channel {channel}")
+
     def clear_cache(self) -> None:
         self._cache.clear()
+
+
+def _response(circ: Circuit, x_period: np.ndarray, **fields: Any) -> PeriodicResponse:
+    """A PeriodicResponse from the unknowns over one period (steps, n), t = 0 … T−h."""
+    steps = len(x_period)
+    full = np.empty((steps, circ.nf))
+    full[:, : circ.n] = x_period
+    full[:, circ.n :] = circ.known_values
+    nodes = {
+        name: _ro(full[:, circ.index[name]].copy())
+        for name in circ.index
+        if not name.endswith("#p")
+    }
+    return PeriodicResponse(
+        t_s=_ro(np.arange(steps) / (steps * fields["frequency_hz"])),
+        v_in=nodes[circ.netlist.input_node],
+        v_out=nodes[circ.netlist.output_node],
+        nodes=nodes,
+        **fields,
+    )
 
 
 def _rail_current(circ: Circuit, xf: np.ndarray, rail: str) -> float:

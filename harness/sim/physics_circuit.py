@@ -467,6 +467,9 @@ class PeriodSolution:
     newton_steps: int
     history_v: tuple[float, ...] = ()  # periodicity error after each shooting pass
     coarse_iterations: int = 0  # passes on the coarse pre-grid
+    #: d(state at T)/d(state at 0) about the periodic solution (2k × 2k, state = (v_C(0),
+    #: v_C(−h))): its powers carry a capacitor deviation forward by whole periods
+    monodromy: np.ndarray | None = None
 
 
 def periodic_steady_state(
@@ -584,7 +587,9 @@ def _shoot(
         if resid <= scale:
             # the sample at t = 0 is the one at t = T of a periodic solution
             x_period = np.vstack([xs[-1:], xs[:-1]])
-            return PeriodSolution(x_period, it, resid, total_newton, tuple(history)), s_end
+            mono = np.vstack([p_top, p_bot])
+            sol = PeriodSolution(x_period, it, resid, total_newton, tuple(history), 0, mono)
+            return sol, s_end
         a = np.vstack([p_top, p_bot]) - np.eye(2 * k)
         try:
             delta = np.linalg.solve(a, -f)
@@ -599,3 +604,44 @@ def _shoot(
         f"periodic steady state not reached in {max_shoot} shooting "
         f"iterations (residual {resid:.3g} V)"
     )
+
+
+def transient_period(
+    circ: Circuit,
+    emf,
+    g_src: float,
+    period_s: float,
+    steps: int,
+    state: np.ndarray,
+    x_guess: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """One period of the BDF2 map from capacitor state ``state`` = (v_C(0), v_C(−h)), not
+    periodic: the circuit on its way from an old balance to a new one.  ``x_guess`` (steps,
+    n) is a nearby solution (the periodic one) for Newton's first guesses.  Returns the node
+    voltages at t = h … T (steps, n) and the state at T."""
+    n, k = circ.n, circ.k
+    h = period_s / steps
+    src = g_src * emf(np.arange(1, steps + 1) * h)
+    cg = circ.cap_c / h
+    jac_lin = circ.g.copy()
+    jac_lin[circ.in_idx, circ.in_idx] += g_src
+    jac_lin += circ.inc @ np.diag(1.5 * cg) @ circ.inc.T
+    known_part = circ.full(x_guess[-1])
+    v_n, v_nm1 = state[:k].copy(), state[k:].copy()
+    xs = np.empty((steps, n))
+    # x_guess[i] is the periodic solution at t = i·h; step i solves t = (i+1)·h
+    nxt = np.vstack([x_guess[1:], x_guess[:1]])
+    x = x_guess[0]
+    for i in range(steps):
+        b = circ.inc @ (cg * (2.0 * v_n - 0.5 * v_nm1))
+        b[circ.in_idx] += src[i]
+        guess = nxt[i] + (xs[i - 1] - nxt[i - 1]) if i > 0 else nxt[i] + (x - x_guess[0])
+        try:
+            res = circ.newton(jac_lin, b, guess)
+        except ConvergenceError:
+            res = circ.newton(jac_lin, b, x, max_iter=400, max_step_v=0.2)
+        x = res.x
+        xs[i] = x
+        known_part[:n] = x
+        v_nm1, v_n = v_n, known_part[circ.cap_a] - known_part[circ.cap_b]
+    return xs, np.concatenate([v_n, v_nm1])

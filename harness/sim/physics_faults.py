@@ -15,7 +15,15 @@ short                  designator                  resistor → 1 mΩ; capacitor
 open_bypass            stage (A.gain) or C102      the emitter bypass capacitor removed
 low_beta=<beta>        stage (A.gain)              the stage transistor's β_F = <beta>
 shorted_junction=be|ce stage (A.gain)              1 mΩ across base-emitter or collector-emitter
+oscillate=<Hz>[,<Vpk>] stage (A.buffer)            a parasitic oscillation at the stage output
+                                                   (default 0.5 V peak there)
+hum=<Hz>[,<Vpk>]       channel (A)                 mains hum coupled into the channel input:
+                                                   the fundamental and its 2nd and 3rd
+                                                   harmonics at 1, 1/2, 1/4 (default 20 mV pk)
 =====================  ==========================  =============================================
+
+The last two add a signal and leave the circuit's parts alone (:mod:`harness.sim.world`
+adds them to the waveforms).
 """
 
 from __future__ import annotations
@@ -27,7 +35,9 @@ from typing import Literal
 from harness.errors import FaultSpecError
 from harness.model.board import Board, CommonEmitter, EmitterFollower, Part, iter_parts
 
-FaultKind = Literal["drift", "open", "short", "open_bypass", "low_beta", "shorted_junction"]
+FaultKind = Literal[
+    "drift", "open", "short", "open_bypass", "low_beta", "shorted_junction", "oscillate", "hum"
+]
 FAULT_KINDS: tuple[str, ...] = (
     "drift",
     "open",
@@ -35,8 +45,14 @@ FAULT_KINDS: tuple[str, ...] = (
     "open_bypass",
     "low_beta",
     "shorted_junction",
+    "oscillate",
+    "hum",
 )
-_NEEDS_VALUE = {"drift", "low_beta", "shorted_junction"}
+#: Faults that add a signal (frequency, peak volts) instead of changing a part.
+SIGNAL_KINDS = frozenset({"oscillate", "hum"})
+#: Peak level of a signal fault given without one: at the stage output / channel input.
+DEFAULT_SIGNAL_VPK = {"oscillate": 0.5, "hum": 0.02}
+_NEEDS_VALUE = {"drift", "low_beta", "shorted_junction", "oscillate", "hum"}
 _STAGE_KINDS = {"low_beta", "shorted_junction"}
 OPEN_OHM = 1e12
 SHORT_OHM = 1e-3
@@ -50,6 +66,7 @@ class Fault:
     kind: FaultKind
     ref: str
     value: float | str | None = None
+    level_vpk: float | None = None  # oscillate / hum: peak volts (None: the default)
 
     def __post_init__(self) -> None:
         spec = self.spec
@@ -77,6 +94,16 @@ class Fault:
                     f"junction {self.value!r} unknown",
                     hint="use shorted_junction=be or shorted_junction=ce",
                 )
+        elif self.kind in SIGNAL_KINDS:
+            for what, v in (("frequency", self.value), ("level", self.level_vpk)):
+                if v is None and what == "level":
+                    continue
+                if isinstance(v, str | bool) or not math.isfinite(float(v)) or float(v) <= 0:  # type: ignore[arg-type]
+                    raise FaultSpecError(
+                        spec,
+                        f"{what} must be a positive number (got {v!r})",
+                        hint=f"write e.g. {self.ref}:{self.kind}=400000,0.2 (Hz, V peak)",
+                    )
         elif self.kind in {"drift", "low_beta"}:
             if isinstance(self.value, str | bool):
                 raise FaultSpecError(spec, "value must be a number")
@@ -90,12 +117,24 @@ class Fault:
 
     @property
     def spec(self) -> str:
-        """The text form, e.g. ``R104:drift=1.3``."""
-        tail = "" if self.value is None else f"={self.value}"
+        """The text form, e.g. ``R104:drift=1.3``, ``A.buffer:oscillate=400000,0.2``."""
+        if self.value is None:
+            tail = ""
+        elif self.kind in SIGNAL_KINDS and isinstance(self.value, float):
+            tail = f"={self.value:g}"
+        else:
+            tail = f"={self.value}"
+        if self.level_vpk is not None:
+            tail += f",{self.level_vpk:g}"
         return f"{self.ref}:{self.kind}{tail}"
 
     def __str__(self) -> str:
         return self.spec
+
+    @property
+    def signal_vpk(self) -> float:
+        """Peak level of a signal fault (the default where none was given)."""
+        return self.level_vpk if self.level_vpk is not None else DEFAULT_SIGNAL_VPK[self.kind]
 
 
 def parse_fault(text: str, board: Board | None = None) -> Fault:
@@ -116,10 +155,22 @@ def parse_fault(text: str, board: Board | None = None) -> Fault:
             raw, f"unknown fault kind {kind!r}", hint=f"use one of: {', '.join(FAULT_KINDS)}"
         )
     value: float | str | None = None
+    level: float | None = None
     if eq:
         if not value_text:
             raise FaultSpecError(raw, "empty value after '='")
-        if kind == "shorted_junction":
+        if kind in SIGNAL_KINDS:
+            freq_text, comma, level_text = value_text.partition(",")
+            try:
+                value = float(freq_text)
+                level = float(level_text) if comma else None
+            except ValueError:
+                raise FaultSpecError(
+                    raw,
+                    f"value {value_text!r} is not <Hz>[,<V peak>]",
+                    hint=f"write e.g. {ref}:{kind}=400000,0.2",
+                ) from None
+        elif kind == "shorted_junction":
             value = value_text.lower()
         else:
             try:
@@ -128,7 +179,7 @@ def parse_fault(text: str, board: Board | None = None) -> Fault:
                 raise FaultSpecError(
                     raw, f"value {value_text!r} is not a number", hint="write e.g. R104:drift=1.3"
                 ) from None
-    fault = Fault(kind, ref, value)  # type: ignore[arg-type]
+    fault = Fault(kind, ref, value, level)  # type: ignore[arg-type]
     if board is not None:
         check_fault(board, fault)
     return fault
@@ -161,6 +212,23 @@ def check_fault(board: Board, fault: Fault) -> None:
     parts = component_parts(board)
     stages = {f"{ch.name}.{st.name}": st for ch in board.channels for st in ch.stages}
     spec = fault.spec
+    if fault.kind == "hum":
+        names = [ch.name for ch in board.channels]
+        if fault.ref not in names:
+            raise FaultSpecError(
+                spec,
+                f"no channel {fault.ref!r} on this board",
+                hint=f"use one of: {', '.join(names)}",
+            )
+        return
+    if fault.kind == "oscillate":
+        if fault.ref not in stages:
+            raise FaultSpecError(
+                spec,
+                f"no stage {fault.ref!r} on this board",
+                hint=f"use one of: {', '.join(stages)}",
+            )
+        return
     if fault.kind in _STAGE_KINDS or (fault.kind == "open_bypass" and fault.ref in stages):
         st = stages.get(fault.ref)
         if st is None:

@@ -179,6 +179,8 @@ class Num(Param):
 
     def parse(self, token: str) -> Any:
         t = token.strip().upper()
+        if t in self.keywords:  # an instrument may give MIN/MAX/DEF a meaning of its own
+            return t
         if t in ("MIN", "MINIMUM"):
             value = self.lo
         elif t in ("MAX", "MAXIMUM"):
@@ -187,8 +189,6 @@ class Num(Param):
             if self.default is None:
                 raise ScpiFailure(-224, "no default")
             value = self.default
-        elif t in self.keywords:
-            return t
         else:
             value = parse_numeric(t, self.unit)
             if not math.isfinite(value) or not self.lo <= value <= self.hi:

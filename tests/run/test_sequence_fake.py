@@ -211,3 +211,25 @@ def test_keyboard_interrupt_marks_aborted(tmp_path):
     assert run.status == "aborted" and "Ctrl-C" in (run.reason or "")
     assert not bench.on and not bench.supply_on
     assert kept  # what was measured before the interrupt is kept
+
+
+def test_dmm_overload_is_reported_as_over_range_with_no_value(tmp_path):
+    """SCPI-99 (from memory): 9.9E37 is the overload reading, parsed as infinity.  It is
+    stored as "over-range at TP1" with a null value and no uncertainty, the run goes on;
+    the DMM was asked for a range fitting the point's expected value, not DEF."""
+    bench = FakeBench(2, GAIN, CLIP_V)
+    asked: list[float | None] = []
+
+    def overload(range_v: float | None = None) -> float:
+        asked.append(range_v)
+        return math.inf
+
+    bench.instruments.dmm.dc_volts = overload
+    limits = FakeLimits(["A", "B"], GAIN, CLIP_V)
+    res, runs, stored, _ = _run(tmp_path, bench, limits)
+    row = next(m for m in stored if m.name == "dc.gain.collector_v")
+    assert row.value is None and row.uncertainty is None and row.decision == "fail"
+    assert "over-range at TP1" in row.detail_json
+    assert runs[0].status == "complete" and res.verdict == "FAIL"
+    high = limits.channels["A"].operating_point["gain.collector_v"].high
+    assert asked == [pytest.approx(1.25 * high)]

@@ -170,6 +170,20 @@ def test_dmm_reads_the_routed_test_point(bench: SimBench, board) -> None:
     assert bench.dmm.handle(b"SYST:ERR?").startswith(b"-221")
 
 
+def test_dmm_autoranges_on_def_and_reads_a_rail_test_point(bench: SimBench, board) -> None:
+    """SCPI-99 vol. 1, MEASure (from memory): the range parameter DEFault leaves the range
+    to the instrument, so the rail (relay 104, channel A buffer collector; 12.2 V, inside the
+    board's 12 V 2 % supply) reads as such with DEF, while an explicit 1 V range overloads
+    on it (9.9E37, SCPI infinity)."""
+    bench.supply.handle(b"VOLT 12.2;CURR 0.05;OUTP ON")
+    bench.switch.handle(b"ROUT:CLOS (@104)")
+    for form in (b"MEAS:VOLT:DC? DEF", b"MEAS:VOLT:DC? DEFault", b"MEAS:VOLT:DC?"):
+        assert float(bench.dmm.handle(form)) == pytest.approx(12.2, abs=0.01)
+    assert bench.dmm.handle(b"MEAS:VOLT:DC? 1") == b"9.9E37\n"
+    assert float(bench.dmm.handle(b"MEAS:VOLT:DC? 15")) == pytest.approx(12.2, abs=0.01)
+    assert bench.dmm.handle(b"SYST:ERR?").startswith(b"0,")
+
+
 def test_supply_current_limit_folds_back_and_kills_the_board(bench: SimBench, board) -> None:
     """Common practice (CV/CC supply): above the limit the output holds the limit current
     and its voltage falls; the board then has no signal at its output."""
@@ -249,3 +263,35 @@ def test_injected_block_faults_in_process(bench: SimBench) -> None:
     cut = bench.scope.handle(b"FETC? (@2)")
     assert 0 < len(cut) < len(full)
     assert bench.scope.handle(b"FETC? (@2)") == full
+
+
+def test_signal_faults_add_an_oscillation_and_hum_at_their_level(board) -> None:
+    """``A.buffer:oscillate=400000,0.2`` adds 0.2 V peak at 400 kHz at channel A's output
+    (the follower drives the output connector); ``B:hum=50,0.01`` adds 10 mV peak mains hum
+    at channel B's input, amplified by the channel; from numpy.fft.rfft of a coherent record
+    (10 MS/s, 100000 points: 400 kHz in bin 4000; 50 Hz needs 20 ms at 1 MS/s)."""
+    from harness.sim.physics import parse_fault
+
+    osc = SimBench(board, faults=["A.buffer:oscillate=400000,0.2"])
+    osc.supply.handle(b"VOLT 12;CURR 0.05;OUTP ON")
+    osc.scope.handle(b"SENS2:VOLT:RANG 2;:SWE:TINT 1E-7;:SWE:POIN 100000;:TRIG:SOUR IMM")
+    osc.scope.handle(b"INIT")
+    codes, lsb, _ = osc.devices["scope"].codes(2)
+    spec = np.abs(np.fft.rfft(codes * lsb)) * 2 / len(codes)
+    assert spec[4000] == pytest.approx(0.2, rel=0.03)
+    assert np.max(spec[10:3990]) < 0.01
+    # without the supply the board does not oscillate
+    osc.supply.handle(b"OUTP OFF")
+    osc.scope.handle(b"INIT")
+    codes, lsb, _ = osc.devices["scope"].codes(2)
+    assert np.max(np.abs(np.fft.rfft(codes * lsb))[1:] * 2 / len(codes)) < 0.01
+
+    hum = SimBench(board, faults=[parse_fault("B:hum=50,0.01", board)])
+    hum.supply.handle(b"VOLT 12;CURR 0.05;OUTP ON")
+    hum.scope.handle(b"SENS3:VOLT:RANG 0.8;:SWE:TINT 1E-6;:SWE:POIN 100000;:TRIG:SOUR IMM")
+    hum.scope.handle(b"INIT")
+    codes, lsb, _ = hum.devices["scope"].codes(3)
+    spec = np.abs(np.fft.rfft(codes * lsb)) * 2 / len(codes)
+    gain = 10 ** (19.4 / 20)  # the demo channel's gain, about 19.4 dB (limits)
+    assert spec[5] == pytest.approx(0.01 * gain, rel=0.1)  # 50 Hz: bin 5 of 0.1 s
+    assert spec[10] == pytest.approx(0.005 * gain, rel=0.1)
