@@ -312,7 +312,13 @@ class Characterizer(BoardRun):
         if changed:
             self._settle()
         out, _ = self.scope_ops.acquire(group, plan)
-        return out
+        lost = sorted(k for k, v in out.items() if v is None)
+        if lost:
+            raise AnalysisError(
+                f"characterisation at {level:g} V rms: no analysable record on {', '.join(lost)}",
+                hint="run `stageproof run` first: it names a dead, stuck or oscillating channel",
+            )
+        return {k: v for k, v in out.items() if v is not None}
 
     def _settle(self) -> None:
         if self.settle_s > 0:

@@ -266,7 +266,7 @@ class World:
             out_pk = abs(resp.harmonics("out", 1)[1])
             if fault.kind == "hum":
                 gain = out_pk / max(abs(resp.harmonics("in", 1)[1]), 1e-30)
-                base = float(fault.value)  # type: ignore[arg-type]
+                base = float(fault.value)
                 tones = [
                     (k * base, float(gain * fault.signal_vpk * w))
                     for k, w in ((1, 1.0), (2, 0.5), (3, 0.25))
@@ -276,7 +276,7 @@ class World:
                 y = np.asarray(resp.nodes[node], dtype=float)
                 node_pk = 2.0 * abs(np.fft.rfft(y)[1]) / len(y)
                 gain = out_pk / max(node_pk, 1e-30)
-                tones = [(float(fault.value), float(gain * fault.signal_vpk))]  # type: ignore[arg-type]
+                tones = [(float(fault.value), float(gain * fault.signal_vpk))]
             out.setdefault(channel, []).extend(tones)
         self._extra[supply_v] = out
         return out
