@@ -49,6 +49,7 @@ def one_run(board, limits, work: Path, *, latency: bool, settling: bool) -> dict
         "settle": res.settle_waited_s,
         "acq": res.acquisitions,
         "verdict": res.verdict,
+        "failing": {k: c.failing for k, c in res.channels.items()},
         "note": res.settle_note,
         "thr": {m.channel: m.value for m in res.measurements if m.name == "clip_input"},
     }
@@ -68,6 +69,9 @@ def main() -> None:
                 f"{run['settle']:.1f} s, {run['acq']} acquisitions, verdict {run['verdict']}"
             )
             print(f"  {run['note']}")
+            for ch, failing in sorted(run["failing"].items()):
+                if failing:
+                    print(f"  channel {ch} failing: {', '.join(failing)}")
             for ch, value in sorted(run["thr"].items()):
                 r = ref["thr"].get(ch)
                 if value is None or r is None:
