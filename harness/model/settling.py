@@ -72,8 +72,10 @@ def _b(x: object, n: int) -> np.ndarray:
 
 
 def _par(*rs: np.ndarray) -> np.ndarray:
-    g = sum(1.0 / np.asarray(r, dtype=float) for r in rs)
-    return np.asarray(1.0 / g, dtype=float)
+    """Resistances in parallel; a zero one (an ideal voltage source) shorts the rest."""
+    with np.errstate(divide="ignore"):
+        g = sum(1.0 / np.asarray(r, dtype=float) for r in rs)
+        return np.asarray(1.0 / g, dtype=float)
 
 
 def time_constants(
