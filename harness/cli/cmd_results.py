@@ -25,6 +25,7 @@ from harness.store import (
     open_store,
     parse_when,
 )
+from harness.store.frame import RUN_FIELDS
 
 if TYPE_CHECKING:
     from rich.console import Console
@@ -140,22 +141,7 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-_LIST_FIELDS = (
-    "run_id",
-    "serial",
-    "part_number",
-    "board_name",
-    "status",
-    "verdict",
-    "retest",
-    "started_at",
-    "ended_at",
-    "station",
-    "fixture",
-    "operator",
-    "software_version",
-    "reason",
-)
+_LIST_FIELDS = ("run_id", *RUN_FIELDS, "reason")
 
 
 def _write_csv(rows: list[dict[str, Any]], fields: tuple[str, ...]) -> None:

@@ -23,7 +23,8 @@ if TYPE_CHECKING:  # pandas is imported on use: station processes that only writ
 
     from harness.store.sql import SQLStore
 
-_RUN_FIELDS = (
+#: A run's own fields that every frame and listing carries, in their display order.
+RUN_FIELDS = (
     "serial",
     "part_number",
     "board_name",
@@ -73,7 +74,7 @@ _TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
         (
             "measurement_id",
             "run_id",
-            *_RUN_FIELDS,
+            *RUN_FIELDS,
             "channel",
             "name",
             "value",
@@ -92,7 +93,7 @@ _TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
         (
             "point_id",
             "run_id",
-            *_RUN_FIELDS,
+            *RUN_FIELDS,
             "channel",
             "sweep",
             "level_vrms",
@@ -122,7 +123,7 @@ _FLOATS = (
     "thdn_percent",
 )
 _INTS = ("run_id", "measurement_id", "point_id", "retest", "pid")
-_RUN_SET = {"run_id", *_RUN_FIELDS, *_TABLES["runs"][1]}
+_RUN_SET = {"run_id", *RUN_FIELDS, *_TABLES["runs"][1]}
 
 
 def frame_sql(what: str, columns: Sequence[str] | None, where: RunFilter) -> tuple[str, list]:
