@@ -222,6 +222,8 @@ def make_server(
     """A line server bound to ``host:port`` (port 0: any free port), not yet serving."""
     try:
         return LineServer((host, port), db, shifts)
+    except StoreError:  # the database, not the port (StoreError is an OSError too)
+        raise
     except OSError as exc:
         raise StoreError(
             f"cannot listen on {host}:{port}: {exc.strerror or exc}",

@@ -188,3 +188,14 @@ def test_line_page_reads_postgresql(pg_url: str) -> None:
         srv.shutdown()
         thread.join(timeout=10)
         srv.server_close()
+
+
+def test_an_unreachable_database_is_named_as_the_database_not_the_port(tmp_path: Path) -> None:
+    """A database that cannot be opened is reported as such: the store's own one-line error,
+    never "cannot listen on ..." (the store's error is an OSError too, like a bind failure)."""
+    from harness.errors import StoreError
+
+    with pytest.raises(StoreError) as info:
+        make_server(str(tmp_path / "missing" / "results.db"), port=0)
+    assert "cannot listen" not in str(info.value)
+    assert "results database" in str(info.value)
