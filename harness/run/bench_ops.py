@@ -15,23 +15,31 @@ from __future__ import annotations
 import contextlib
 import logging
 import math
-import time
-from collections.abc import Callable, Iterable, Iterator, Sequence
-from dataclasses import asdict, replace
-from typing import Any, Literal, NoReturn
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import asdict, is_dataclass, replace
+from typing import Any, Literal, NoReturn, Protocol
 
 import numpy as np
 
 from harness import __version__, jsontext
 from harness.errors import AnalysisError, InstrumentError, RunAborted
+from harness.instruments.drivers import Acquisition
+from harness.instruments.scpi import Identity
 from harness.io.board import read_board_text
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion, RecordAnalysis, analyze_uniform, plan_coherent
-from harness.measure.coherent import plan_coherent_within
+from harness.measure.coherent import CoherentPlan, plan_coherent_within
 from harness.model.board import Board
 from harness.model.design import check_settle_time
+from harness.model.limits import BoardLimits, Limit
+from harness.run.progress import Progress
+from harness.run.roles import GeneratorRole, InstrumentSet, ScopeRole, SupplyRole, SwitchRole
+from harness.run.roles import recoveries as station_recoveries
 from harness.run.safety import SafeGenerator, SupplyGuard, sigterm_raises
-from harness.store import MeasurementRow, RunHeader, SweepPointRow
+from harness.store import MeasurementRow, ResultStore, RunHeader, SweepPointRow
+
+#: A measurement's or sweep point's detail: free-form JSON (numbers, texts, lists, dicts).
+Detail = dict[str, Any]
 
 #: A record fills at most this fraction of the scope range (headroom for tolerances).
 RANGE_FILL = 0.8
@@ -47,7 +55,7 @@ log = logging.getLogger("harness.run")
 
 
 # --- small conversions -------------------------------------------------------------------
-def json_default(o: Any) -> Any:
+def json_default(o: object) -> object:
     """JSON for the numpy scalars, arrays and result objects that end up in detail texts."""
     if isinstance(o, np.generic):
         return o.item()
@@ -55,24 +63,26 @@ def json_default(o: Any) -> Any:
         return o.tolist()
     if hasattr(o, "to_dict"):
         return o.to_dict()
-    if hasattr(o, "__dataclass_fields__"):
+    if is_dataclass(o) and not isinstance(o, type):
         return asdict(o)
     return str(o)
 
 
-def identity_text(identity: Any) -> str:
+def identity_text(identity: Identity | str) -> str:
     """One instrument's identity as stored in the run header (maker,model,serial,firmware)."""
     if isinstance(identity, str):
         return identity
-    fields = [getattr(identity, k, "") for k in ("maker", "model", "serial", "firmware")]
+    fields = [identity.maker, identity.model, identity.serial, identity.firmware]
     if any(fields):
         return ",".join(str(f) for f in fields)
     return str(identity)
 
 
-def limit_get(limit: Any, attr: str) -> float | None:
+def limit_get(limit: Limit | None, attr: Literal["nominal", "low", "high"]) -> float | None:
     """A limit's bound as a float, None where the limit (or the bound) is absent."""
-    v = getattr(limit, attr, None)
+    if limit is None:
+        return None
+    v = limit.low if attr == "low" else limit.high if attr == "high" else limit.nominal
     return None if v is None else float(v)
 
 
@@ -92,10 +102,20 @@ def choose_range(vpp: float, ranges: Iterable[float], fill: float = RANGE_FILL) 
 FILL_MATCH = 1.25
 
 
+class CoherentRecord(Protocol):
+    """What the digitiser-harmonic correction needs of a record's plan (a CoherentPlan)."""
+
+    @property
+    def cycles(self) -> int: ...
+
+    @property
+    def n_samples(self) -> int: ...
+
+
 def added_thd_percent(
     x: np.ndarray,
     y: np.ndarray,
-    plan: Any,
+    plan: CoherentRecord,
     in_adc: tuple[float, float],
     out_adc: tuple[float, float],
     k_max: int = 10,
@@ -148,7 +168,10 @@ def clip_criterion(board: Board) -> ClipCriterion:
 
 
 def settle_time_s(
-    limits: Any, fixture: FixtureConfig, override_s: float | None, board: Board | None = None
+    limits: BoardLimits,
+    fixture: FixtureConfig,
+    override_s: float | None,
+    board: Board | None = None,
 ) -> float:
     """The operator's settle time, else the longest the model gives a tested channel; a
     model wait over MAX_SETTLE_S (a capacitor's value or unit wrong) is refused with a
@@ -166,7 +189,7 @@ def settle_time_s(
 
 
 def safe_generator(
-    generator: Any,
+    generator: GeneratorRole,
     board: Board,
     fixture: FixtureConfig,
     max_step_up_db: float,
@@ -188,22 +211,14 @@ def safe_generator(
     )
 
 
-def station_disturbances(instruments: Any) -> Callable[[], int] | None:
+def station_disturbances(instruments: InstrumentSet) -> Callable[[], int] | None:
     """A counter of every recovery on the station's sessions (None without sessions)."""
-    sessions = getattr(instruments, "sessions", None)
-    if not isinstance(sessions, dict) or not sessions:
+    if not instruments.sessions:
         return None
-
-    def count() -> int:
-        return sum(
-            int(getattr(s, "reconnects", 0) or 0) + int(getattr(s, "troubles", 0) or 0)
-            for s in sessions.values()
-        )
-
-    return count
+    return lambda: station_recoveries(instruments)
 
 
-def supply_guard(fixture: FixtureConfig, supply: Any) -> SupplyGuard | None:
+def supply_guard(fixture: FixtureConfig, supply: SupplyRole | None) -> SupplyGuard | None:
     """The fixture's supply settings on the station's supply; None without either."""
     if fixture.supply is None or supply is None:
         return None
@@ -221,11 +236,11 @@ def run_header(
     serial: str,
     board: Board,
     board_file: str,
-    limits: Any,
+    limits: BoardLimits,
     fixture: FixtureConfig,
     station: str,
     operator: str,
-    identities: dict[str, Any],
+    identities: Mapping[str, Identity | str],
     settle_note: str,
     fixture_note: str = "",
 ) -> RunHeader:
@@ -259,7 +274,7 @@ class RunLog:
     """Where a run's results go: every decided measurement is stored at once (a crash loses
     nothing decided), kept for the verdict and shown; sweep points are stored."""
 
-    def __init__(self, store: Any, progress: Any) -> None:
+    def __init__(self, store: ResultStore, progress: Progress) -> None:
         self.store = store
         self.progress = progress
         self.run_id = -1
@@ -280,7 +295,7 @@ class RunLog:
         uncertainty: float | None,
         decision: str,
         step: str,
-        detail: dict | None = None,
+        detail: Detail | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
         """Store, keep and show one decided measurement.  A value that could not be measured
@@ -312,7 +327,7 @@ class RunLog:
         self.progress.measurement(row)
         return row
 
-    def sweep_point(self, channel: str, sweep: str, a: RecordAnalysis, extra: dict) -> None:
+    def sweep_point(self, channel: str, sweep: str, a: RecordAnalysis, extra: Detail) -> None:
         """One analysed record as a sweep point; ``extra`` goes to ``extra_json`` as given."""
         self.store.add_sweep_point(
             self.run_id,
@@ -330,16 +345,14 @@ class RunLog:
         )
 
     def heartbeat(self) -> None:
-        """Tell the store the run is alive (a store without heartbeats is fine)."""
-        hb = getattr(self.store, "heartbeat", None)
-        if hb is not None:
-            hb(self.run_id)
+        """Tell the store the run is alive (during long waits with nothing to store)."""
+        self.store.heartbeat(self.run_id)
 
 
 # --- the run's frame ------------------------------------------------------------------------
 @contextlib.contextmanager
 def routed(
-    switch: Any,
+    switch: SwitchRole | None,
     channels: Iterable[ChannelConnection],
     safe: SafeGenerator,
     on_release: Callable[[], None] | None = None,
@@ -422,7 +435,7 @@ def raise_aborted(error: BaseException, step: str) -> NoReturn:
 
 # --- planning -------------------------------------------------------------------------------
 def plan_record(
-    scope: Any,
+    scope: ScopeRole,
     frequency_hz: float,
     *,
     max_points: int,
@@ -431,7 +444,7 @@ def plan_record(
     tolerance_rel: float,
     longer_records: bool = False,
     fallback: Literal["any", "shortest"] = "any",
-) -> Any:
+) -> CoherentPlan:
     """A coherent record near ``frequency_hz``: the longest record up to ``max_points``
     (lowest noise floor) lasting at most ``max_record_s[0]``, relaxed to each next duration
     in turn if none fits.  ``longer_records`` also tries lengths above ``max_points``,
@@ -445,7 +458,9 @@ def plan_record(
     elif not lengths:
         lengths = all_lengths[:1]
     rates = list(scope.sample_rates_hz)
-    plans: dict[int, Any] = {}  # length -> plan, None where the length has no coherent plan
+    plans: dict[
+        int, CoherentPlan | None
+    ] = {}  # length -> plan, None where the length has no coherent plan
     for max_s in max_record_s:
         for n in lengths:
             if n not in plans:
@@ -496,7 +511,7 @@ class GroupScope:
 
     def __init__(
         self,
-        scope: Any,
+        scope: ScopeRole,
         board: Board,
         *,
         max_rerange: int,
@@ -521,7 +536,7 @@ class GroupScope:
         self.acquisitions = 0
 
     # --- timing: read back, never assume -------------------------------------------------
-    def _fits(self, plan: Any) -> bool:
+    def _fits(self, plan: CoherentPlan) -> bool:
         """The timebase in force records ``plan``: same rate, at least its samples."""
         if self.timebase is None:
             return False
@@ -530,7 +545,7 @@ class GroupScope:
             plan.n_samples
         )
 
-    def realise(self, plan: Any, *, tolerance_rel: float = 0.01) -> Any:
+    def realise(self, plan: CoherentPlan, *, tolerance_rel: float = 0.01) -> CoherentPlan:
         """Set the scope's timebase for ``plan`` and return the plan the scope can record.
 
         The scope reports the sample rate and record length it chose; where they differ
@@ -561,7 +576,9 @@ class GroupScope:
             )
         return new
 
-    def tune(self, plan: Any, set_frequency: Callable[[float], float | None]) -> Any:
+    def tune(
+        self, plan: CoherentPlan, set_frequency: Callable[[float], float | None]
+    ) -> CoherentPlan:
         """Realise ``plan`` on the scope, set the generator from it and return the plan with
         the frequency the generator reports (the analysis uses that one)."""
         plan = self.realise(plan)
@@ -585,7 +602,7 @@ class GroupScope:
             setup = self.scope.configure_input(
                 scope_input, range_vpp=range_vpp, probe=probe, coupling=cpl
             )
-        self.ranges[scope_input] = float(getattr(setup, "range_vpp", range_vpp))
+        self.ranges[scope_input] = float(setup.range_vpp)
 
     def preset(
         self,
@@ -617,12 +634,12 @@ class GroupScope:
     def acquire(
         self,
         channels: Sequence[ChannelConnection],
-        plan: Any,
+        plan: CoherentPlan,
         *,
         correct_adc: bool = True,
         fill_match: float | None = FILL_MATCH,
         tolerant: bool = False,
-    ) -> tuple[dict[str, RecordAnalysis | None], Any]:
+    ) -> tuple[dict[str, RecordAnalysis | None], Acquisition]:
         """One acquisition of every input of the group (re-ranged and repeated when a record
         is over-range or uses too little of its range, at most ``max_rerange`` times), each
         channel analysed.  With ``correct_adc`` the THD is the board's added THD; with
@@ -682,8 +699,9 @@ class GroupScope:
         for c in channels:
             x = np.asarray(acq.volts[c.input_scope], dtype=float)
             y = np.asarray(acq.volts[c.output_scope], dtype=float)
-            in_adc = tuple(acq.adc_limits[c.input_scope])
-            out_adc = tuple(acq.adc_limits[c.output_scope])
+            in_lo, in_hi = acq.adc_limits[c.input_scope]
+            out_lo, out_hi = acq.adc_limits[c.output_scope]
+            in_adc, out_adc = (float(in_lo), float(in_hi)), (float(out_lo), float(out_hi))
             try:
                 a = analyze_uniform(
                     x,
@@ -720,7 +738,7 @@ class GroupScope:
 
     def _acquire_sound(
         self, inputs: list[int], input_probes: list[int], points: int | None = None
-    ) -> Any:
+    ) -> Acquisition:
         """One acquisition (the first ``points`` samples of the record, None: all) taken with
         the generator as the run set it, its input levels checked against the safe level."""
         for _ in range(MAX_RESTORES):
@@ -770,92 +788,3 @@ def _fills_match(
         float(np.ptp(x)) / (in_adc[1] - in_adc[0]), 1e-12
     )
     return 1 / fill_match <= fill_ratio <= fill_match
-
-
-# --- one run of a board -------------------------------------------------------------------------
-class BoardRun:
-    """What any run of one board on the bench holds: the board, its limits and fixture, the
-    safe generator, the supply guard, the scope, the settle time and the run's log.  The
-    subclass passes the instrument objects it drives (timed proxies or the drivers), sets
-    ``settle_note`` and may name the station and annotate the fixture differently.
-    ``options`` needs operator, station_name, settle_wait_s, max_rerange, max_step_up_db."""
-
-    #: Appended to the fixture text of the run header.
-    fixture_note = ""
-
-    def __init__(
-        self,
-        instruments: Any,
-        board: Board,
-        limits: Any,
-        fixture: FixtureConfig,
-        serial: str,
-        store: Any,
-        options: Any,
-        progress: Any,
-        *,
-        board_file: str,
-        generator: Any,
-        scope: Any,
-        supply: Any,
-        note: Callable[[str], None] | None = None,
-    ) -> None:
-        self.inst = instruments
-        self.board = board
-        self.limits = limits
-        self.fixture = fixture
-        self.serial = serial
-        self.store = store
-        self.opt = options
-        self.progress = progress
-        self.board_file = board_file
-        self.criterion = clip_criterion(board)
-        self.safe = safe_generator(
-            generator,
-            board,
-            fixture,
-            options.max_step_up_db,
-            on_alarm=note,
-            disturbances=station_disturbances(instruments),
-        )
-        self.scope_ops = GroupScope(
-            scope,
-            board,
-            max_rerange=options.max_rerange,
-            note=note,
-            safe=self.safe,
-            restore=self._restore_signal,
-        )
-        self.supply: SupplyGuard | None = supply_guard(fixture, supply)
-        self.settle_s = settle_time_s(limits, fixture, options.settle_wait_s, board)
-        self.settle_note = ""
-        self.run_log = RunLog(store, progress)
-        self.rows: list[MeasurementRow] = self.run_log.rows
-        self.run_id = -1
-
-    def station_text(self) -> str:
-        return self.opt.station_name
-
-    def _restore_signal(self) -> bool:
-        """After an instrument recovery: the generator back on (ramped) and settled; True
-        when the last record was taken without the signal."""
-        if not self.safe.resync():
-            return False
-        if self.settle_s > 0:
-            sleep = getattr(self.opt, "sleep", None) or time.sleep
-            sleep(self.settle_s)
-        return True
-
-    def header(self) -> RunHeader:
-        return run_header(
-            serial=self.serial,
-            board=self.board,
-            board_file=self.board_file,
-            limits=self.limits,
-            fixture=self.fixture,
-            station=self.station_text(),
-            operator=self.opt.operator,
-            identities=getattr(self.inst, "identities", {}) or {},
-            settle_note=self.settle_note,
-            fixture_note=self.fixture_note,
-        )

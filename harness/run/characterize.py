@@ -35,24 +35,23 @@ import math
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Literal
+from typing import Literal
 
 import numpy as np
 
 from harness.errors import AnalysisError, RunAborted, SafetyError
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import RecordAnalysis, clip_threshold
+from harness.measure.bracket import Threshold
+from harness.measure.coherent import CoherentPlan
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
-from harness.run.bench_ops import (
-    BoardRun,
-    plan_record,
-    raise_aborted,
-    routed,
-    run_guarded,
-)
+from harness.model.limits import BoardLimits, Limit
+from harness.run.bench_ops import Detail, plan_record
 from harness.run.progress import NullProgress, Progress
-from harness.store import MeasurementRow
+from harness.run.roles import InstrumentSet
+from harness.run.steps import Order, RunContext, build_context, move_to, perform, power_up, settle
+from harness.store import MeasurementRow, ResultStore
 
 log = logging.getLogger("harness.run.characterize")
 
@@ -126,9 +125,9 @@ class ChannelCharacterization:
     reference_gain_db: float | None = None
     measured_corner_hz: float | None = None
     corner_bracket_hz: tuple[float, float] | None = None
-    threshold: Any = None
+    threshold: Threshold | None = None
     stopped_because: str = ""
-    model: dict[str, Any] = field(default_factory=dict)
+    model: dict[str, Limit] = field(default_factory=dict)
 
     def relative_db(self) -> list[tuple[float, float]]:
         """(frequency, gain − mid-band gain) of the frequency sweep, sorted."""
@@ -189,47 +188,22 @@ def corner_from_sweep(points: Sequence[tuple[float, float]]) -> tuple[float, int
     return None
 
 
-class Characterizer(BoardRun):
-    """One characterisation run; use :func:`characterize`."""
+class CharacterisationSteps:
+    """The characterisation's own steps and what they gather (the curves per channel),
+    composed with the run's context; :func:`characterisation_order` puts them in order,
+    :func:`characterize` runs them."""
 
-    fixture_note = "; characterisation"
-
-    def __init__(
-        self,
-        instruments: Any,
-        board: Board,
-        limits: Any,
-        fixture: FixtureConfig,
-        serial: str,
-        store: Any,
-        options: CharacterizeOptions,
-        progress: Progress,
-        *,
-        board_file: str,
-    ) -> None:
-        super().__init__(
-            instruments,
-            board,
-            limits,
-            fixture,
-            serial,
-            store,
-            options,
-            progress,
-            board_file=board_file,
-            generator=instruments.generator,
-            scope=instruments.scope,
-            supply=getattr(instruments, "supply", None),
-        )
-        self.settle_note = f"waited {self.settle_s:.3g} s after each level or frequency change" + (
+    def __init__(self, ctx: RunContext, options: CharacterizeOptions) -> None:
+        self.ctx = ctx
+        self.opt = options
+        ctx.settle_note = f"waited {ctx.settle_s:.3g} s after each level or frequency change" + (
             " (operator override)"
             if options.settle_wait_s is not None
             else " (the model's settle time)"
         )
         self.channels = {
-            c.board_channel: ChannelCharacterization(c.board_channel) for c in fixture.channels
+            c.board_channel: ChannelCharacterization(c.board_channel) for c in ctx.fixture.channels
         }
-        self.step = "setup"
 
     # --- store ----------------------------------------------------------------------
     def _row(
@@ -238,8 +212,8 @@ class Characterizer(BoardRun):
         name: str,
         value: float | None,
         unit: str,
-        limit: Any,
-        detail: dict | None = None,
+        limit: Limit | None,
+        detail: Detail | None = None,
     ) -> MeasurementRow:
         low = None if limit is None or limit.low is None else float(limit.low)
         high = None if limit is None or limit.high is None else float(limit.high)
@@ -249,7 +223,9 @@ class Characterizer(BoardRun):
             decision = "fail"
         else:
             decision = "pass" if limit.contains(value) else "fail"
-        return self.run_log.row(ch, name, value, unit, low, high, None, decision, self.step, detail)
+        return self.ctx.log.row(
+            ch, name, value, unit, low, high, None, decision, self.ctx.step, detail
+        )
 
     def _point(
         self,
@@ -257,7 +233,7 @@ class Characterizer(BoardRun):
         sweep: Literal["level", "frequency"],
         a: RecordAnalysis,
         commanded: float,
-        extra: dict | None = None,
+        extra: Detail | None = None,
     ) -> CharPoint:
         p = CharPoint(
             ch,
@@ -277,23 +253,24 @@ class Characterizer(BoardRun):
             "over_range": a.over_range,
             **(extra or {}),
         }
-        self.run_log.sweep_point(ch, sweep, a, data)
+        self.ctx.log.sweep_point(ch, sweep, a, data)
         return p
 
     # --- measuring ------------------------------------------------------------------
     def _gains(self, group: Sequence[ChannelConnection]) -> dict[str, float]:
-        nom = self.board.conditions.nominal_input_vrms
+        nom = self.ctx.board.conditions.nominal_input_vrms
+        channels = self.ctx.limits.channels
         return {
-            c.board_channel: float(self.limits.channels[c.board_channel].output_vrms_nominal) / nom
+            c.board_channel: float(channels[c.board_channel].output_vrms_nominal) / nom
             for c in group
         }
 
-    def _plan(self, frequency_hz: float, *, tolerance_rel: float = 0.01) -> Any:
+    def _plan(self, frequency_hz: float, *, tolerance_rel: float = 0.01) -> CoherentPlan:
         """A coherent record near ``frequency_hz`` lasting at most max_record_s: the longest
         record up to ``max_points``, else the shortest longer one that fits (low
         frequencies need long records); else the shortest-lasting plan there is."""
         return plan_record(
-            self.inst.scope,
+            self.ctx.roles.scope,
             frequency_hz,
             max_points=self.opt.max_points,
             max_record_s=(self.opt.max_record_s,),
@@ -303,15 +280,16 @@ class Characterizer(BoardRun):
             fallback="shortest",
         )
 
-    def _measure(self, group, level: float, plan: Any, gains: dict) -> dict[str, RecordAnalysis]:
-        changed = abs(level - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
-        self.scope_ops.preset([(c, gains[c.board_channel]) for c in group], level)
-        self.safe.set_level(level)
-        if self.safe.output_state != "on":
-            self.safe.on()
-        if changed:
-            self._settle()
-        out, _ = self.scope_ops.acquire(group, plan)
+    def _measure(
+        self,
+        group: Sequence[ChannelConnection],
+        level: float,
+        plan: CoherentPlan,
+        gains: dict[str, float],
+    ) -> dict[str, RecordAnalysis]:
+        if move_to(self.ctx, [(c, gains[c.board_channel]) for c in group], level):
+            settle(self.ctx)
+        out, _ = self.ctx.scope.acquire(group, plan)
         lost = sorted(k for k, v in out.items() if v is None)
         if lost:
             raise AnalysisError(
@@ -320,33 +298,28 @@ class Characterizer(BoardRun):
             )
         return {k: v for k, v in out.items() if v is not None}
 
-    def _settle(self) -> None:
-        if self.settle_s > 0:
-            self.opt.sleep(self.settle_s)
-        self.run_log.heartbeat()
-
     def _met(self, a: RecordAnalysis, small_gain: float | None) -> bool:
         """The record meets the clipping criterion.  THD counts only clear of the bench's
         floor (a small level on an 8-bit scope reads high THD from quantisation alone)."""
-        if self.criterion.kind == "thd":
+        if self.ctx.criterion.kind == "thd":
             thd = a.thd_percent or 0.0
             floor = FLOOR_MARGIN * float(a.floor.thd_percent)
-            return thd >= self.criterion.threshold_percent and thd >= floor
+            return thd >= self.ctx.criterion.threshold_percent and thd >= floor
         if a.gain_db is None or small_gain is None:
             return False
-        return small_gain - a.gain_db >= self.criterion.db
+        return small_gain - a.gain_db >= self.ctx.criterion.db
 
     def level_sweep(self, group: Sequence[ChannelConnection]) -> None:
-        self.step = "level"
-        cond = self.board.conditions
+        self.ctx.step = "level"
+        cond = self.ctx.board.conditions
         nom, safe = cond.nominal_input_vrms, cond.safe_input_vrms
         plan = self._plan(cond.frequency_hz)
-        self.progress.step(
+        self.ctx.progress.step(
             "level",
             f"level sweep at {plan.frequency_hz:.6g} Hz, "
             f"{self.opt.level_step_db:g} dB steps, up to {safe:g} V rms at most",
         )
-        plan = self.scope_ops.tune(plan, lambda f: self.safe.configure(f, min(nom, safe)))
+        plan = self.ctx.scope.tune(plan, lambda f: self.ctx.safe.configure(f, min(nom, safe)))
         gains = self._gains(group)
         small: dict[str, float | None] = {}
         pending = {c.board_channel for c in group}
@@ -369,7 +342,7 @@ class Characterizer(BoardRun):
                     self.channels[
                         ch
                     ].stopped_because = (
-                        f"criterion ({self.criterion.label}) met at {a.input_vrms:.4g} V rms"
+                        f"criterion ({self.ctx.criterion.label}) met at {a.input_vrms:.4g} V rms"
                     )
                 if a.gain_db is not None and a.gain_db > -20:
                     gains[ch] = 10 ** (a.gain_db / 20)
@@ -382,22 +355,22 @@ class Characterizer(BoardRun):
                     self.channels[ch].stopped_because = why
                 break
             k += 1
-        self.progress.note(f"level sweep stopped: {why}")
+        self.ctx.progress.note(f"level sweep stopped: {why}")
         # back to the nominal level before anything else (decreases are immediate)
-        self.safe.set_level(min(nom, safe))
+        self.ctx.safe.set_level(min(nom, safe))
 
     def frequency_sweep(self, group: Sequence[ChannelConnection]) -> None:
-        self.step = "frequency"
-        cond = self.board.conditions
+        self.ctx.step = "frequency"
+        cond = self.ctx.board.conditions
         level = min(cond.nominal_input_vrms, cond.safe_input_vrms)
-        corners = [self.limits.channels[c.board_channel].low_corner_hz for c in group]
+        corners = [self.ctx.limits.channels[c.board_channel].low_corner_hz for c in group]
         lowest = min((float(c.low) if c.low is not None else float(c.nominal)) for c in corners)
         f_lo = (
             min(self.opt.f_start_hz, CORNER_MARGIN * lowest) if lowest > 0 else self.opt.f_start_hz
         )
         f_hi = self.opt.f_stop_hz
         freqs = log_frequencies(f_lo, f_hi, self.opt.points_per_decade, [cond.frequency_hz])
-        self.progress.step(
+        self.ctx.progress.step(
             "frequency",
             f"frequency sweep {f_lo:.3g} Hz to {f_hi:.3g} Hz at "
             f"{level:g} V rms, {len(freqs)} points",
@@ -428,17 +401,19 @@ class Characterizer(BoardRun):
                 rel = ch.relative_db()
                 ch.measured_corner_hz = found[0]
                 ch.corner_bracket_hz = (rel[found[1] - 1][0], rel[found[1]][0])
-        self.scope_ops.tune(self._plan(cond.frequency_hz), self.safe.set_frequency)
+        self.ctx.scope.tune(self._plan(cond.frequency_hz), self.ctx.safe.set_frequency)
 
-    def _freq_point(self, group, f: float, level: float, gains: dict) -> None:
+    def _freq_point(
+        self, group: Sequence[ChannelConnection], f: float, level: float, gains: dict[str, float]
+    ) -> None:
         try:
             # the sweep's frequencies need not be exact: the planned one is recorded
             plan = self._plan(f, tolerance_rel=FREQ_TOLERANCE)
         except AnalysisError as exc:
-            self.progress.note(f"{f:.4g} Hz skipped: {exc}")
+            self.ctx.progress.note(f"{f:.4g} Hz skipped: {exc}")
             return
-        plan = self.scope_ops.tune(plan, self.safe.set_frequency)
-        self._settle()
+        plan = self.ctx.scope.tune(plan, self.ctx.safe.set_frequency)
+        settle(self.ctx)
         res = self._measure(group, level, plan, gains)
         for c in group:
             ch = c.board_channel
@@ -446,8 +421,8 @@ class Characterizer(BoardRun):
 
     def _reference(self, ch_name: str) -> None:
         ch = self.channels[ch_name]
-        f_test = self.board.conditions.frequency_hz
-        corner = float(self.limits.channels[ch_name].low_corner_hz.nominal)
+        f_test = self.ctx.board.conditions.frequency_hz
+        corner = float(self.ctx.limits.channels[ch_name].low_corner_hz.nominal)
         lo = MIDBAND_FACTOR * corner
         g = [
             p.gain_db
@@ -465,12 +440,12 @@ class Characterizer(BoardRun):
 
     # --- comparison rows -------------------------------------------------------------
     def compare(self, group: Sequence[ChannelConnection]) -> None:
-        self.step = "compare"
-        nom = self.board.conditions.nominal_input_vrms
+        self.ctx.step = "compare"
+        nom = self.ctx.board.conditions.nominal_input_vrms
         for c in group:
             name = c.board_channel
             ch = self.channels[name]
-            lim = self.limits.channels[name]
+            lim = self.ctx.limits.channels[name]
             ch.model = {
                 "gain_db": lim.gain_db,
                 "thd_percent": lim.thd_percent,
@@ -504,12 +479,12 @@ class Characterizer(BoardRun):
                     [p.input_vrms for p in pts],
                     [p.thd_percent for p in pts],
                     [p.gain_db for p in pts],
-                    self.criterion,
+                    self.ctx.criterion,
                     pts[0].gain_db,
                 )
                 ch.threshold = th
                 detail = {
-                    "criterion": self.criterion.label,
+                    "criterion": self.ctx.criterion.label,
                     "bracketed": th.bracketed,
                     "below_vrms": th.below_vrms,
                     "above_vrms": th.above_vrms,
@@ -539,91 +514,96 @@ class Characterizer(BoardRun):
                 {
                     "window_hz": [
                         MIDBAND_FACTOR * float(lim.low_corner_hz.nominal),
-                        self.board.conditions.frequency_hz,
+                        self.ctx.board.conditions.frequency_hz,
                     ]
                 },
             )
 
     # --- the whole run ---------------------------------------------------------------
-    def _steps(self) -> None:
-        with self.safe:  # output off before the first step and on every exit
-            if self.supply is not None:
-                self.step = "supply"
-                self.supply.on()
-                self._settle()
-                cur = self.supply.current_a()
-                self._row(
-                    "",
-                    "supply_current",
-                    cur,
-                    "A",
-                    self.limits.supply_current_a,
-                    {"tripped": self.supply.tripped()},
-                )
-                if self.supply.tripped():
-                    raise RunAborted("supply tripped: no signal applied", step="supply")
-            switch = getattr(self.inst, "switch", None)
-            for grp in self.fixture.groups():
-                with routed(switch, grp, self.safe):
-                    self.level_sweep(grp)
-                    self.frequency_sweep(grp)
-                self.compare(grp)
+    def supply_on(self) -> None:
+        """Supply on and its current compared; a tripped supply stops before any signal."""
+        supply = self.ctx.supply
+        if supply is None:
+            return
+        reading = power_up(self.ctx, supply, self.ctx.settle_s)
+        self._row(
+            "",
+            "supply_current",
+            reading.current_a,
+            "A",
+            self.ctx.limits.supply_current_a,
+            {"tripped": reading.tripped},
+        )
+        if reading.tripped:
+            raise RunAborted("supply tripped: no signal applied", step="supply")
 
-    def _shutdown(self) -> None:
-        self.safe.safe_off()
-        if self.supply is not None:
-            self.supply.safe_off()
+    def open_group(self, group: tuple[ChannelConnection, ...]) -> tuple[ChannelConnection, ...]:
+        return group
 
     def run(self) -> CharacterizationResult:
-        t0 = time.perf_counter()
-        self.run_id = self.run_log.begin(self.header())
-        status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step, self.safe, self.supply
-        )
-        verdict: Literal["PASS", "FAIL"] | None = None
-        if status == "complete":
-            decided = [r for r in self.rows if r.decision != "info"]
-            verdict = "PASS" if decided and all(r.decision == "pass" for r in decided) else "FAIL"
-            reason = reason or (
+        ctx = self.ctx
+
+        def verdict(
+            status: Literal["complete", "aborted"], reason: str | None
+        ) -> tuple[Literal["PASS", "FAIL"] | None, str | None]:
+            if status != "complete":
+                return None, reason
+            decided = [r for r in ctx.log.rows if r.decision != "info"]
+            ok = bool(decided) and all(r.decision == "pass" for r in decided)
+            return ("PASS" if ok else "FAIL"), reason or (
                 "characterisation: PASS means every compared quantity lies in the model's band"
             )
-        self.store.finish_run(self.run_id, status, verdict, reason)
+
+        outcome = perform(ctx, characterisation_order(self), verdict)
+        board, crit = ctx.board, ctx.criterion
         result = CharacterizationResult(
-            run_id=self.run_id,
-            serial=self.serial,
-            board_name=self.board.name,
-            part_number=self.board.part_number,
-            status=status,
-            verdict=verdict,
-            reason=reason,
+            run_id=ctx.run_id,
+            serial=ctx.serial,
+            board_name=board.name,
+            part_number=board.part_number,
+            status=outcome.status,
+            verdict=outcome.verdict,
+            reason=outcome.reason,
             channels=self.channels,
-            measurements=list(self.rows),
-            safe_input_vrms=self.board.conditions.safe_input_vrms,
-            nominal_input_vrms=self.board.conditions.nominal_input_vrms,
-            frequency_hz=self.board.conditions.frequency_hz,
-            criterion=self.criterion.label,
-            criterion_thd_percent=self.criterion.threshold_percent
-            if self.criterion.kind == "thd"
-            else None,
-            max_commanded_vrms=self.safe.max_commanded_vrms,
-            generator_state=self.safe.output_state,
-            settle_note=self.settle_note,
-            limits_digest=str(self.limits.digest),
-            acquisitions=self.scope_ops.acquisitions,
-            elapsed_s=time.perf_counter() - t0,
+            measurements=list(ctx.log.rows),
+            safe_input_vrms=board.conditions.safe_input_vrms,
+            nominal_input_vrms=board.conditions.nominal_input_vrms,
+            frequency_hz=board.conditions.frequency_hz,
+            criterion=crit.label,
+            criterion_thd_percent=crit.threshold_percent if crit.kind == "thd" else None,
+            max_commanded_vrms=ctx.safe.max_commanded_vrms,
+            generator_state=ctx.safe.output_state,
+            settle_note=ctx.settle_note,
+            limits_digest=str(ctx.limits.digest),
+            acquisitions=ctx.scope.acquisitions,
+            elapsed_s=outcome.elapsed_s,
         )
-        if error is not None:
-            raise_aborted(error, self.step)
+        outcome.reraise(ctx.step)
         return result
 
 
+def characterisation_order(
+    c: CharacterisationSteps,
+) -> Order[tuple[ChannelConnection, ...]]:
+    """The characterisation: the supply, then per group the level and frequency sweeps
+    with the route closed and the comparison with the model once it is open again."""
+    return Order(
+        name="characterisation",
+        unpowered=(),
+        board=(c.supply_on,),
+        group=c.open_group,
+        routed=(c.level_sweep, c.frequency_sweep),
+        after=(c.compare,),
+    )
+
+
 def characterize(
-    instruments: Any,
+    instruments: InstrumentSet,
     board: Board,
-    limits: Any,
+    limits: BoardLimits,
     fixture: FixtureConfig,
     serial: str,
-    store: Any,
+    store: ResultStore,
     *,
     options: CharacterizeOptions | None = None,
     progress: Progress | None = None,
@@ -631,14 +611,18 @@ def characterize(
 ) -> CharacterizationResult:
     """Characterise one board (see the module doc).  The store must be open; the run is
     stored as a run of its own (fixture text ends in "characterisation")."""
-    return Characterizer(
+    opts = options or CharacterizeOptions()
+    ctx = build_context(
         instruments,
-        board,
-        limits,
-        fixture,
-        serial,
-        store,
-        options or CharacterizeOptions(),
-        progress or NullProgress(),
+        board=board,
+        limits=limits,
+        fixture=fixture,
+        serial=serial,
         board_file=board_file or board.source,
-    ).run()
+        station=opts.station_name,
+        store=store,
+        options=opts,
+        progress=progress or NullProgress(),
+        fixture_note="; characterisation",
+    )
+    return CharacterisationSteps(ctx, opts).run()

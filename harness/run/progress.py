@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from typing import Any, Protocol
+from typing import Protocol
+
+from harness.store import MeasurementRow
 
 
 class Progress(Protocol):
@@ -11,7 +13,7 @@ class Progress(Protocol):
     def step(self, name: str, text: str) -> None:
         """A step starts (``supply``, ``dc``, ``nominal``, ``clip``, ``frequency``...)."""
 
-    def measurement(self, row: Any) -> None:
+    def measurement(self, row: MeasurementRow) -> None:
         """A measurement row was decided and stored."""
 
     def note(self, text: str) -> None:
@@ -24,7 +26,7 @@ class NullProgress:
     def step(self, name: str, text: str) -> None:
         pass
 
-    def measurement(self, row: Any) -> None:
+    def measurement(self, row: MeasurementRow) -> None:
         pass
 
     def note(self, text: str) -> None:
@@ -35,12 +37,12 @@ class RecordingProgress(NullProgress):
     """Keeps every callback, for tests and the JSON output."""
 
     def __init__(self) -> None:
-        self.events: list[tuple[str, Any]] = []
+        self.events: list[tuple[str, tuple[str, str] | MeasurementRow | str]] = []
 
     def step(self, name: str, text: str) -> None:
         self.events.append(("step", (name, text)))
 
-    def measurement(self, row: Any) -> None:
+    def measurement(self, row: MeasurementRow) -> None:
         self.events.append(("measurement", row))
 
     def note(self, text: str) -> None:

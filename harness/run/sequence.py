@@ -34,6 +34,7 @@ from typing import Any, Literal
 import numpy as np
 
 from harness.errors import FixtureFileError, StageproofError
+from harness.instruments.drivers import Acquisition
 from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import (
     FLOOR_TO_READING_U,
@@ -43,20 +44,19 @@ from harness.measure import (
     measurement_floor,
     next_search_level,
 )
+from harness.measure.coherent import CoherentPlan
 from harness.measure.condition import ChannelCondition, classify_channel
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
 from harness.model.design import MAX_SETTLE_S, check_settle_time
+from harness.model.limits import BoardLimits, ChannelLimits, Limit
 from harness.model.settling import SETTLE_TAUS
 from harness.run.bench_ops import (
     RANGE_FILL,
-    BoardRun,
+    Detail,
     choose_range,
     limit_get,
     plan_record,
-    raise_aborted,
-    routed,
-    run_guarded,
 )
 from harness.run.decisions import (
     STRICT,
@@ -69,13 +69,16 @@ from harness.run.decisions import (
     threshold_uncertainty_db,
 )
 from harness.run.progress import NullProgress, Progress
-from harness.store import MeasurementRow
+from harness.run.roles import InstrumentSet
+from harness.run.steps import Order, RunContext, build_context, move_to, perform, power_up, settle
+from harness.store import MeasurementRow, ResultStore
 
 __all__ = [
     "ChannelVerdict",
+    "ProductionSteps",
     "RunOptions",
     "RunResult",
-    "Sequencer",
+    "production_order",
     "run_board",
 ]
 
@@ -206,38 +209,6 @@ def _why(a: RecordAnalysis) -> str:
     return a.reason or "no valid reading in the record"
 
 
-class _Clock:
-    """Time spent inside instrument calls, for the overhead figure."""
-
-    def __init__(self) -> None:
-        self.instrument_s = 0.0
-        self.waiting_s = 0.0
-        self.settle_s = 0.0  # settling waits asked for (what the board saw pass)
-
-
-class _Timed:
-    """Proxy of a driver that adds the time of every method call to a clock."""
-
-    def __init__(self, target: Any, clock: _Clock) -> None:
-        self._target = target
-        self._clock = clock
-
-    def __getattr__(self, name: str) -> Any:
-        value = getattr(self._target, name)
-        if not callable(value):
-            return value
-        clock = self._clock
-
-        def call(*args: Any, **kwargs: Any) -> Any:
-            t0 = time.perf_counter()
-            try:
-                return value(*args, **kwargs)
-            finally:
-                clock.instrument_s += time.perf_counter() - t0
-
-        return call
-
-
 def _wrap_near(phase_deg: float, expected: float) -> float:
     d = (phase_deg - expected + 180.0) % 360.0 - 180.0
     return expected + d
@@ -246,11 +217,11 @@ def _wrap_near(phase_deg: float, expected: float) -> float:
 @dataclass
 class _ChannelState:
     conn: ChannelConnection
-    limits: Any
+    limits: ChannelLimits
     points: list[RecordAnalysis] = field(default_factory=list)
     levels_commanded: list[float] = field(default_factory=list)
     done: bool = False
-    step: Any = None
+    step: SearchStep | None = None
     nominal: RecordAnalysis | None = None
     condition: ChannelCondition | None = None
 
@@ -260,53 +231,23 @@ class _ChannelState:
         return self.condition is not None and not self.condition.working
 
 
-class Sequencer(BoardRun):
-    """One board's run; use :func:`run_board`."""
+class ProductionSteps:
+    """The production sequence's own steps and the state they share over one run (the
+    record plan, the settling mode, the search count), composed with the run's context;
+    :func:`production_order` puts them in order, :func:`run_board` runs them."""
 
-    def __init__(
-        self,
-        instruments: Any,
-        board: Board,
-        limits: Any,
-        fixture: FixtureConfig,
-        serial: str,
-        store: Any,
-        options: RunOptions,
-        progress: Progress,
-        *,
-        board_file: str,
-        station_file: str,
-    ) -> None:
-        self.clock = _Clock()
-        self.gen_raw = _Timed(instruments.generator, self.clock)
-        self.scope = _Timed(instruments.scope, self.clock)
-        self.switch = _Timed(instruments.switch, self.clock) if instruments.switch else None
-        self.dmm = _Timed(instruments.dmm, self.clock) if instruments.dmm else None
-        self.supply_raw = _Timed(instruments.supply, self.clock) if instruments.supply else None
-        super().__init__(
-            instruments,
-            board,
-            limits,
-            fixture,
-            serial,
-            store,
-            options,
-            progress,
-            board_file=board_file,
-            generator=self.gen_raw,
-            scope=self.scope,
-            supply=self.supply_raw,
-            note=progress.note,
-        )
-        self.station_file = station_file
+    def __init__(self, ctx: RunContext, options: RunOptions) -> None:
+        self.ctx = ctx
+        self.opt = options
+        board, limits, fixture = ctx.board, ctx.limits, ctx.fixture
         self.search_acquisitions = 0
         self.supply_settle_s = (
-            self.settle_s
+            self.ctx.settle_s
             if options.settle_wait_s is not None
             else max(
-                [self.settle_s]
+                [self.ctx.settle_s]
                 + [
-                    float(getattr(limits.channels[c.board_channel], "supply_settle_time_s", 0.0))
+                    float(limits.channels[c.board_channel].supply_settle_time_s)
                     for c in fixture.channels
                     if c.board_channel in limits.channels
                 ]
@@ -316,37 +257,37 @@ class Sequencer(BoardRun):
             # a wrong capacitor value must not keep the supply on for days (see bench_ops)
             for c in fixture.channels:
                 ch_lim = limits.channels.get(c.board_channel)
-                wait = float(getattr(ch_lim, "supply_settle_time_s", 0.0))
+                wait = float(ch_lim.supply_settle_time_s) if ch_lim is not None else 0.0
                 with contextlib.suppress(AttributeError):
                     check_settle_time(board, board.channel(c.board_channel), wait)
         self.settle_mode: Literal["wait", "verify"] = options.settle
-        long_wait = options.settle_wait_s is None and self.settle_s > options.max_settle_wait_s
+        long_wait = options.settle_wait_s is None and self.ctx.settle_s > options.max_settle_wait_s
         if long_wait:
             self.settle_mode = "verify"
         #: between repeated records: one time constant of the slowest operating-point mode
-        self.verify_interval_s = self.settle_s / SETTLE_TAUS
+        self.verify_interval_s = self.ctx.settle_s / SETTLE_TAUS
         if self.settle_mode == "verify":
-            self.settle_note = (
+            self.ctx.settle_note = (
                 "settling verified by repeating the record after each level change, "
                 f"{self.verify_interval_s:.3g} s apart, until gain and THD agree"
                 + (
-                    f" (the model's settle time {self.settle_s:.3g} s is longer than "
+                    f" (the model's settle time {self.ctx.settle_s:.3g} s is longer than "
                     f"{options.max_settle_wait_s:g} s)"
                     if long_wait
                     else ""
                 )
             )
         elif options.settle_wait_s is not None:
-            self.settle_note = (
-                f"waited {self.settle_s:.3g} s after each level change "
+            self.ctx.settle_note = (
+                f"waited {self.ctx.settle_s:.3g} s after each level change "
                 "(operator override of the model's settle time)"
             )
         else:
-            self.settle_note = (
-                f"waited the model's settle time {self.settle_s:.3g} s after each level change"
+            self.ctx.settle_note = (
+                f"waited the model's settle time {self.ctx.settle_s:.3g} s after each level change"
             )
-        if self.supply_settle_s > self.settle_s and fixture.supply is not None:
-            self.settle_note += (
+        if self.supply_settle_s > self.ctx.settle_s and fixture.supply is not None:
+            self.ctx.settle_note += (
                 f"; {self.supply_settle_s:.3g} s after supply on (the output capacitors "
                 "charging into the load move the operating point until then)"
             )
@@ -355,33 +296,32 @@ class Sequencer(BoardRun):
                 c.output_scope
                 for c in fixture.channels
                 if c.board_channel in limits.channels
-                and float(getattr(limits.channels[c.board_channel], "dc_settle_time_s", 0.0))
-                > (0.0 if self.settle_mode == "verify" else self.settle_s)
+                and float(limits.channels[c.board_channel].dc_settle_time_s)
+                > (0.0 if self.settle_mode == "verify" else self.ctx.settle_s)
             }
         )
         for n in ac:
-            self.scope_ops.coupling[n] = "AC"
+            self.ctx.scope.coupling[n] = "AC"
         if ac:
-            self.settle_note += (
+            self.ctx.settle_note += (
                 "; outputs AC-coupled (scope inputs "
                 + ", ".join(str(n) for n in ac)
                 + "): their DC level, set by the output capacitor into the load, is still "
                 "moving when the wait ends"
             )
         self.plan = self._plan(board.conditions.frequency_hz)
-        self.step_name = "setup"
-        self.last_acquisition: Any = None
+        self.last_acquisition: Acquisition | None = None
 
     # --- helpers --------------------------------------------------------------------
     @property
     def acquisitions(self) -> int:
-        return self.scope_ops.acquisitions
+        return self.ctx.scope.acquisitions
 
-    def _plan(self, frequency_hz: float) -> Any:
+    def _plan(self, frequency_hz: float) -> CoherentPlan:
         """A coherent record near ``frequency_hz``: the longest record (lowest noise floor)
         that lasts at most MAX_RECORD_S, relaxed step by step if none fits."""
         return plan_record(
-            self.scope,
+            self.ctx.roles.scope,
             frequency_hz,
             max_points=self.opt.max_points,
             max_record_s=(MAX_RECORD_S, 2.5 * MAX_RECORD_S, 10 * MAX_RECORD_S),
@@ -402,8 +342,8 @@ class Sequencer(BoardRun):
         detail: dict | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
-        return self.run_log.row(
-            channel, name, value, unit, low, high, u, decision, self.step_name, detail, reason
+        return self.ctx.log.row(
+            channel, name, value, unit, low, high, u, decision, self.ctx.step, detail, reason
         )
 
     def _decide_row(
@@ -412,7 +352,7 @@ class Sequencer(BoardRun):
         name: str,
         value: float | None,
         unit: str,
-        limit: Any,
+        limit: Limit | None,
         u: float,
         detail: dict | None = None,
         reason: str | None = None,
@@ -433,24 +373,18 @@ class Sequencer(BoardRun):
             and r.name == name
             and r.decision == "not resolvable"
             and r.step == "precheck"
-            for r in self.rows
+            for r in self.ctx.log.rows
         )
 
     def _wait_settle(self, *, always: bool = False, seconds: float | None = None) -> None:
         """Wait the settle time (or ``seconds``) after a change; in "verify" mode only when
         ``always`` or ``seconds`` is given.  The wait is counted as simulated or real, as
         the sleep given in the options makes it."""
-        wait = self.settle_s if seconds is None else seconds
-        if (always or seconds is not None or self.settle_mode == "wait") and wait > 0:
-            t0 = time.perf_counter()
-            self.opt.sleep(wait)
-            self.clock.waiting_s += time.perf_counter() - t0
-            self.clock.settle_s += wait
-        self.run_log.heartbeat()
+        settle(self.ctx, seconds, wait=always or seconds is not None or self.settle_mode == "wait")
 
     # --- acquisition ----------------------------------------------------------------
     def _tip_ranges(self, probe: float) -> tuple[float, ...]:
-        return self.scope_ops.tip_ranges(probe)
+        return self.ctx.scope.tip_ranges(probe)
 
     def _gains(self, group: list[_ChannelState]) -> list[tuple[ChannelConnection, float]]:
         """Each channel's expected gain: the nominal record's once known, else the model's."""
@@ -460,26 +394,27 @@ class Sequencer(BoardRun):
                 gain = abs(st.nominal.gain)
             else:
                 gain = (
-                    float(st.limits.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
+                    float(st.limits.output_vrms_nominal)
+                    / self.ctx.board.conditions.nominal_input_vrms
                 )
             out.append((st.conn, gain))
         return out
 
     def _acquire(
-        self, group: list[_ChannelState], plan: Any, label: str
+        self, group: list[_ChannelState], plan: CoherentPlan, label: str
     ) -> dict[str, RecordAnalysis | None]:
         """One acquisition of every input of the group (see GroupScope.acquire); the raw
         records stored too with ``keep_records``.  A channel whose record cannot be analysed
         gets None (it is classified at the nominal step, never an abort of the run)."""
         conns = [st.conn for st in group]
-        out, acq = self.scope_ops.acquire(
+        out, acq = self.ctx.scope.acquire(
             conns, plan, correct_adc=self.opt.correct_adc_nonlinearity, tolerant=True
         )
         self.last_acquisition = acq
         if self.opt.keep_records:
             for c in conns:
-                self.store.add_record(
-                    self.run_id,
+                self.ctx.store.add_record(
+                    self.ctx.run_id,
                     c.board_channel,
                     label,
                     acq.sample_rate_hz,
@@ -494,16 +429,12 @@ class Sequencer(BoardRun):
         self,
         group: list[_ChannelState],
         level_vrms: float,
-        plan: Any,
+        plan: CoherentPlan,
         label: str,
         fill: float = RANGE_FILL,
     ) -> dict[str, RecordAnalysis | None]:
         """Move the generator (ramped), let the board settle, record."""
-        changed = abs(level_vrms - self.safe.level_vrms) > 1e-12 or self.safe.output_state != "on"
-        self.scope_ops.preset(self._gains(group), level_vrms, fill)
-        self.safe.set_level(level_vrms)
-        if self.safe.output_state != "on":
-            self.safe.on()
+        changed = move_to(self.ctx, self._gains(group), level_vrms, fill)
         if changed:
             self._wait_settle()
         res = self._acquire(group, plan, label)
@@ -522,28 +453,28 @@ class Sequencer(BoardRun):
     # --- steps ----------------------------------------------------------------------
     def validate(self) -> None:
         """Checks of the inputs against the model, before anything is stored or driven."""
-        sup = self.limits.supply_current_a
+        sup = self.ctx.limits.supply_current_a
         high = limit_get(sup, "high")
         if (
-            self.fixture.supply is not None
+            self.ctx.fixture.supply is not None
             and high is not None
-            and self.fixture.supply.current_limit_a < high
+            and self.ctx.fixture.supply.current_limit_a < high
         ):
             raise FixtureFileError(
-                self.fixture.path,
+                self.ctx.fixture.path,
                 "supply.current_limit_a",
-                f"{self.fixture.supply.current_limit_a:g} A is below the board's highest "
+                f"{self.ctx.fixture.supply.current_limit_a:g} A is below the board's highest "
                 f"quiescent current {high:.3g} A: a good board would trip the supply",
                 hint=f"set current_limit_a to at least {1.5 * high:.2g}",
             )
         missing = [
             c.board_channel
-            for c in self.fixture.channels
-            if c.board_channel not in self.limits.channels
+            for c in self.ctx.fixture.channels
+            if c.board_channel not in self.ctx.limits.channels
         ]
         if missing:
             raise FixtureFileError(
-                self.fixture.path,
+                self.ctx.fixture.path,
                 "channel",
                 f"no limits for channel(s) {', '.join(missing)}",
                 hint="recompute the limits for this board file",
@@ -551,10 +482,10 @@ class Sequencer(BoardRun):
 
     def precheck(self) -> None:
         """Before any signal: limits the bench cannot resolve are stored as such."""
-        self.step_name = "precheck"
-        bits = _scope_bits(self.inst.scope)
-        for c in self.fixture.channels:
-            lim = self.limits.channels[c.board_channel]
+        self.ctx.step = "precheck"
+        bits = self.ctx.roles.scope.bits
+        for c in self.ctx.fixture.channels:
+            lim = self.ctx.limits.channels[c.board_channel]
             vout = float(lim.output_vrms_nominal)
             rng = choose_range(2 * math.sqrt(2) * vout, self._tip_ranges(c.output_probe))
             fl = measurement_floor(bits, rng, vout * math.sqrt(2), 0.0, self.plan.n_samples)
@@ -576,7 +507,10 @@ class Sequencer(BoardRun):
                         "why": "THD limit below the bench's measurement floor",
                     },
                 )
-            if self.criterion.kind == "thd" and self.criterion.threshold_percent < resolvable_at:
+            if (
+                self.ctx.criterion.kind == "thd"
+                and self.ctx.criterion.threshold_percent < resolvable_at
+            ):
                 self._clip_row(
                     c.board_channel,
                     lim,
@@ -585,7 +519,7 @@ class Sequencer(BoardRun):
                 )
             clim = lim.clip_input_vrms
             low = limit_get(clim, "low")
-            if low is not None and low > self.board.conditions.safe_input_vrms:
+            if low is not None and low > self.ctx.board.conditions.safe_input_vrms:
                 self._row(
                     c.board_channel,
                     "clip_input",
@@ -598,19 +532,18 @@ class Sequencer(BoardRun):
                     {"why": "the whole limit lies above the safe input level"},
                 )
 
-    def quiescent(self) -> bool:
-        """Supply on; False when the board draws the wrong current (supply then off)."""
-        if self.supply is None:
-            return True
-        self.step_name = "supply"
-        self.progress.step("supply", "supply on, quiescent current")
-        self.supply.on()
+    def quiescent(self) -> str | None:
+        """Supply on and the quiescent current decided; a reason to stop before any signal
+        when the board draws grossly the wrong current (the supply is then off)."""
+        supply = self.ctx.supply
+        if supply is None:
+            return None
+        self.ctx.progress.step("supply", "supply on, quiescent current")
         # coupling capacitors charge: wait in every mode, until even the output capacitor's
         # charging current no longer moves a stage's operating point (the model's figure)
-        self._wait_settle(seconds=self.supply_settle_s)
-        tripped = self.supply.tripped()
-        current = self.supply.current_a()
-        lim = self.limits.supply_current_a
+        reading = power_up(self.ctx, supply, self.supply_settle_s)
+        tripped, current = reading.tripped, reading.current_a
+        lim = self.ctx.limits.supply_current_a
         u = 2 * (0.005 * abs(current) + 20e-6)  # supply read-back: common practice figure
         self._decide_row(
             "",
@@ -619,39 +552,39 @@ class Sequencer(BoardRun):
             "A",
             lim,
             u,
-            {"tripped": tripped, "current_limit_a": self.supply.current_limit_a},
+            {"tripped": tripped, "current_limit_a": supply.current_limit_a},
         )
-        if tripped or _gross(current, lim, self.supply.current_limit_a):
-            self.supply.off()
-            self.progress.note(
+        if tripped or _gross(current, lim, supply.current_limit_a):
+            supply.off()
+            self.ctx.progress.note(
                 "quiescent current grossly out of limits (short or open "
                 "supply path): supply off, no signal applied"
             )
-            return False
-        return True
+            return "quiescent current grossly out of limits: stopped before any signal"
+        return None
 
     def dc_points(self) -> None:
-        if not self.fixture.test_points or self.dmm is None:
+        if not self.ctx.fixture.test_points or self.ctx.roles.dmm is None:
             return
-        self.step_name = "dc"
-        self.progress.step("dc", f"{len(self.fixture.test_points)} DC test points")
+        self.ctx.step = "dc"
+        self.ctx.progress.step("dc", f"{len(self.ctx.fixture.test_points)} DC test points")
         b = self.opt.bench
         del b
-        for tp in self.fixture.test_points:
-            lim = self.limits.channels[tp.board_channel].operating_point.get(tp.key)
-            if tp.route and self.switch is not None:
-                self.switch.close(list(tp.route))
+        for tp in self.ctx.fixture.test_points:
+            lim = self.ctx.limits.channels[tp.board_channel].operating_point.get(tp.key)
+            if tp.route and self.ctx.roles.switch is not None:
+                self.ctx.roles.switch.close(list(tp.route))
             range_v = dmm_range_v(lim)
             try:
-                v = float(self.dmm.dc_volts(range_v))
+                v = float(self.ctx.roles.dmm.dc_volts(range_v))
             finally:
-                if tp.route and self.switch is not None:
-                    self.switch.open(list(tp.route))
-            detail: dict[str, Any] = {"test_point": tp.name, "quantity": tp.key, "range_v": range_v}
+                if tp.route and self.ctx.roles.switch is not None:
+                    self.ctx.roles.switch.open(list(tp.route))
+            detail: Detail = {"test_point": tp.name, "quantity": tp.key, "range_v": range_v}
             if not math.isfinite(v):
                 # SCPI's 9.9E37 (overload): no number to decide, and never an infinite U
                 detail["result"] = f"over-range at {tp.name}"
-                self.progress.note(f"DMM over-range at {tp.name} ({tp.key})")
+                self.ctx.progress.note(f"DMM over-range at {tp.name} ({tp.key})")
                 self._row(
                     tp.board_channel,
                     f"dc.{tp.key}",
@@ -668,17 +601,18 @@ class Sequencer(BoardRun):
             self._decide_row(tp.board_channel, f"dc.{tp.key}", v, "V", lim, u, detail)
 
     def nominal(self, group: list[_ChannelState]) -> None:
-        self.step_name = "nominal"
+        self.ctx.step = "nominal"
         names = ", ".join(s.conn.board_channel for s in group)
-        self.progress.step(
+        self.ctx.progress.step(
             "nominal", f"gain, phase, THD at {self.plan.frequency_hz:.6g} Hz ({names})"
         )
-        level = self.board.conditions.nominal_input_vrms
+        level = self.ctx.board.conditions.nominal_input_vrms
         # the scope's timebase read back and the plan made from it; the generator at the
         # planned (coherent) frequency, output still off, and the frequency it reports used
-        self.plan = self.scope_ops.tune(self.plan, lambda f: self.safe.configure(f, level))
+        self.plan = self.ctx.scope.tune(self.plan, lambda f: self.ctx.safe.configure(f, level))
         res = self._measure_at(group, level, self.plan, "nominal")
         acq = self.last_acquisition
+        assert acq is not None  # _measure_at recorded the group
         wide = self._wide_look(group)
         b = self.opt.bench
         for st in group:
@@ -701,7 +635,7 @@ class Sequencer(BoardRun):
                 cond.to_dict(),
             )
             if not cond.working:
-                self.progress.note(f"channel {ch}: {cond.text}")
+                self.ctx.progress.note(f"channel {ch}: {cond.text}")
                 self._failed_rows(st, a, level)
                 continue
             assert a is not None  # a working channel's record analyses (see above)
@@ -760,8 +694,8 @@ class Sequencer(BoardRun):
         """One short record of the outputs at the scope's highest sample rate, so an
         oscillation far above the test frequency shows at its own frequency (the nominal
         record, sampled for the test signal, would alias it, even onto DC)."""
-        rates = sorted(float(r) for r in self.scope.sample_rates_hz)
-        lengths = sorted(int(n) for n in self.scope.record_lengths)
+        rates = sorted(float(r) for r in self.ctx.roles.scope.sample_rates_hz)
+        lengths = sorted(int(n) for n in self.ctx.roles.scope.record_lengths)
         fast = rates[-1]
         if fast <= self.plan.sample_rate_hz * (1 + 1e-9):
             return {}
@@ -769,10 +703,10 @@ class Sequencer(BoardRun):
         want = min(max(10 * fast / self.plan.frequency_hz, 4096), 100_000)
         n = next((k for k in lengths if k >= want), lengths[-1])
         inputs = sorted({st.conn.output_scope for st in group})
-        self.scope.configure_timebase(fast, n)
-        self.scope_ops.timebase = None  # the next record sets its own again
-        acq = self.scope.acquire(inputs)
-        self.scope_ops.acquisitions += 1
+        self.ctx.roles.scope.configure_timebase(fast, n)
+        self.ctx.scope.timebase = None  # the next record sets its own again
+        acq = self.ctx.roles.scope.acquire(inputs)
+        self.ctx.scope.acquisitions += 1
         return {
             st.conn.board_channel: (
                 np.asarray(acq.volts[st.conn.output_scope], dtype=float),
@@ -782,17 +716,17 @@ class Sequencer(BoardRun):
         }
 
     def _classify(
-        self, st: _ChannelState, acq: Any, wide: dict[str, tuple[np.ndarray, float]]
+        self, st: _ChannelState, acq: Acquisition, wide: dict[str, tuple[np.ndarray, float]]
     ) -> ChannelCondition:
         """The channel's mode from the nominal record (and the wide look)."""
         c = st.conn
         lim = st.limits
-        expected = float(lim.output_vrms_nominal) / self.board.conditions.nominal_input_vrms
+        expected = float(lim.output_vrms_nominal) / self.ctx.board.conditions.nominal_input_vrms
         # a stuck output shows as a DC level only where nothing blocks DC on its way
         dc_coupled = False
         with contextlib.suppress(AttributeError, KeyError, IndexError):
-            dc_coupled = self.board.channel(c.board_channel).stages[-1].c_out is None
-        rails = (self.board.supply.v_neg, self.board.supply.v_pos) if dc_coupled else None
+            dc_coupled = self.ctx.board.channel(c.board_channel).stages[-1].c_out is None
+        rails = (self.ctx.board.supply.v_neg, self.ctx.board.supply.v_pos) if dc_coupled else None
         return classify_channel(
             np.asarray(acq.volts[c.input_scope], dtype=float),
             np.asarray(acq.volts[c.output_scope], dtype=float),
@@ -804,7 +738,7 @@ class Sequencer(BoardRun):
             wide=wide.get(c.board_channel),
         )
 
-    def _clip_row(self, ch: str, lim: Any, decision: str, detail: dict) -> None:
+    def _clip_row(self, ch: str, lim: ChannelLimits, decision: str, detail: Detail) -> None:
         """A clipping-threshold row with no value (not resolvable, or not searched)."""
         clim = lim.clip_input_vrms
         self._row(
@@ -874,14 +808,14 @@ class Sequencer(BoardRun):
             "over_range": a.over_range,
             "asymmetry": float(a.clip.asymmetry),
         }
-        self.run_log.sweep_point(ch, sweep, a, extra)
+        self.ctx.log.sweep_point(ch, sweep, a, extra)
 
     def clip_search(self, group: list[_ChannelState]) -> None:
-        self.step_name = "clip"
-        safe = self.board.conditions.safe_input_vrms
-        self.progress.step(
+        self.ctx.step = "clip"
+        safe = self.ctx.board.conditions.safe_input_vrms
+        self.ctx.progress.step(
             "clip",
-            f"clipping threshold ({self.criterion.label}), "
+            f"clipping threshold ({self.ctx.criterion.label}), "
             f"{self.opt.resolution_db:g} dB resolution",
         )
         active = [
@@ -901,7 +835,9 @@ class Sequencer(BoardRun):
         for s in active:
             a = s.nominal
             assert a is not None  # active channels have a nominal record (see above)
-            ratio[s.conn.board_channel] = a.input_vrms / self.board.conditions.nominal_input_vrms
+            ratio[s.conn.board_channel] = (
+                a.input_vrms / self.ctx.board.conditions.nominal_input_vrms
+            )
         n = 0
         while any(not s.done for s in active) and n < self.opt.max_search_acquisitions:
             proposals: list[tuple[float, _ChannelState]] = []
@@ -940,7 +876,7 @@ class Sequencer(BoardRun):
         lim = s.limits.clip_input_vrms
         assert s.nominal is not None  # only channels with a nominal record are searched
         start = float(lim.nominal) * (
-            s.nominal.input_vrms / self.board.conditions.nominal_input_vrms
+            s.nominal.input_vrms / self.ctx.board.conditions.nominal_input_vrms
         )
         # The model's limits bracket a good board: expand by about half their span.
         lo, hi = limit_get(lim, "low"), limit_get(lim, "high")
@@ -954,15 +890,15 @@ class Sequencer(BoardRun):
         if (
             not pts
             and s.points
-            and self.criterion.kind == "thd"
-            and (s.points[0].thd_percent or 0) >= self.criterion.threshold_percent
+            and self.ctx.criterion.kind == "thd"
+            and (s.points[0].thd_percent or 0) >= self.ctx.criterion.threshold_percent
         ):
             pts = list(s.points)  # clipping already at the nominal level
         if not pts:
             return SearchStep(min(start, max_measured), False, False, "model's prediction")
         step = next_search_level(
             pts,
-            self.criterion,
+            self.ctx.criterion,
             start_vrms=min(start, max_measured),
             max_vrms=max_measured,
             resolution_db=self.opt.resolution_db,
@@ -990,10 +926,12 @@ class Sequencer(BoardRun):
 
     def _score(self, p: RecordAnalysis, s: _ChannelState) -> float:
         """Signed distance to the criterion (>= 0: met): log10 THD ratio, or dB."""
-        if self.criterion.kind == "thd":
-            return math.log10(max(p.thd_percent or 0.0, 1e-9) / self.criterion.threshold_percent)
+        if self.ctx.criterion.kind == "thd":
+            return math.log10(
+                max(p.thd_percent or 0.0, 1e-9) / self.ctx.criterion.threshold_percent
+            )
         g0 = s.nominal.gain_db if s.nominal and s.nominal.gain_db is not None else 0.0
-        return (g0 - (p.gain_db if p.gain_db is not None else g0)) - self.criterion.db
+        return (g0 - (p.gain_db if p.gain_db is not None else g0)) - self.ctx.criterion.db
 
     def _extrapolate(
         self,
@@ -1033,15 +971,15 @@ class Sequencer(BoardRun):
 
     def _meets(self, p: RecordAnalysis, s: _ChannelState) -> bool:
         """The record meets the clipping criterion."""
-        if self.criterion.kind == "thd":
-            return (p.thd_percent or 0.0) >= self.criterion.threshold_percent
+        if self.ctx.criterion.kind == "thd":
+            return (p.thd_percent or 0.0) >= self.ctx.criterion.threshold_percent
         g0 = s.nominal.gain_db if s.nominal and s.nominal.gain_db is not None else 0.0
-        return (g0 - (p.gain_db or g0)) >= self.criterion.db
+        return (g0 - (p.gain_db or g0)) >= self.ctx.criterion.db
 
     def _threshold_row(self, s: _ChannelState) -> None:
         ch = s.conn.board_channel
         lim = s.limits.clip_input_vrms
-        safe = self.board.conditions.safe_input_vrms
+        safe = self.ctx.board.conditions.safe_input_vrms
         step = s.step
         th = step.threshold if step is not None else None
         if (th is None or not th.bracketed) and s.points:
@@ -1049,15 +987,15 @@ class Sequencer(BoardRun):
                 [p.input_vrms for p in s.points],
                 [p.thd_percent for p in s.points],
                 [p.gain_db for p in s.points],
-                self.criterion,
+                self.ctx.criterion,
                 s.nominal.gain_db if s.nominal else None,
                 [FLOOR_TO_READING_U * p.floor.thd_percent for p in s.points],
             )
-        detail: dict[str, Any] = {
-            "criterion": self.criterion.label,
+        detail: Detail = {
+            "criterion": self.ctx.criterion.label,
             "points": len(s.points),
-            "expected_side": getattr(s.limits, "clip_side", None),
-            "expected_stage": getattr(s.limits, "clip_stage", None),
+            "expected_side": s.limits.clip_side,
+            "expected_stage": s.limits.clip_stage,
             "reason": step.reason if step is not None else None,
         }
         if th is not None and th.bracketed and th.level_vrms is not None:
@@ -1121,7 +1059,7 @@ class Sequencer(BoardRun):
             self._row(
                 ch, "clip_input", None, "V rms", low, high, None, decision, detail, detail["result"]
             )
-            self.progress.note(f"channel {ch}: threshold above safe level {safe:g} V rms")
+            self.ctx.progress.note(f"channel {ch}: threshold above safe level {safe:g} V rms")
             return
         if th is not None and th.above_vrms is not None and not th.bracketed:
             detail.update(
@@ -1149,15 +1087,15 @@ class Sequencer(BoardRun):
         )
 
     def frequencies(self, group: list[_ChannelState]) -> None:
-        extra = self.board.conditions.extra_frequencies_hz
+        extra = self.ctx.board.conditions.extra_frequencies_hz
         if not extra or not self.opt.extra_frequencies:
             return
-        self.step_name = "frequency"
-        self.progress.step("frequency", "gain at " + ", ".join(f"{f:g}" for f in extra) + " Hz")
-        level = self.board.conditions.nominal_input_vrms
-        self.safe.set_level(level)
+        self.ctx.step = "frequency"
+        self.ctx.progress.step("frequency", "gain at " + ", ".join(f"{f:g}" for f in extra) + " Hz")
+        level = self.ctx.board.conditions.nominal_input_vrms
+        self.ctx.safe.set_level(level)
         for f in extra:
-            plan = self.scope_ops.tune(self._plan(f), self.safe.set_frequency)
+            plan = self.ctx.scope.tune(self._plan(f), self.ctx.safe.set_frequency)
             self._wait_settle()
             res = self._measure_at(group, level, plan, f"{f:g} Hz")
             for s in group:
@@ -1185,18 +1123,15 @@ class Sequencer(BoardRun):
                     },
                     None if a.gain_db is not None else _why(a),
                 )
-        self.plan = self.scope_ops.tune(self.plan, self.safe.set_frequency)
+        self.plan = self.ctx.scope.tune(self.plan, self.ctx.safe.set_frequency)
 
     # --- the whole run --------------------------------------------------------------
-    def station_text(self) -> str:
-        return self.opt.station_name or self.station_file
-
     def verdicts(self) -> dict[str, ChannelVerdict]:
         out: dict[str, ChannelVerdict] = {}
-        board_rows = [r for r in self.rows if r.channel == ""]
-        for c in self.fixture.channels:
+        board_rows = [r for r in self.ctx.log.rows if r.channel == ""]
+        for c in self.ctx.fixture.channels:
             ch = c.board_channel
-            rows = [r for r in self.rows if r.channel == ch] + board_rows
+            rows = [r for r in self.ctx.log.rows if r.channel == ch] + board_rows
             failing = [
                 f"{r.name} ({r.decision})" for r in rows if not self.opt.policy.accepts(r.decision)
             ]
@@ -1204,71 +1139,62 @@ class Sequencer(BoardRun):
             out[ch] = ChannelVerdict(ch, "PASS" if ok else "FAIL", failing)
         return out
 
+    def open_group(self, group: tuple[ChannelConnection, ...]) -> list[_ChannelState]:
+        """A group's channels, each with its limits and its measurements to come."""
+        return [_ChannelState(c, self.ctx.limits.channels[c.board_channel]) for c in group]
+
     def run(self) -> RunResult:
         t0 = time.perf_counter()
+        ctx = self.ctx
         self.validate()
-        self.run_id = self.run_log.begin(self.header())
+        verdicts: dict[str, ChannelVerdict] = {}
+
+        def verdict(
+            status: Literal["complete", "aborted"], reason: str | None
+        ) -> tuple[Literal["PASS", "FAIL"] | None, str | None]:
+            verdicts.update(self.verdicts())
+            if status != "complete":
+                return None, reason
+            ok = all(v.verdict == "PASS" for v in verdicts.values())
+            return ("PASS" if ok else "FAIL"), reason
+
+        outcome = perform(ctx, production_order(self), verdict)
         retest = 0
-        with contextlib.suppress(AttributeError, StageproofError):  # a store without get_run
-            retest = int(self.store.get_run(self.run_id).retest)
-        status, reason, error = run_guarded(
-            self._steps, self._shutdown, lambda: self.step_name, self.safe, self.supply
-        )
-        verdicts = self.verdicts()
-        verdict: Literal["PASS", "FAIL"] | None = None
-        if status == "complete":
-            verdict = "PASS" if all(v.verdict == "PASS" for v in verdicts.values()) else "FAIL"
-        self.store.finish_run(self.run_id, status, verdict, reason)
+        with contextlib.suppress(StageproofError):  # the store could not say
+            retest = int(ctx.store.get_run(ctx.run_id).retest)
         result = RunResult(
-            run_id=self.run_id,
-            serial=self.serial,
-            status=status,
-            verdict=verdict,
-            reason=reason,
+            run_id=ctx.run_id,
+            serial=ctx.serial,
+            status=outcome.status,
+            verdict=outcome.verdict,
+            reason=outcome.reason,
             retest=retest,
-            measurements=list(self.rows),
+            measurements=list(ctx.log.rows),
             channels=verdicts,
-            acquisitions=self.acquisitions,
+            acquisitions=ctx.scope.acquisitions,
             search_acquisitions=self.search_acquisitions,
-            generator_state=self.safe.output_state,
-            settle_note=self.settle_note,
+            generator_state=ctx.safe.output_state,
+            settle_note=ctx.settle_note,
             elapsed_s=time.perf_counter() - t0,
-            instrument_s=self.clock.instrument_s,
-            waiting_s=self.clock.waiting_s,
-            settle_waited_s=self.clock.settle_s,
+            instrument_s=ctx.clock.instrument_s,
+            waiting_s=ctx.clock.waiting_s,
+            settle_waited_s=ctx.clock.settle_s,
         )
-        if error is not None:
-            raise_aborted(error, self.step_name)
+        outcome.reraise(ctx.step)
         return result
 
-    def _steps(self) -> str | None:
-        """The steps in order; a reason when the run stops early without a signal."""
-        self.precheck()
-        with self.safe:  # generator off before the first step
-            if not self.quiescent():
-                return "quiescent current grossly out of limits: stopped before any signal"
-            self.dc_points()
-            for grp in self.fixture.groups():
-                group = [_ChannelState(c, self.limits.channels[c.board_channel]) for c in grp]
-                with routed(self.switch, grp, self.safe, self._enter_shutdown):
-                    self.nominal(group)
-                    self.clip_search(group)
-                    self.frequencies(group)
-        return None
 
-    def _enter_shutdown(self) -> None:
-        self.step_name = "shutdown"
-
-    def _shutdown(self) -> None:
-        """Every exit path: generator off (SafeGenerator), supply off, routes open."""
-        self.safe.safe_off()
-        if self.supply is not None:
-            self.supply.safe_off()
-        if self.switch is not None and self.fixture.needs_switch:
-            try:
-                self.switch.open_all()
-            except BaseException as exc:
-                log.warning("switch open_all failed: %s", exc)
+def production_order(p: ProductionSteps) -> Order[list[_ChannelState]]:
+    """The production sequence: the unresolvable limits before anything is driven, the
+    supply and the DC test points, then per group nominal, clipping search, frequencies."""
+    return Order(
+        name="production",
+        unpowered=(p.precheck,),
+        board=(p.quiescent, p.dc_points),
+        group=p.open_group,
+        routed=(p.nominal, p.clip_search, p.frequencies),
+        release_step="shutdown",
+    )
 
 
 #: Margin between a test point's highest expected voltage and the DMM range asked for, so
@@ -1276,7 +1202,7 @@ class Sequencer(BoardRun):
 DMM_RANGE_MARGIN = 1.25
 
 
-def dmm_range_v(limit: Any) -> float | None:
+def dmm_range_v(limit: Limit | None) -> float | None:
     """The DMM range that fits a test point's expected voltage from the model (its largest
     magnitude, nominal or limit, with margin); None (the meter's own choice) when the model
     gives no figure."""
@@ -1287,7 +1213,7 @@ def dmm_range_v(limit: Any) -> float | None:
     return DMM_RANGE_MARGIN * max(known)
 
 
-def _gross(current: float, limit: Any, current_limit_a: float) -> bool:
+def _gross(current: float, limit: Limit, current_limit_a: float) -> bool:
     """A board that must not see a signal: the supply is limiting (within 10 % of its
     current limit) or the current is off by more than a factor of two (a short, a missing
     part).  A smaller excess is a fail but the test goes on, for the repair diagnosis."""
@@ -1342,18 +1268,17 @@ def _clip_side(points: list[RecordAnalysis], threshold_vrms: float) -> tuple[str
 SIDE_DECISIVE_FRACTION = 0.99
 
 
-def _side_fraction(limits: Any, side: str | None) -> float | None:
-    fractions = getattr(limits, "clip_side_fraction", None) or {}
-    if side is None or not hasattr(fractions, "get"):
+def _side_fraction(limits: ChannelLimits, side: str | None) -> float | None:
+    if side is None:
         return None
-    value = fractions.get(side)
+    value = limits.clip_side_fraction.get(side)
     return None if value is None else float(value)
 
 
-def _side_decision(side: str | None, limits: Any) -> str:
+def _side_decision(side: str | None, limits: ChannelLimits) -> str:
     """Decide the clipping side against the model: pass when it is the side the model
     expects; fail when the model gives the other side to at least 99 % of good boards."""
-    expected = getattr(limits, "clip_side", None)
+    expected = limits.clip_side or None
     if side is None or expected is None:
         return "info"
     if side == expected:
@@ -1364,24 +1289,13 @@ def _side_decision(side: str | None, limits: Any) -> str:
     return "info"
 
 
-def _scope_bits(scope: Any) -> int | None:
-    for attr in ("adc_bits", "bits"):
-        v = getattr(scope, attr, None)
-        if isinstance(v, int):
-            return v
-    prof = getattr(scope, "profile", None)
-    settings = getattr(prof, "settings", None) or {}
-    v = settings.get("adc_bits") if hasattr(settings, "get") else None
-    return int(v) if v else None
-
-
 def run_board(
-    instruments: Any,
+    instruments: InstrumentSet,
     board: Board,
-    limits: Any,
+    limits: BoardLimits,
     fixture: FixtureConfig,
     serial: str,
-    store: Any,
+    store: ResultStore,
     *,
     options: RunOptions | None = None,
     progress: Progress | None = None,
@@ -1391,16 +1305,19 @@ def run_board(
     """Test one board; returns the result (status complete) or raises RunAborted /
     KeyboardInterrupt after marking the run aborted.  The store must be open and
     ``recover_aborted()`` already called."""
-    seq = Sequencer(
+    opts = options or RunOptions()
+    prog = progress or NullProgress()
+    ctx = build_context(
         instruments,
-        board,
-        limits,
-        fixture,
-        serial,
-        store,
-        options or RunOptions(),
-        progress or NullProgress(),
+        board=board,
+        limits=limits,
+        fixture=fixture,
+        serial=serial,
         board_file=board_file or board.source,
-        station_file=station_file,
+        station=opts.station_name or station_file,
+        store=store,
+        options=opts,
+        progress=prog,
+        note=prog.note,
     )
-    return seq.run()
+    return ProductionSteps(ctx, opts).run()

@@ -62,7 +62,10 @@ class FakeLimits:
                 clip_stage="gain",
                 clip_side="negative",
                 operating_point={"gain.collector_v": FakeLimit("vc", "V", 6.0, 5.0, 7.0)},
+                clip_side_fraction={},
                 settle_time_s=0.0,
+                dc_settle_time_s=0.0,
+                supply_settle_time_s=0.0,
                 output_vrms_nominal=0.05 * gain,
                 low_corner_hz=FakeLimit("fl", "Hz", 10.0, 5.0, 20.0),
             )
@@ -140,6 +143,11 @@ class FakeBench:
                 bench.level = vrms
                 bench.level_log.append(vrms)
                 return vrms
+
+            def level_readback_vrms(
+                self, *, load_ohm: float = math.inf, output: int = 1
+            ) -> float | None:
+                return None  # like a profile without query_amplitude
 
             def output(self, on: bool, output: int = 1) -> None:
                 bench._tick("generator")
@@ -227,6 +235,7 @@ class FakeBench:
             switch=Switch(),
             dmm=Dmm(),
             identities={"generator": "fake,GEN,1,1", "scope": "fake,SCOPE,1,1"},
+            sessions={},  # in-process: no sessions, so no recoveries to count
         )
 
     def _tick(self, role: str) -> None:

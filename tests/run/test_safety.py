@@ -33,6 +33,9 @@ class FakeGenerator:
         self.levels.append(vrms)
         self.trace.append(("level", vrms))
 
+    def level_readback_vrms(self, *, load_ohm: float = math.inf, output: int = 1) -> float | None:
+        return None  # like a profile without query_amplitude
+
     def output(self, on: bool, output: int = 1) -> None:
         if self.fail_all or (self.fail_off and not on):
             raise ConnectionLost("gone", resource="TCPIP::127.0.0.1::1::SOCKET")
