@@ -103,7 +103,7 @@ def run(args: argparse.Namespace) -> int:
             result = characterize(
                 inst,
                 prep.board,
-                prep.limits,
+                prep.computed_limits,
                 prep.fixture,
                 serial,
                 store,

@@ -16,7 +16,7 @@ import argparse
 import os
 import sys
 import unicodedata
-from typing import Any, Literal, TextIO
+from typing import TYPE_CHECKING, Any, Literal, TextIO
 
 from harness.cli import run_args
 from harness.cli.run_args import RichProgress
@@ -26,6 +26,9 @@ from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
 from harness.store import redact
+
+if TYPE_CHECKING:
+    from harness.instruments.bench import Instruments
 
 #: Longest line read from the terminal; a longer one (two labels, a stuck key) is read to
 #: its end and refused, so its tail never becomes the next serial number.
@@ -347,7 +350,7 @@ def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any =
 
     prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
     with station_lock(prep.station):
-        instruments = connect_safe(prep.station)
+        instruments: Instruments | None = connect_safe(prep.station)
         try:
             prep = ensure_limits(prep)
             ui = TerminalUI(console, stdin, details=args.details)

@@ -26,13 +26,17 @@ import contextlib
 import logging
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from typing import Any, Literal, Protocol
+from typing import Literal, Protocol
 
 from harness.errors import InstrumentError, RunAborted, StageproofError, StoreError, ValueParseError
+from harness.instruments.config import StationConfig
+from harness.run.bench_ops import identity_text
 from harness.run.progress import Progress
+from harness.run.roles import OpenStation
 from harness.run.runner import Prepared, ensure_limits, validate_serial
 from harness.run.safety import Terminated, unsafe_text
 from harness.run.sequence import RunOptions, RunResult, run_board
+from harness.store import ResultStore
 
 log = logging.getLogger("harness.run.line")
 
@@ -172,11 +176,6 @@ def _instrument_failure(exc: BaseException) -> bool:
     return isinstance(exc, RunAborted) and isinstance(exc.__cause__, InstrumentError)
 
 
-def _identity_text(identity: Any) -> str:
-    fields = [getattr(identity, k, "") for k in ("maker", "model", "serial", "firmware")]
-    return ",".join(str(f) for f in fields) if any(fields) else str(identity)
-
-
 class ProductionLine:
     """The loop over boards; :meth:`run` returns the summary when the session ends.
 
@@ -195,9 +194,9 @@ class ProductionLine:
         options: RunOptions | None = None,
         scanner_prefix: str = "",
         scanner_suffix: str = "",
-        connect: Callable[[Any], Any] | None = None,
-        open_store: Callable[[str], Any] | None = None,
-        instruments: Any = None,
+        connect: Callable[[StationConfig], OpenStation] | None = None,
+        open_store: Callable[[str], ResultStore] | None = None,
+        instruments: OpenStation | None = None,
     ) -> None:
         from harness.run.safety import connect_safe
         from harness.store import open_store as open_results
@@ -210,25 +209,34 @@ class ProductionLine:
         self.options = replace(
             base,
             operator=operator,
-            station_name=base.station_name or getattr(prep.station, "name", "") or "",
+            station_name=base.station_name or prep.station.name or "",
         )
         self.prefix = scanner_prefix
         self.suffix = scanner_suffix
-        self._connect = connect or connect_safe
-        self._open_store = open_store or open_results
+        self._connect: Callable[[StationConfig], OpenStation] = connect or connect_safe
+        self._open_store: Callable[[str], ResultStore] = open_store or open_results
         self.summary = SessionSummary()
         self._handed = instruments
-        self.instruments: Any = None
-        self.store: Any = None
+        self.instruments: OpenStation | None = None
+        self.store: ResultStore | None = None
+
+    def _station(self) -> OpenStation:
+        assert self.instruments is not None, "the session connects before the first board"
+        return self.instruments
+
+    def _results(self) -> ResultStore:
+        assert self.store is not None, "the session opens the store before the first board"
+        return self.store
 
     # --- session ------------------------------------------------------------------------
     def header(self) -> LineHeader:
         b = self.prep.board
-        prov = getattr(self.prep.limits, "provenance", None)
+        limits = self.prep.computed_limits
+        prov = limits.provenance
         method = ""
         if prov is not None:
             method = f"{prov.method}, {prov.samples} samples, coverage {prov.coverage:g}"
-        ids = getattr(self.instruments, "identities", {}) or {}
+        ids = self._station().identities
         return LineHeader(
             board_name=b.name,
             part_number=b.part_number,
@@ -238,9 +246,9 @@ class ProductionLine:
             fixture=f"{self.prep.fixture.name} ({self.prep.fixture.path})",
             operator=self.operator,
             db=str(self.db),
-            limits_digest=str(self.prep.limits.digest),
+            limits_digest=str(limits.digest),
             limits_method=method,
-            instruments={r: _identity_text(i) for r, i in ids.items()},
+            instruments={r: identity_text(i) for r, i in ids.items()},
         )
 
     def run(self) -> SessionSummary:
@@ -279,7 +287,7 @@ class ProductionLine:
                 self.instruments.close()
             except BaseException as exc:  # never hide the session's own outcome
                 log.error("closing the instruments failed: %s", exc)
-            states = getattr(self.instruments, "closing_states", None)
+            states = self.instruments.closing_states
             bad = unsafe_text(states) if isinstance(states, dict) else ""
             if bad:
                 self.ui.message(
@@ -322,7 +330,7 @@ class ProductionLine:
         """Test one board; False when the session must end."""
         part = self.prep.board.part_number
         try:
-            before = int(self.store.retest_count(serial, part))
+            before = int(self._results().retest_count(serial, part))
         except StoreError as exc:
             self.summary.error = str(exc)
             self.summary.ended_by = "store error"
@@ -344,12 +352,12 @@ class ProductionLine:
         self.ui.testing(serial, before)
         try:
             result = run_board(
-                self.instruments,
+                self._station(),
                 self.prep.board,
-                self.prep.limits,
+                self.prep.computed_limits,
                 self.prep.fixture,
                 serial,
-                self.store,
+                self._results(),
                 options=self.options,
                 progress=self.ui.progress(),
                 board_file=self.prep.board_file,
@@ -410,7 +418,7 @@ class ProductionLine:
     def _aborted(self, serial: str, retest: int, reason: str) -> None:
         run_id = None
         try:
-            runs = self.store.list_runs(serial=serial, limit=1)
+            runs = self._results().list_runs(serial=serial, limit=1)
             if runs and runs[0].status == "aborted" and runs[0].retest == retest:
                 run_id = runs[0].run_id
         except StageproofError:  # the summary still counts the board
@@ -448,8 +456,8 @@ def run_line(
     options: RunOptions | None = None,
     scanner_prefix: str = "",
     scanner_suffix: str = "",
-    connect: Callable[[Any], Any] | None = None,
-    instruments: Any = None,
+    connect: Callable[[StationConfig], OpenStation] | None = None,
+    instruments: OpenStation | None = None,
 ) -> SessionSummary:
     """Run a production session (see the module doc); returns its summary."""
     return ProductionLine(

@@ -18,15 +18,19 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
-from harness.instruments.drivers import Acquisition, InputSetup, Timebase
-from harness.instruments.scpi import Identity
+if TYPE_CHECKING:
+    from harness.instruments.drivers import Acquisition, InputSetup, Timebase
+    from harness.instruments.scpi import Identity
 
 __all__ = [
     "DmmRole",
     "GeneratorRole",
     "InstrumentSet",
+    "OpenStation",
     "Recoveries",
+    "Routes",
     "ScopeRole",
+    "Source",
     "SupplyRole",
     "SwitchRole",
 ]
@@ -134,6 +138,20 @@ class SupplyRole(Protocol):
     def safe_off(self) -> bool: ...
 
 
+@runtime_checkable
+class Source(Protocol):
+    """What every source role (generator, supply) has for the station's safe state."""
+
+    def safe_off(self) -> bool: ...
+
+
+@runtime_checkable
+class Routes(Protocol):
+    """What the switch role has for the station's safe state."""
+
+    def open_all(self) -> None: ...
+
+
 class Recoveries(Protocol):
     """A session's recovery counters (harness.instruments.session.Session)."""
 
@@ -172,6 +190,16 @@ class InstrumentSet(Protocol):
     def sessions(self) -> Mapping[str, Recoveries]: ...
 
 
+class OpenStation(InstrumentSet, Protocol):
+    """A station held open for a session (the production line): closing it makes every
+    source safe first and says what each source read back as (``closing_states``)."""
+
+    @property
+    def closing_states(self) -> object: ...
+
+    def close(self) -> None: ...
+
+
 def recoveries(instruments: InstrumentSet) -> int:
     """Every recovery so far on the station's sessions (a reconnect or a timeout)."""
     return sum(int(s.reconnects) + int(s.troubles) for s in instruments.sessions.values())
@@ -186,6 +214,6 @@ if TYPE_CHECKING:  # mypy proves the drivers fill their roles (no code at run ti
         g: Generator, s: Scope, sw: Switch, d: Dmm, p: Supply, i: Instruments, se: Session
     ) -> None:
         roles: tuple[
-            GeneratorRole, ScopeRole, SwitchRole, DmmRole, SupplyRole, InstrumentSet, Recoveries
+            GeneratorRole, ScopeRole, SwitchRole, DmmRole, SupplyRole, OpenStation, Recoveries
         ] = (g, s, sw, d, p, i, se)
         del roles

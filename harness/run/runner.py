@@ -13,14 +13,19 @@ from __future__ import annotations
 import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 from harness.errors import ValueParseError
+from harness.instruments.config import StationConfig
 from harness.io.board import load_board
 from harness.io.fixture import FixtureConfig, check_station, load_fixture
 from harness.model.board import Board
+from harness.model.limits import BoardLimits
 from harness.run.progress import Progress
 from harness.run.sequence import RunOptions, RunResult, run_board
+
+if TYPE_CHECKING:
+    import pyvisa
 
 #: Longest serial number accepted (fits every label printer and database column).
 MAX_SERIAL = 64
@@ -64,11 +69,18 @@ class Prepared:
     """Validated inputs of a run."""
 
     board: Board
-    limits: Any
-    station: Any
+    #: None until computed when :func:`prepare` deferred them (see :func:`ensure_limits`)
+    limits: BoardLimits | None
+    station: StationConfig
     fixture: FixtureConfig
     board_file: str
     station_file: str
+
+    @property
+    def computed_limits(self) -> BoardLimits:
+        """The limits, once computed (:func:`ensure_limits`)."""
+        assert self.limits is not None, "ensure_limits() first"
+        return self.limits
 
 
 def ensure_limits(prep: Prepared) -> Prepared:
@@ -87,7 +99,7 @@ def prepare(
     fixture_file: str | Path,
     station_file: str | Path,
     *,
-    limits: Any = None,
+    limits: BoardLimits | None = None,
     defer_limits: bool = False,
 ) -> Prepared:
     """Read and cross-check board, limits, station and fixture; touches no instrument.
@@ -130,7 +142,7 @@ def execute(
     *,
     options: RunOptions | None = None,
     progress: Progress | None = None,
-    rm: Any = None,
+    rm: pyvisa.ResourceManager | None = None,
 ) -> RunResult:
     """Open the store, lock and connect the station (every source safe first), compute
     the limits if deferred, recover aborted runs, run the board."""
@@ -145,11 +157,11 @@ def execute(
         if not opts.station_name:
             from dataclasses import replace
 
-            opts = replace(opts, station_name=getattr(prep.station, "name", "") or "")
+            opts = replace(opts, station_name=prep.station.name or "")
         return run_board(
             instruments,
             prep.board,
-            prep.limits,
+            prep.computed_limits,
             prep.fixture,
             serial,
             store,

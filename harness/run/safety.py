@@ -31,9 +31,16 @@ import threading
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from types import FrameType
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Literal
 
 from harness.errors import ReadbackMismatch, RunAborted, SafetyError, StageproofError
+from harness.run.roles import GeneratorRole, Routes, Source, SupplyRole
+
+if TYPE_CHECKING:
+    import pyvisa
+
+    from harness.instruments.bench import Instruments
+    from harness.instruments.config import StationConfig
 
 log = logging.getLogger("harness.run.safety")
 
@@ -57,12 +64,13 @@ class SafeGenerator:
     rise goes in steps of at most ``max_step_up_db`` from the present level; ``on_step`` is
     called after every level actually commanded, ``on_alarm`` with every safety message the
     operator must see.  ``disturbances`` counts the station's recoveries (a lost instrument
-    switches the generator off first): when it moves, the output is brought back, ramped.
+    switches the generator off first): when it moves, the output is brought back, ramped;
+    without it, no recovery is watched.
     """
 
     def __init__(
         self,
-        generator: Any,
+        generator: GeneratorRole,
         safe_input_vrms: float,
         *,
         direct_vrms: float | None = None,
@@ -85,7 +93,7 @@ class SafeGenerator:
         self.max_step_up_db = float(max_step_up_db)
         self._on_step = on_step
         self._on_alarm = on_alarm
-        self._disturbances = disturbances or self._reconnects
+        self._disturbances = disturbances or _no_recoveries
         self.level_vrms = 0.0  # last level commanded (0 before the first)
         self.max_commanded_vrms = 0.0
         self.output_state: OutputState = "unknown"
@@ -125,10 +133,7 @@ class SafeGenerator:
     def _verify_level(self, v: float) -> None:
         """Read the amplitude back where the profile can: a level the generator does not
         confirm (a profile whose command does more than it says) stops the run."""
-        read = getattr(self._gen, "level_readback_vrms", None)
-        if read is None:
-            return
-        got = read(output=self.output)
+        got = self._gen.level_readback_vrms(output=self.output)
         if got is None:
             return
         if got > self.safe_input_vrms * (1 + READBACK_REL) or abs(got - v) > max(
@@ -148,8 +153,7 @@ class SafeGenerator:
             self._gen.set_level(v, load_ohm=math.inf, output=self.output)
         except ReadbackMismatch as exc:
             # the driver's read-back: the generator does not report what it was sent
-            read = getattr(self._gen, "level_readback_vrms", None)
-            got = read(output=self.output) if read is not None else None
+            got = self._gen.level_readback_vrms(output=self.output)
             said = f"{got:.6g} V rms" if got is not None else repr(exc.read_back)
             raise self.stop(
                 f"the generator reports {said} after {v:.6g} V rms was commanded "
@@ -184,11 +188,6 @@ class SafeGenerator:
         if not plan or plan[-1] != target:
             plan.append(target)
         return plan
-
-    def _reconnects(self) -> int:
-        session = getattr(self._gen, "session", None)
-        count = getattr(session, "reconnects", 0)
-        return count if isinstance(count, int) else 0
 
     def resync(self) -> bool:
         """After a recovery on the station the generator's output is off (a lost instrument
@@ -310,7 +309,7 @@ class SupplyGuard:
 
     def __init__(
         self,
-        supply: Any,
+        supply: SupplyRole,
         voltage_v: float,
         current_limit_a: float,
         output: int = 1,
@@ -398,6 +397,10 @@ class SupplyGuard:
         self.safe_off()
 
 
+def _no_recoveries() -> int:
+    return 0
+
+
 class Terminated(RunAborted):
     """SIGTERM arrived during a run."""
 
@@ -434,7 +437,7 @@ def is_abort(exc: BaseException) -> bool:
 # --- the station's safe state ---------------------------------------------------------------
 
 
-def make_safe(role: str, driver: Any) -> OutputState:
+def make_safe(role: str, driver: object) -> OutputState:
     """Put one instrument in its safe state and say what it is now.
 
     Generator and supply: every output off, each read back ("off" only when every output
@@ -442,12 +445,18 @@ def make_safe(role: str, driver: Any) -> OutputState:
     the command without error).  Measuring instruments drive nothing: "off".  Never raises.
     """
     if role in ("generator", "supply"):
+        if not isinstance(driver, Source):
+            log.error("%s driver has no safe_off: state unknown", role)
+            return "unknown"
         try:
             return "off" if driver.safe_off() else "unknown"
         except Exception as exc:  # safe_off never raises; a stranger driver might
             log.error("%s safe state failed: %s", role, exc)
             return "unknown"
     if role == "switch":
+        if not isinstance(driver, Routes):
+            log.error("switch driver has no open_all: routes may still be closed")
+            return "unknown"
         try:
             driver.open_all()
             return "off"
@@ -457,7 +466,7 @@ def make_safe(role: str, driver: Any) -> OutputState:
     return "off"
 
 
-def all_safe(instruments: Any) -> dict[str, OutputState]:
+def all_safe(instruments: Instruments) -> dict[str, OutputState]:
     """Every source of an open station in its safe state: role -> state."""
     return {
         role: make_safe(role, drv)
@@ -473,7 +482,9 @@ def unsafe_text(states: dict[str, OutputState]) -> str:
     return ", ".join(bad)
 
 
-def connect_safe(station: Any, *, rm: Any = None) -> Any:
+def connect_safe(
+    station: StationConfig, *, rm: pyvisa.ResourceManager | None = None
+) -> Instruments:
     """Connect ``station`` and put every source in its safe state before anything else.
 
     The sources (generator, supply, switch) are opened first and each is made safe as soon
@@ -488,7 +499,7 @@ def connect_safe(station: Any, *, rm: Any = None) -> Any:
 
     states: dict[str, OutputState] = {}
 
-    def on_open(role: str, driver: Any) -> None:
+    def on_open(role: str, driver: object) -> None:
         if role in _SOURCES:
             states[role] = make_safe(role, driver)
 
@@ -510,7 +521,9 @@ def connect_safe(station: Any, *, rm: Any = None) -> Any:
 
 
 @contextmanager
-def safe_station(station: Any, *, rm: Any = None) -> Iterator[Any]:
+def safe_station(
+    station: StationConfig, *, rm: pyvisa.ResourceManager | None = None
+) -> Iterator[Instruments]:
     """The whole session on one station: its lock taken first (a second process gets
     StationBusy naming the holder), then :func:`connect_safe`; on every exit the sources
     are made safe, the sessions closed and the lock released."""

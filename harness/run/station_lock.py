@@ -28,9 +28,12 @@ import tempfile
 import time
 from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from harness.errors import StationBusy, StationFileError
+
+if TYPE_CHECKING:
+    from harness.instruments.config import StationConfig
 
 __all__ = ["StationLock", "lock_dir", "lock_path", "normalise_resource", "station_lock"]
 
@@ -199,11 +202,10 @@ def take_lock(resources: Iterable[tuple[str, str]], station_name: str = "") -> S
 
 
 @contextlib.contextmanager
-def station_lock(station: Any) -> Iterator[StationLock]:
-    """Hold the lock of every instrument of ``station`` (a StationConfig) for the block."""
-    insts = getattr(station, "instruments", None) or {}
-    pairs = [(cfg.resource, role) for role, cfg in insts.items()]
-    lock = take_lock(pairs, getattr(station, "name", "") or "")
+def station_lock(station: StationConfig) -> Iterator[StationLock]:
+    """Hold the lock of every instrument of ``station`` for the block."""
+    pairs = [(cfg.resource, role) for role, cfg in station.instruments.items()]
+    lock = take_lock(pairs, station.name or "")
     try:
         yield lock
     finally:

@@ -13,6 +13,7 @@ import pytest
 
 from harness.cli.cmd_line import TerminalUI, big_word, read_line
 from harness.errors import ConnectionLost, RunAborted
+from harness.instruments.config import StationConfig
 from harness.run import line as line_mod
 from harness.run.line import BoardOutcome, ProductionLine, SessionSummary, clean_scan
 
@@ -129,6 +130,7 @@ class _Store:
 class _Inst:
     def __init__(self):
         self.identities = {}
+        self.closing_states = None
 
     def close(self):
         pass
@@ -151,7 +153,8 @@ def test_lost_instrument_asks_and_reconnects(monkeypatch, board):
 
     monkeypatch.setattr(line_mod, "run_board", fake_run_board)
     prep = type("P", (), {})()
-    prep.board, prep.limits, prep.station = board, type("L", (), {"digest": "d"})(), None
+    prep.board, prep.limits = board, type("L", (), {"digest": "d", "provenance": None})()
+    prep.station = StationConfig(name="", instruments={})  # nothing to lock
     prep.fixture = type("F", (), {"name": "f", "path": "f.toml"})()
     prep.board_file, prep.station_file = "b.toml", "s.toml"
     ui = _ScriptUI(["SN-1", "SN-2"], [True, False])
