@@ -16,6 +16,7 @@ from harness.errors import ConnectionLost, RunAborted
 from harness.instruments.config import StationConfig
 from harness.run import line as line_mod
 from harness.run.line import BoardOutcome, ProductionLine, SessionSummary, clean_scan
+from harness.run.runner import Prepared
 
 
 def test_over_long_line_is_drained_not_split():
@@ -152,11 +153,14 @@ def test_lost_instrument_asks_and_reconnects(monkeypatch, board):
         return _Inst()
 
     monkeypatch.setattr(line_mod, "run_board", fake_run_board)
-    prep = type("P", (), {})()
-    prep.board, prep.limits = board, type("L", (), {"digest": "d", "provenance": None})()
-    prep.station = StationConfig(name="", instruments={})  # nothing to lock
-    prep.fixture = type("F", (), {"name": "f", "path": "f.toml"})()
-    prep.board_file, prep.station_file = "b.toml", "s.toml"
+    prep = Prepared(
+        board,
+        type("L", (), {"digest": "d", "provenance": None})(),
+        StationConfig(name="", instruments={}),  # nothing to lock
+        type("F", (), {"name": "f", "path": "f.toml"})(),
+        "b.toml",
+        "s.toml",
+    )
     ui = _ScriptUI(["SN-1", "SN-2"], [True, False])
     summary = ProductionLine(
         prep, "x.db", ui, operator="op", connect=fake_connect, open_store=lambda db: _Store()
