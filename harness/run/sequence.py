@@ -339,7 +339,7 @@ class ProductionSteps:
         high: float | None,
         u: float | None,
         decision: str,
-        detail: dict | None = None,
+        detail: Detail | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
         return self.ctx.log.row(
@@ -354,7 +354,7 @@ class ProductionSteps:
         unit: str,
         limit: Limit | None,
         u: float,
-        detail: dict | None = None,
+        detail: Detail | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
         low, high = limit_get(limit, "low"), limit_get(limit, "high")
@@ -850,6 +850,7 @@ class ProductionSteps:
                 if step.done:
                     s.done = True
                     continue
+                assert step.level_vrms is not None  # a step that is not done has a level
                 proposals.append((min(step.level_vrms / k, safe), s))
             if not proposals:
                 break
@@ -872,7 +873,7 @@ class ProductionSteps:
         for s in active:
             self._threshold_row(s)
 
-    def _next(self, s: _ChannelState, max_measured: float):
+    def _next(self, s: _ChannelState, max_measured: float) -> SearchStep:
         lim = s.limits.clip_input_vrms
         assert s.nominal is not None  # only channels with a nominal record are searched
         start = float(lim.nominal) * (
