@@ -22,6 +22,7 @@ from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.cli.term import make_console
 from harness.errors import ValueParseError
+from harness.outcomes import look
 from harness.run.line import BoardOutcome, LineHeader, SessionSummary, run_line
 from harness.run.runner import ensure_limits, prepare
 from harness.run.sequence import RunResult
@@ -251,7 +252,7 @@ class TerminalUI:
                 Group(*lines),
                 title=Text(f"{serial} · {retest}"),
                 subtitle=Text(f"run {outcome.run_id}"),
-                border_style="green" if ok else "red",
+                border_style=look(outcome.outcome).console_style,
                 padding=(1, 2),
             )
         )

@@ -36,6 +36,7 @@ from harness.store.rows import (
     RunHeader,
     RunRow,
     SweepPointRow,
+    check_measurement,
     format_time,
     parse_when,
     utc_now,
@@ -434,6 +435,7 @@ class SQLStore:
     def add_measurement(self, run_id: int, m: MeasurementRow) -> None:
         if not isinstance(m, MeasurementRow):
             raise StoreError(f"add_measurement needs a MeasurementRow, got {type(m).__name__}")
+        check_measurement(m)
         self._add_row(
             run_id,
             "storing a measurement",
