@@ -360,7 +360,7 @@ def _stage(
                 raise rd.fail(
                     f"{where}.{given[0]}",
                     f"{', '.join(given)} given on a DC-coupled follower"
-                    + ("" if explicit else " (coupling defaults to \"dc\")"),
+                    + ("" if explicit else ' (coupling defaults to "dc")'),
                     hint='set coupling = "ac" to bias the base with r1, r2 and c_in, or remove '
                     + ", ".join(given),
                 )

@@ -111,9 +111,7 @@ def conformance_probability(
     return p_hi - p_lo
 
 
-def verdict(
-    outcomes: list[str] | tuple[str, ...], policy: DecisionPolicy = STRICT
-) -> Verdict:
+def verdict(outcomes: list[str] | tuple[str, ...], policy: DecisionPolicy = STRICT) -> Verdict:
     """A channel (or board) passes only when the policy accepts every outcome."""
     return "PASS" if outcomes and all(policy.accepts(o) for o in outcomes) else "FAIL"
 

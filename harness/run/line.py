@@ -40,6 +40,7 @@ log = logging.getLogger("harness.run.line")
 #: Words that end the session when typed at the serial prompt (case-insensitive).
 QUIT_WORDS: frozenset[str] = frozenset({"quit", "exit"})
 
+
 @dataclass(frozen=True)
 class LineHeader:
     """What the operator sees once, at the top of the session."""
