@@ -45,6 +45,11 @@ class Look:
         return CONSOLE_STYLES[self.tone]
 
     @property
+    def console_banner(self) -> str:
+        """The rich style of a large word on a filled background (the line's verdict)."""
+        return CONSOLE_BANNERS[self.tone]
+
+    @property
     def css_class(self) -> str:
         """The class the HTML pages style the tone with (see :data:`CSS_COLOURS`)."""
         return f"tone-{self.tone}"
@@ -57,6 +62,14 @@ CONSOLE_STYLES: dict[Tone, str] = {
     "bad": "bold red",
     "neutral": "cyan",
     "unseen": "magenta",
+}
+#: tone -> rich style of a large word on a filled background.
+CONSOLE_BANNERS: dict[Tone, str] = {
+    "good": "bold white on green",
+    "doubt": "bold black on yellow",
+    "bad": "bold white on red",
+    "neutral": "bold white on blue",
+    "unseen": "bold white on magenta",
 }
 #: tone -> colour on the HTML pages (dark enough on white for WCAG 2.1 contrast 4.5:1).
 CSS_COLOURS: dict[Tone, str] = {

@@ -14,6 +14,7 @@ import pytest
 
 from harness.outcomes import (
     ALWAYS_ACCEPTED,
+    CONSOLE_BANNERS,
     CONSOLE_STYLES,
     CSS_COLOURS,
     LOOKS,
@@ -54,6 +55,7 @@ def test_every_outcome_and_verdict_has_its_own_word_and_symbol() -> None:
     for w in words:
         assert look(w) is not UNKNOWN
         assert look(w).tone in CSS_COLOURS and look(w).tone in CONSOLE_STYLES
+        assert look(w).console_banner in CONSOLE_BANNERS.values()
     for a, b in itertools.combinations(OUTCOMES, 2):
         assert (look(a).word, look(a).symbol) != (look(b).word, look(b).symbol)
     assert look("PASS").symbol != look("FAIL").symbol

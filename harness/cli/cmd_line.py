@@ -237,9 +237,8 @@ class TerminalUI:
                 f"VERDICT {serial}: ABORTED ({retest})", highlight=False, soft_wrap=True
             )
             return
-        ok = outcome.outcome == "PASS"
-        style = "bold white on green" if ok else "bold white on red"
-        big = Text("\n".join(big_word(outcome.outcome, self.ink)), style=style)
+        shown = look(outcome.outcome)
+        big = Text("\n".join(big_word(outcome.outcome, self.ink)), style=shown.console_banner)
         lines: list[Any] = [Align.center(big)]
         if outcome.failing:
             lines.append(Text("not accepted: " + ", ".join(outcome.failing)))
@@ -252,7 +251,7 @@ class TerminalUI:
                 Group(*lines),
                 title=Text(f"{serial} · {retest}"),
                 subtitle=Text(f"run {outcome.run_id}"),
-                border_style=look(outcome.outcome).console_style,
+                border_style=shown.console_style,
                 padding=(1, 2),
             )
         )
