@@ -30,6 +30,7 @@ from typing import Literal, Protocol
 
 from harness.errors import InstrumentError, RunAborted, StageproofError, StoreError, ValueParseError
 from harness.instruments.config import StationConfig
+from harness.outcomes import LineResult
 from harness.run.bench_ops import identity_text
 from harness.run.progress import Progress
 from harness.run.roles import OpenStation
@@ -42,8 +43,6 @@ log = logging.getLogger("harness.run.line")
 
 #: Words that end the session when typed at the serial prompt (case-insensitive).
 QUIT_WORDS: frozenset[str] = frozenset({"quit", "exit"})
-
-Outcome = Literal["PASS", "FAIL", "ABORTED"]
 
 
 @dataclass(frozen=True)
@@ -68,7 +67,7 @@ class BoardOutcome:
     """One board tested in this session (aborted runs included)."""
 
     serial: str
-    outcome: Outcome
+    outcome: LineResult
     retest: int
     run_id: int | None
     reason: str | None = None
