@@ -952,6 +952,24 @@ SEARCH_GUARD = 0.4
 SEARCH_STALLS = 3
 
 
+def _scale_to(chain: LargeSignalChain, state: ChainState, rows: np.ndarray, k: np.ndarray) -> None:
+    """Newton's start for a level ``k`` times the one ``state`` was solved at (NaN: the rest
+    bias, left as it is), in place: every junction voltage's and mean current's departure
+    from rest scaled by ``k`` (exact for small signals), a junction raised by at most 2 V_T
+    beyond its old value (its voltage grows with the log of its current: SPICE's limit)."""
+    k = np.where(np.isfinite(k), k, 1.0)
+    for s, c in zip(state, chain.coef, strict=True):
+        if s is None:
+            continue
+        kc = k[:, None]
+        for name, rest in (("vbe", c["vbe0"][rows][:, None]), ("vbc", c["vbc0"][rows][:, None])):
+            old = getattr(s, name)
+            new = rest + kc * (old - rest)
+            setattr(s, name, np.minimum(new, np.maximum(old, rest) + 2.0 * c["v_t"][rows][:, None]))
+        s.m_b = c["ib0"][rows] + k * (s.m_b - c["ib0"][rows])
+        s.m_c = c["ic0"][rows] + k * (s.m_c - c["ic0"][rows])
+
+
 def _interpolated_root(hx: np.ndarray, hf: np.ndarray) -> np.ndarray:
     """Root estimate from the last three points ``(rows, 3)`` of each sample (the newest
     last): inverse quadratic interpolation where the three scores differ, else the secant
@@ -985,6 +1003,7 @@ def criterion_level(
     workers: int = 1,
     tol_db: float = 0.0,
     emf_per_input: np.ndarray | float = 1.0,
+    start: tuple[ChainState, np.ndarray] | None = None,
 ) -> np.ndarray:
     """Input peak level where the board's clipping criterion is met, for every sample at once.
 
@@ -1007,12 +1026,18 @@ def criterion_level(
     :data:`SEARCH_WIDEN` steps come back NaN.
     """
     n = gain.shape[0]
-    state = chain.rest_state(n_points)
+    if start is None:
+        state, amp_at = chain.rest_state(n_points), np.full(n, np.nan)
+    else:
+        state = [s.take(slice(None)) if s else None for s in start[0]]
+        amp_at = np.array(start[1], dtype=float)
 
     def g(level_db: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Criterion score (>= 0: met) and input level over EMF in dB at these EMF levels."""
         amp = 10.0 ** (level_db / 20.0)
         sub = [s.take(rows) if s else None for s in state]
+        _scale_to(chain, sub, rows, amp / amp_at[rows])
+        amp_at[rows] = amp
         v_in = np.empty(amp.shape[0])
         h = harmonics(
             chain.take(rows), amp, n_points, workers=workers, state=sub, input_fundamental=v_in
@@ -1183,9 +1208,13 @@ def evaluate_channel(
     chain = LargeSignalChain.from_arrays(res, channel, p)
     # the generator's EMF that puts a small signal of 1 V on the input connector
     emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
+    nominal_state: tuple[ChainState, np.ndarray] | None = None
     if thd_points:
-        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers)
+        state = chain.rest_state(thd_points)
+        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers, state=state)
         res.thd_percent = thd_from_harmonics(h)
+        if search_points == thd_points:
+            nominal_state = (state, nominal_vpk * emf_per_input)
     if search_points:
         c = board.conditions
         if c.clip_criterion == "thd" and res.thd_percent is not None:
@@ -1207,5 +1236,6 @@ def evaluate_channel(
             workers=workers,
             tol_db=search_tol_db,
             emf_per_input=emf_per_input,
+            start=nominal_state,
         )
     return res

@@ -133,6 +133,7 @@ def solve_periodic(
     w = weights
     # a step this small leaves an error below tol_v (quadratic convergence)
     done_step = np.sqrt(tol_v * k["v_t"][0] / QUADRATIC_GAIN)
+    early = bool(np.any(k["inv_vaf"]))
     for _ in range(max_iterations):
         i_s, inv_vt, bf_inv, br_inv, inv_vaf = (
             k["is_a"],
@@ -149,25 +150,36 @@ def solve_periodic(
         np.minimum(e2, 80.0, out=e2)
         np.exp(e2, out=e2)
         e2 *= i_s
-        icc, iec = e1 - i_s, e2 - i_s
-        q = vbc * inv_vaf
-        np.subtract(1.0, q, out=q)
-        d = icc - iec
-        i_c = d * q
-        i_c -= iec * br_inv
-        i_b = icc * bf_inv
-        i_b += iec * br_inv
+        # with e = I_S exp(V/V_T): I_CC - I_EC = e1 - e2, I_EC / beta_R = e2 / beta_R - I_S / beta_R
+        d = e1 - e2
+        t = e2 * br_inv
+        i_b = e1 * bf_inv
+        i_b += t
+        i_b -= k["is_b"]
+        if early:  # the Early factor q = 1 - V_BC / V_AF on the transport current
+            q = vbc * inv_vaf
+            np.subtract(1.0, q, out=q)
+            i_c = d * q
+        else:
+            i_c = d.copy()
+        i_c -= t
+        i_c += k["is_r"]
         g1, g2 = e1, e2  # the junction conductances, in place of the exponentials
         g1 *= inv_vt
         g2 *= inv_vt
-        dc1 = g1 * q
-        dc2 = q + br_inv
-        dc2 *= g2
-        d *= inv_vaf
-        dc2 += d
-        np.negative(dc2, out=dc2)
         db1 = g1 * bf_inv
-        db2 = g2 * br_inv
+        db2 = t
+        db2 *= inv_vt
+        if early:
+            dc1 = g1 * q
+            dc2 = g2 * q
+            d *= inv_vaf
+            dc2 += d
+        else:
+            dc1 = g1
+            dc2 = g2.copy()
+        dc2 += db2
+        np.negative(dc2, out=dc2)
         r_b, r_e, r_cac = k["r_b"], k["r_e"], k["r_cac"]
         # residuals of the base-emitter and base-collector loops
         base = k["v_src"] - k["rth_b"] * m_b
@@ -287,6 +299,8 @@ def _row_constants(
         "bf_inv": 1.0 / g["beta_f"],
         "br_inv": 1.0 / g["beta_r"],
         "inv_vaf": g["inv_vaf"],
+        "is_b": i_s / g["beta_f"] + i_s / g["beta_r"],
+        "is_r": i_s / g["beta_r"],
         "r_b": g["r_b"],
         "r_e": g["r_e"],
         "rbe": g["r_b"] + g["r_e"],
