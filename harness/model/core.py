@@ -1056,8 +1056,8 @@ def criterion_level(
     to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
     ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12)) + to_emf
     with np.errstate(divide="ignore", invalid="ignore"):
-        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
-    start = np.where(np.isfinite(start), start, ref)
+        first = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
+    first = np.where(np.isfinite(first), first, ref)
     tol = max(tol_db, 1e-9)
     guard = SEARCH_GUARD * tol
     # the bracket [a, b], fa <= 0 < fb (an end not found yet: score -inf / +inf), and the
@@ -1078,7 +1078,7 @@ def criterion_level(
         b[ib], fb[ib], rb[ib] = x[hi], f[hi], r[hi]
 
     every = np.arange(n)
-    solve_at(every, start)
+    solve_at(every, first)
     live = every[np.isfinite(hf[:, 2])]
     widen, inside = np.zeros(n, dtype=int), np.zeros(n, dtype=int)
     while live.size:
