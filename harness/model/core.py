@@ -952,6 +952,17 @@ SEARCH_GUARD = 0.4
 SEARCH_STALLS = 3
 
 
+@dataclass
+class SolvedLevel:
+    """The chain solved at an EMF peak per sample: the state, the output's harmonics (as
+    :func:`harmonics`) and the fundamental at the input connector."""
+
+    state: ChainState
+    emf_vpk: np.ndarray
+    harmonics: np.ndarray
+    input_vpk: np.ndarray
+
+
 def _scale_to(chain: LargeSignalChain, state: ChainState, rows: np.ndarray, k: np.ndarray) -> None:
     """Newton's start for a level ``k`` times the one ``state`` was solved at (NaN: the rest
     bias, left as it is), in place: every junction voltage's and mean current's departure
@@ -1003,7 +1014,7 @@ def criterion_level(
     workers: int = 1,
     tol_db: float = 0.0,
     emf_per_input: np.ndarray | float = 1.0,
-    start: tuple[ChainState, np.ndarray] | None = None,
+    start: SolvedLevel | None = None,
 ) -> np.ndarray:
     """Input peak level where the board's clipping criterion is met, for every sample at once.
 
@@ -1024,16 +1035,33 @@ def criterion_level(
     it); only the samples still searching are solved, each from its own last solution.  The
     answer is the secant inside the final bracket; samples that cannot be bracketed within
     :data:`SEARCH_WIDEN` steps come back NaN.
+
+    ``start``: the chain solved at some level (the nominal level's solution, at the same
+    ``n_points``): the first point to interpolate from (and a bracket end), and where the
+    first solve starts instead of the rest bias.  Every solve starts from the sample's last
+    solution scaled to the new level (:func:`_scale_to`).
     """
     n = gain.shape[0]
     if start is None:
         state, amp_at = chain.rest_state(n_points), np.full(n, np.nan)
     else:
-        state = [s.take(slice(None)) if s else None for s in start[0]]
-        amp_at = np.array(start[1], dtype=float)
+        state = [s.take(slice(None)) if s else None for s in start.state]
+        amp_at = np.array(start.emf_vpk, dtype=float)
+
+    def score(
+        h: np.ndarray, v_in: np.ndarray, amp: np.ndarray, rows: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Criterion score (>= 0: met) and input level over EMF in dB from the harmonics."""
+        with np.errstate(divide="ignore"):
+            ratio_db = 20.0 * np.log10(np.maximum(v_in, 1e-300) / amp)
+        if criterion == "compression":
+            with np.errstate(divide="ignore"):
+                comp = 20.0 * np.log10(np.abs(gain[rows]) * v_in / np.maximum(h[:, 1], 1e-300))
+            return comp - compression_db, ratio_db
+        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent), ratio_db
 
     def g(level_db: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Criterion score (>= 0: met) and input level over EMF in dB at these EMF levels."""
+        """Criterion score and input level over EMF in dB at these EMF levels."""
         amp = 10.0 ** (level_db / 20.0)
         sub = [s.take(rows) if s else None for s in state]
         _scale_to(chain, sub, rows, amp / amp_at[rows])
@@ -1045,13 +1073,7 @@ def criterion_level(
         for s, new in zip(state, sub, strict=True):
             if s is not None and new is not None:
                 s.put(rows, new)
-        with np.errstate(divide="ignore"):
-            ratio_db = 20.0 * np.log10(np.maximum(v_in, 1e-300) / amp)
-        if criterion == "compression":
-            with np.errstate(divide="ignore"):
-                comp = 20.0 * np.log10(np.abs(gain[rows]) * v_in / np.maximum(h[:, 1], 1e-300))
-            return comp - compression_db, ratio_db
-        return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent), ratio_db
+        return score(h, v_in, amp, rows)
 
     to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
     ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12)) + to_emf
@@ -1078,6 +1100,13 @@ def criterion_level(
         b[ib], fb[ib], rb[ib] = x[hi], f[hi], r[hi]
 
     every = np.arange(n)
+    if start is not None:  # a solved point to interpolate from, and maybe a bracket end
+        f_s, r_s = score(start.harmonics, start.input_vpk, start.emf_vpk, every)
+        x_s = 20.0 * np.log10(np.maximum(start.emf_vpk, 1e-300))
+        hx[:, 2], hf[:, 2] = x_s, f_s
+        lo, hi = f_s <= 0, f_s > 0
+        a[lo], fa[lo], ra[lo] = x_s[lo], f_s[lo], r_s[lo]
+        b[hi], fb[hi], rb[hi] = x_s[hi], f_s[hi], r_s[hi]
     solve_at(every, first)
     live = every[np.isfinite(hf[:, 2])]
     widen, inside = np.zeros(n, dtype=int), np.zeros(n, dtype=int)
@@ -1208,13 +1237,15 @@ def evaluate_channel(
     chain = LargeSignalChain.from_arrays(res, channel, p)
     # the generator's EMF that puts a small signal of 1 V on the input connector
     emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
-    nominal_state: tuple[ChainState, np.ndarray] | None = None
+    nominal: SolvedLevel | None = None
     if thd_points:
         state = chain.rest_state(thd_points)
-        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers, state=state)
+        emf = nominal_vpk * emf_per_input
+        v_in = np.empty(n)
+        h = harmonics(chain, emf, thd_points, workers=workers, state=state, input_fundamental=v_in)
         res.thd_percent = thd_from_harmonics(h)
         if search_points == thd_points:
-            nominal_state = (state, nominal_vpk * emf_per_input)
+            nominal = SolvedLevel(state, emf, h, v_in)
     if search_points:
         c = board.conditions
         if c.clip_criterion == "thd" and res.thd_percent is not None:
@@ -1236,6 +1267,6 @@ def evaluate_channel(
             workers=workers,
             tol_db=search_tol_db,
             emf_per_input=emf_per_input,
-            start=nominal_state,
+            start=nominal,
         )
     return res

@@ -170,17 +170,37 @@ def solve_periodic(
         db1 = g1 * bf_inv
         db2 = t
         db2 *= inv_vt
+        r_b, r_e, r_cac = k["r_b"], k["r_e"], k["r_cac"]
+        # the loops' Jacobian in (vbe, vbc), point by point: column 1 is linear in the
+        # base-emitter derivatives (db1, dc1), column 2 in the base-collector ones
         if early:
             dc1 = g1 * q
             dc2 = g2 * q
             d *= inv_vaf
             dc2 += d
-        else:
+            dc2 += db2
+            np.negative(dc2, out=dc2)
+            j11 = k["rbe"] * db1
+            j11 += r_e * dc1
+            j11 += 1.0
+            np.negative(j11, out=j11)
+            j12 = k["rbe"] * db2
+            j12 += r_e * dc2
+            np.negative(j12, out=j12)
+            j21 = r_cac * dc1
+            j21 -= r_b * db1
+            j22 = r_cac * dc2
+            j22 -= r_b * db2
+            j22 -= 1.0
+        else:  # dc1 = g1, dc2 = -g2 (1 + 1/beta_R): each entry one product
             dc1 = g1
-            dc2 = g2.copy()
-        dc2 += db2
-        np.negative(dc2, out=dc2)
-        r_b, r_e, r_cac = k["r_b"], k["r_e"], k["r_cac"]
+            dc2 = g2 * k["m_br"]
+            j11 = g1 * k["n11"]
+            j11 -= 1.0
+            j12 = g2 * k["n12"]
+            j21 = g1 * k["n21"]
+            j22 = g2 * k["n22"]
+            j22 -= 1.0
         # residuals of the base-emitter and base-collector loops
         base = k["v_src"] - k["rth_b"] * m_b
         base -= r_b * i_b
@@ -188,19 +208,6 @@ def solve_periodic(
         f1 -= r_e * (i_b + i_c)
         f2 = base - (k["v_cc"] - k["b22"] * m_c + vbc)
         f2 += r_cac * i_c
-        # their Jacobian in (vbe, vbc), point by point
-        j11 = k["rbe"] * db1
-        j11 += r_e * dc1
-        j11 += 1.0
-        np.negative(j11, out=j11)
-        j12 = k["rbe"] * db2
-        j12 += r_e * dc2
-        np.negative(j12, out=j12)
-        j21 = r_cac * dc1
-        j21 -= r_b * db1
-        j22 = r_cac * dc2
-        j22 -= r_b * db2
-        j22 -= 1.0
         inv = j11 * j22
         inv -= j12 * j21
         np.reciprocal(inv, out=inv)
@@ -226,14 +233,10 @@ def solve_periodic(
         s22 = 1.0 + q21 * b12 + q22 * b22
         p11 *= f1
         p12 *= f2
-        p11 += p12
         p21 *= f1
         p22 *= f2
-        p21 += p22
-        i_b -= p11
-        i_c -= p21
-        r1 = w @ i_b - m_b
-        r2 = w @ i_c - m_c
+        r1 = w @ i_b - w @ p11 - w @ p12 - m_b
+        r2 = w @ i_c - w @ p21 - w @ p22 - m_c
         det = s11 * s22 - s12 * s21
         dm_b = (s22 * r1 - s12 * r2) / det
         dm_c = (s11 * r2 - s21 * r1) / det
@@ -304,6 +307,12 @@ def _row_constants(
         "r_b": g["r_b"],
         "r_e": g["r_e"],
         "rbe": g["r_b"] + g["r_e"],
+        # the Jacobian's per-row factors without the Early effect (see the loop)
+        "m_br": -(1.0 + 1.0 / g["beta_r"]),
+        "n11": -((g["r_b"] + g["r_e"]) / g["beta_f"] + g["r_e"]),
+        "n12": g["r_e"] * (1.0 + 1.0 / g["beta_r"]) - (g["r_b"] + g["r_e"]) / g["beta_r"],
+        "n21": g["r_cac"] - g["r_b"] / g["beta_f"],
+        "n22": -(g["r_cac"] * (1.0 + 1.0 / g["beta_r"]) + g["r_b"] / g["beta_r"]),
         "r_cac": g["r_cac"],
         "k_e": g["k_e"],
         "rth_b": rth_b,
