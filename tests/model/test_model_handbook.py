@@ -183,3 +183,59 @@ def test_board_text_helper_roundtrip(tmp_path) -> None:
     """The test helper writes a board the loader accepts (guards the other tests' set-up)."""
     board = load_board(write_board(tmp_path, board_text()))
     assert board.channel("X").stages[0].rc.nominal == 4700
+
+
+@pytest.mark.parametrize("inv_vaf", [1 / 80.0, 0.0])
+def test_periodic_newton_stops_within_its_tolerance(inv_vaf: float) -> None:
+    """The periodic solve takes a row as converged once Newton's quadratic error bound on
+    its last step is below tol_v; carried on to rounding level (the slower exact path), the
+    junction voltages move less than tol_v, with and without the Early effect (the second
+    uses the Jacobian's product form).  Also the equations' residuals, recomputed here from
+    the Ebers-Moll transport form (Ebers & Moll, Proc. IRE 1954), vanish."""
+    from harness.model.core import _cos_weights
+    from harness.model.periodic import PeriodicState, solve_periodic
+
+    m = 16
+    cos_t, basis = _cos_weights(m, 0)
+    w = basis[:, 0]
+    levels = np.array([0.0, 0.01, 0.05, 0.2, 0.5, 1.0, 3.0])
+    rows = levels.size
+    drive = levels[:, None] * cos_t[None, :]
+    col = {
+        "is_a": 2e-14,
+        "beta_f": 150.0,
+        "beta_r": 4.0,
+        "inv_vaf": inv_vaf,
+        "v_t": V_T,
+        "v_th": 2.2,
+        "r_th": 9e3,
+        "r_b": 5e3,
+        "k_e": 1e3,
+        "r_e": 200.0,
+        "v_cc": 15.0,
+        "r_cdc": 6.8e3,
+        "r_cac": 4e3,
+    }
+    c = {k: np.full((rows, 1), v) for k, v in col.items()}
+    start = PeriodicState(
+        np.full((rows, m + 1), 0.62),
+        np.full((rows, m + 1), -5.0),
+        np.full(rows, 5e-6),
+        np.full(rows, 1e-3),
+    )
+    tol = 1e-10
+    sol = solve_periodic(drive, c, w, start, tol_v=tol)
+    exact = solve_periodic(drive, c, w, sol.state, tol_v=1e-24, max_iterations=4)
+    assert np.max(np.abs(sol.state.vbe - exact.state.vbe)) < tol
+    assert np.max(np.abs(sol.state.vbc - exact.state.vbc)) < tol
+    vbe, vbc = exact.state.vbe, exact.state.vbc
+    mb, mc = exact.state.m_b[:, None], exact.state.m_c[:, None]
+    icc, iec = 2e-14 * np.expm1(vbe / V_T), 2e-14 * np.expm1(vbc / V_T)
+    ic = (icc - iec) * (1 - vbc * inv_vaf) - iec / 4.0
+    ib = icc / 150.0 + iec / 4.0
+    vb = 2.2 - (9e3 - 5e3) * mb + drive - 5e3 * ib
+    ve = 1e3 * (mb + mc) + 200.0 * (ib + ic)
+    vc = 15.0 - (6.8e3 - 4e3) * mc - 4e3 * ic
+    assert np.max(np.abs(vb - ve - vbe)) < 1e-9
+    assert np.max(np.abs(vb - vc - vbc)) < 1e-9
+    assert np.max(vbc[-1]) > 0.4  # the heaviest drive saturates the collector junction
