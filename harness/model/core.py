@@ -894,6 +894,7 @@ def harmonics(
     workers: int = 1,
     state: ChainState | None = None,
     input_fundamental: np.ndarray | None = None,
+    start_scale: np.ndarray | None = None,
 ) -> np.ndarray:
     """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift of a DC-coupled
     load, 0 behind C_out) of the channel output for a sine EMF of peak ``amp_vpk`` behind the
@@ -902,7 +903,9 @@ def harmonics(
 
     Solved in blocks of :data:`BLOCK_ROWS` samples; ``workers`` > 1 spreads the blocks over
     threads (numpy releases the GIL inside its loops).  ``state`` (full size, see
-    :meth:`LargeSignalChain.rest_state`) is the start and is replaced by the solution."""
+    :meth:`LargeSignalChain.rest_state`) is the start and is replaced by the solution;
+    ``start_scale`` (per sample) is the level's ratio to the one ``state`` was solved at,
+    to scale the start by (:func:`_scale_to`)."""
     _, basis = _cos_weights(n_points // 2, k_max)
     amp = np.asarray(amp_vpk, dtype=float)
     n = amp.shape[0]
@@ -910,8 +913,11 @@ def harmonics(
 
     def block(i0: int) -> None:
         sl = slice(i0, min(i0 + BLOCK_ROWS, n))
+        part = chain.take(sl)
         start = None if state is None else [s.take(sl) if s else None for s in state]
-        sol = chain_waveform(chain.take(sl), amp[sl], n_points, start)
+        if start is not None and start_scale is not None:
+            _scale_to(part, start, start_scale[sl])
+        sol = chain_waveform(part, amp[sl], n_points, start)
         out[sl] = np.abs(sol.out @ basis)
         if input_fundamental is not None:
             input_fundamental[sl] = np.abs(sol.inp @ basis[:, 1])
@@ -963,22 +969,28 @@ class SolvedLevel:
     input_vpk: np.ndarray
 
 
-def _scale_to(chain: LargeSignalChain, state: ChainState, rows: np.ndarray, k: np.ndarray) -> None:
+def _scale_to(chain: LargeSignalChain, state: ChainState, k: np.ndarray) -> None:
     """Newton's start for a level ``k`` times the one ``state`` was solved at (NaN: the rest
-    bias, left as it is), in place: every junction voltage's and mean current's departure
-    from rest scaled by ``k`` (exact for small signals), a junction raised by at most 2 V_T
-    beyond its old value (its voltage grows with the log of its current: SPICE's limit)."""
+    bias, left as it is): every junction voltage's and mean current's departure from rest
+    scaled by ``k`` (exact for small signals), a junction raised by at most 2 V_T beyond its
+    old value (its voltage grows with the log of its current: SPICE's limit).  Replaces the
+    state's arrays (never writes into them: they may be views of the caller's)."""
     k = np.where(np.isfinite(k), k, 1.0)
+    kc = k[:, None]
     for s, c in zip(state, chain.coef, strict=True):
         if s is None:
             continue
-        kc = k[:, None]
-        for name, rest in (("vbe", c["vbe0"][rows][:, None]), ("vbc", c["vbc0"][rows][:, None])):
+        up = 2.0 * c["v_t"][:, None]
+        for name, rest in (("vbe", c["vbe0"][:, None]), ("vbc", c["vbc0"][:, None])):
             old = getattr(s, name)
-            new = rest + kc * (old - rest)
-            setattr(s, name, np.minimum(new, np.maximum(old, rest) + 2.0 * c["v_t"][rows][:, None]))
-        s.m_b = c["ib0"][rows] + k * (s.m_b - c["ib0"][rows])
-        s.m_c = c["ic0"][rows] + k * (s.m_c - c["ic0"][rows])
+            new = old - rest
+            new *= kc
+            new += rest
+            cap = np.maximum(old, rest)
+            cap += up
+            setattr(s, name, np.minimum(new, cap, out=new))
+        s.m_b = c["ib0"] + k * (s.m_b - c["ib0"])
+        s.m_c = c["ic0"] + k * (s.m_c - c["ic0"])
 
 
 def _interpolated_root(hx: np.ndarray, hf: np.ndarray) -> np.ndarray:
@@ -1045,7 +1057,7 @@ def criterion_level(
     if start is None:
         state, amp_at = chain.rest_state(n_points), np.full(n, np.nan)
     else:
-        state = [s.take(slice(None)) if s else None for s in start.state]
+        state = [s.take(slice(None)).copy() if s else None for s in start.state]
         amp_at = np.array(start.emf_vpk, dtype=float)
 
     def score(
@@ -1063,16 +1075,25 @@ def criterion_level(
     def g(level_db: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Criterion score and input level over EMF in dB at these EMF levels."""
         amp = 10.0 ** (level_db / 20.0)
-        sub = [s.take(rows) if s else None for s in state]
-        _scale_to(chain, sub, rows, amp / amp_at[rows])
+        scale = amp / amp_at[rows]
         amp_at[rows] = amp
+        # every sample: solve in place (views), else on copies of the rows put back after
+        pick: np.ndarray | slice = slice(None) if rows.size == n else rows
+        sub = [s.take(pick) if s else None for s in state]
         v_in = np.empty(amp.shape[0])
         h = harmonics(
-            chain.take(rows), amp, n_points, workers=workers, state=sub, input_fundamental=v_in
+            chain.take(pick),
+            amp,
+            n_points,
+            workers=workers,
+            state=sub,
+            input_fundamental=v_in,
+            start_scale=scale,
         )
-        for s, new in zip(state, sub, strict=True):
-            if s is not None and new is not None:
-                s.put(rows, new)
+        if isinstance(pick, np.ndarray):
+            for s, new in zip(state, sub, strict=True):
+                if s is not None and new is not None:
+                    s.put(pick, new)
         return score(h, v_in, amp, rows)
 
     to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
@@ -1239,12 +1260,15 @@ def evaluate_channel(
     emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
     nominal: SolvedLevel | None = None
     if thd_points:
-        state = chain.rest_state(thd_points)
+        # the search starts from this solution where it runs at the same resolution (kept
+        # only then: a full-size state is memory the Monte Carlo's estimate counts)
+        keep = search_points == thd_points
+        state = chain.rest_state(thd_points) if keep else None
         emf = nominal_vpk * emf_per_input
         v_in = np.empty(n)
         h = harmonics(chain, emf, thd_points, workers=workers, state=state, input_fundamental=v_in)
         res.thd_percent = thd_from_harmonics(h)
-        if search_points == thd_points:
+        if state is not None:
             nominal = SolvedLevel(state, emf, h, v_in)
     if search_points:
         c = board.conditions

@@ -548,11 +548,12 @@ def _channel_limits(
 #: longest channel (the channels are evaluated one after the other).  Measured with
 #: tracemalloc on the demo boards (benchmarks/bench_memory.py): 817 B per board for
 #: one-stage channels, 1267 B for two-stage ones at 80,000 boards; the figures here carry a
-#: margin of about a third, and a fixed part for the worst-case corners and the nominal
-#: design (2.1 kB per board at 5,000 boards).
+#: margin of about a third, and a fixed part for the worst-case corners, the nominal design
+#: and the criterion search on its ``MC_SEARCH_SAMPLES`` boards (2.7 kB per board measured at
+#: 20,000 two-stage boards, where 16 MiB fell short).
 MC_BYTES_PER_BOARD = 500
 MC_BYTES_PER_BOARD_STAGE = 600
-MC_BYTES_FIXED = 16 << 20
+MC_BYTES_FIXED = 20 << 20
 
 
 def limits_memory_bytes(board: Board, samples: int) -> int:

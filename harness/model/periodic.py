@@ -74,6 +74,9 @@ class PeriodicState:
     def take(self, rows: slice | np.ndarray) -> PeriodicState:
         return PeriodicState(self.vbe[rows], self.vbc[rows], self.m_b[rows], self.m_c[rows])
 
+    def copy(self) -> PeriodicState:
+        return PeriodicState(self.vbe.copy(), self.vbc.copy(), self.m_b.copy(), self.m_c.copy())
+
     def put(self, rows: slice | np.ndarray, other: PeriodicState) -> None:
         self.vbe[rows], self.vbc[rows] = other.vbe, other.vbc
         self.m_b[rows], self.m_c[rows] = other.m_b, other.m_c
