@@ -28,13 +28,13 @@ import tempfile
 import time
 from pathlib import Path
 
-from harness.instruments.bench import connect
 from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.station import load_station
 from harness.measure import analyze_uniform, clip_threshold, plan_coherent
 from harness.model import compute_limits
 from harness.run.bench_ops import choose_range
+from harness.run.safety import safe_station
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.bench import SimBench
 from harness.store import open_store
@@ -50,7 +50,7 @@ def harness_run(
     with SimBench(board, latency=True, dialect=dialect) as bench:
         station = load_station(bench.write_station(work / f"station-h-{dialect}.toml"))
         fixture = load_fixture(FIXTURE, board, scope_inputs=4)
-        with open_store(work / f"bench-{dialect}.db") as store, connect(station) as inst:
+        with open_store(work / f"bench-{dialect}.db") as store, safe_station(station) as inst:
             t0 = time.perf_counter()
             res = run_board(
                 inst,
@@ -81,7 +81,7 @@ def baseline_sweep(board, limits, work: Path, settle_s: float) -> dict:
     crit = board.conditions.clip_thd_percent
     with SimBench(board, latency=True) as bench:
         station = load_station(bench.write_station(work / "station-b.toml"))
-        with connect(station) as inst:
+        with safe_station(station) as inst:
             t0 = time.perf_counter()
             g, s = inst.generator, inst.scope
             inst.supply.configure(board.supply.v_pos, 0.03)

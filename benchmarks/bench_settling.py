@@ -21,11 +21,11 @@ import tempfile
 import time
 from pathlib import Path
 
-from harness.instruments.bench import connect
 from harness.io.board import load_board
 from harness.io.fixture import load_fixture
 from harness.io.station import load_station
 from harness.model import compute_limits
+from harness.run.safety import safe_station
 from harness.run.sequence import RunOptions, run_board
 from harness.sim.bench import SimBench
 from harness.store import open_store
@@ -40,7 +40,7 @@ def one_run(board, limits, work: Path, *, latency: bool, settling: bool) -> dict
         station = load_station(bench.write_station(work / "station.toml"))
         fixture = load_fixture(bench.write_fixture(work / "fixture.toml"), board)
         opts = RunOptions() if settling else RunOptions(settle_wait_s=0.0)
-        with open_store(work / "bench.db") as store, connect(station) as inst:
+        with open_store(work / "bench.db") as store, safe_station(station) as inst:
             t0 = time.perf_counter()
             res = run_board(inst, board, limits, fixture, "BENCH-1", store, options=opts)
             elapsed = time.perf_counter() - t0

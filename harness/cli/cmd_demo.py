@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from harness.run.sequence import RunResult
 
+from harness.outcomes import look
 from harness.store import redact
 
 DEMO_BOARD = "demo-twin-preamp.toml"
@@ -136,7 +137,7 @@ def run(args: argparse.Namespace) -> int:
     table.add_column("verdict")
     table.add_column("failing measurements")
     for demo, res in results:
-        colour = "green" if res.verdict == "PASS" else "red"
+        colour = look(res.verdict).console_style
         failing = [
             f"{m.channel + ' ' if m.channel else ''}{m.name} ({m.decision})"
             for m in res.measurements

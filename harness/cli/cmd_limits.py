@@ -102,23 +102,15 @@ def side_text(fractions: dict[str, float], nominal: str) -> str:
     return f"{major} half-cycle of the output on {share:.1%} of boards ({minority} on {other:.1%})"
 
 
-_WC_KEYS = {
-    "gain": "gain_db",
-    "clipping threshold": "clip_input_vrms",
-    "swing-limited clipping threshold": "swing_clip_input_vrms",
-    "THD at nominal level": "thd_percent",
-    "supply current": "supply_current_a",
-    "low -3 dB corner": "low_corner_hz",
-}
-
-
-def _row(table, ch, lim: Limit, fmt: str, unit: str, scale: float = 1.0) -> None:
-    """One quantity: nominal, Monte Carlo low/high and the worst-case corner values."""
+def _row(table, ch, key: str, fmt: str, unit: str, scale: float = 1.0) -> None:
+    """One quantity (``key``: its field of the channel limits): nominal, Monte Carlo
+    low/high and the worst-case corner values."""
+    lim: Limit = getattr(ch, key)
 
     def s(x: float | None) -> str:
         return _f(None if x is None else x * scale, fmt)
 
-    wc = ch.worst_case.get(_WC_KEYS.get(lim.name, ""))
+    wc = ch.worst_case.get(key)
     lo, hi = (s(wc.low), s(wc.high)) if wc is not None else ("-", "-")
     table.add_row(lim.name, s(lim.nominal), s(lim.low), s(lim.high), lo, hi, unit)
 
@@ -182,17 +174,17 @@ def _print_tables(board, limits: BoardLimits) -> None:
         table.caption = CORNER_NOTE
         table.caption_justify = "left"
 
-        def row(lim: Limit, fmt: str, unit: str, scale: float = 1.0, _t=table, _c=ch) -> None:
-            _row(_t, _c, lim, fmt, unit, scale)
+        def row(key: str, fmt: str, unit: str, scale: float = 1.0, _t=table, _c=ch) -> None:
+            _row(_t, _c, key, fmt, unit, scale)
 
-        row(ch.gain_db, ".2f", "dB")
-        row(ch.clip_input_vrms, ".4f", "V rms")
+        row("gain_db", ".2f", "dB")
+        row("clip_input_vrms", ".4f", "V rms")
         c = ch.clip_input_vrms
         table.add_row("  (as dBu)", _dbu(c.nominal), _dbu(c.low), _dbu(c.high), "", "", "dBu")
-        row(ch.swing_clip_input_vrms, ".4f", "V rms")
-        row(ch.thd_percent, ".4f", "%")
-        row(ch.supply_current_a, ".3f", "mA", 1e3)
-        row(ch.low_corner_hz, ".2f", "Hz")
+        row("swing_clip_input_vrms", ".4f", "V rms")
+        row("thd_percent", ".4f", "%")
+        row("supply_current_a", ".3f", "mA", 1e3)
+        row("low_corner_hz", ".2f", "Hz")
         console.print(table)
         console.print(
             Text.assemble(
@@ -218,8 +210,7 @@ def _print_tables(board, limits: BoardLimits) -> None:
                 "  time constants that move the operating point (waited for): "
                 + (", ".join(shape) or "none")
                 + "; that only move the output's DC level (removed by AC coupling or the "
-                "fit's offset term): "
-                + (", ".join(dc) or "none")
+                "fit's offset term): " + (", ".join(dc) or "none")
             )
         for s in design.stages:
             if s.vc_v is not None:

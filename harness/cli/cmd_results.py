@@ -16,6 +16,8 @@ from typing import TYPE_CHECKING, Any
 from harness import jsontext
 from harness.cli.run_args import value_text
 from harness.errors import ValueParseError
+from harness.outcomes import look
+from harness.quantities import lookup
 from harness.store import (
     DEFAULT_DB,
     STATUSES,
@@ -42,14 +44,10 @@ _MEAS_FIELDS = (
     "step",
     "measured_at",
 )
-_DECISION_STYLE = {
-    "pass": "green",
-    "fail": "bold red",
-    "conditional pass": "yellow",
-    "conditional fail": "yellow",
-    "not resolvable": "magenta",
-}
-_VERDICT_STYLE = {"PASS": "green", "FAIL": "bold red"}
+
+
+def _style(word: str | None) -> str:
+    return look(word).console_style
 
 
 def _date(text: str) -> str:
@@ -203,7 +201,7 @@ def _list_table(db: str, rows: list[dict[str, Any]]) -> None:
             Text(r["serial"]),
             Text(r["part_number"]),
             Text(r["status"]),
-            Text(verdict, style=_VERDICT_STYLE.get(verdict, "")),
+            Text(verdict, style=_style(verdict)),
             Text(str(r["retest"])),
             Text(_when(r["started_at"])),
             Text(_when(r["ended_at"])),
@@ -252,7 +250,7 @@ def _show_run(
         ),
         (
             "status",
-            Text(f"{row.status}, verdict ") + Text(verdict, _VERDICT_STYLE.get(verdict, "")),
+            Text(f"{row.status}, verdict ") + Text(verdict, _style(verdict)),
         ),
         ("retest", str(row.retest)),
         ("started / ended (UTC)", f"{_when(row.started_at)} / {_when(row.ended_at) or '-'}"),
@@ -286,7 +284,8 @@ def _show_run(
     ):
         table.add_column(col, overflow="fold")
     for m in meas:
-        words = m.name == "clip_side" or m.value is None
+        q = lookup(m.name)
+        words = (q is not None and q.words) or m.value is None
         cells = (
             m.channel,
             m.name,
@@ -298,7 +297,7 @@ def _show_run(
         )
         table.add_row(
             *(Text(c) for c in cells),
-            Text(m.decision, style=_DECISION_STYLE.get(m.decision, "")),
+            Text(m.decision, style=_style(m.decision)),
             Text(m.step),
         )
     console.print(table)

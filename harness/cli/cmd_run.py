@@ -15,6 +15,7 @@ from harness.cli import run_args
 from harness.cli.run_args import RichProgress
 from harness.cli.term import make_console, styled
 from harness.errors import RunAborted
+from harness.outcomes import look
 from harness.run.runner import execute, prepare, validate_serial
 from harness.run.sequence import RunResult
 from harness.store import utc_now
@@ -31,7 +32,7 @@ def print_verdict(console: Any, result: RunResult, title: str | None = None) -> 
     table.add_column("verdict")
     table.add_column("not accepted")
     for ch, v in result.channels.items():
-        colour = "green" if v.verdict == "PASS" else "red"
+        colour = look(v.verdict).console_style
         table.add_row(styled(ch), styled(v.verdict, colour), styled(", ".join(v.failing) or "-"))
     console.print(table)
     if result.reason:

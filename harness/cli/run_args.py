@@ -9,16 +9,9 @@ import json
 import math
 from typing import Any
 
+from harness.outcomes import look
+from harness.quantities import CLIP_SIDE
 from harness.run.sequence import RunOptions
-
-_COLOURS = {
-    "pass": "green",
-    "info": "cyan",
-    "conditional pass": "yellow",
-    "conditional fail": "yellow",
-    "not resolvable": "magenta",
-    "fail": "red",
-}
 
 
 class RichProgress:
@@ -35,7 +28,7 @@ class RichProgress:
     def measurement(self, row: Any) -> None:
         from rich.text import Text
 
-        colour = _COLOURS.get(row.decision, "white")
+        colour = look(row.decision).console_style
         ch = f"{row.channel}: " if row.channel else ""
         lim = limits_text(row)
         line = Text(f"    {ch}{row.name} = {value_text(row)}{' ' + lim if lim else ''} ")
@@ -65,7 +58,7 @@ def value_text(row: Any, *, unit: bool = True) -> str:
     figure behind it), a threshold above the safe level as ``> 0.6 V rms (safe level)``."""
     detail = _detail(row)
     suffix = f" {row.unit}" if row.unit and unit else ""
-    if row.name == "clip_side":
+    if row.name == CLIP_SIDE.name:
         side = detail.get("side")
         word = f"{side} half-cycle" if side in ("positive", "negative") else "not determined"
         if row.value is not None:

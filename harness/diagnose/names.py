@@ -1,8 +1,8 @@
 """Measurement names: the run layer's stored names and the diagnosis's own keys.
 
-Why a module of its own: the sequencer (``harness.run.sequence``) decides what a stored
-measurement is called; the diagnosis reads those rows.  When a stored name changes, the fix
-is one line in :data:`STORE_NAMES` (or the prefix constants), nowhere else.
+Why a module of its own: the diagnosis reads stored rows by their registry entry
+(:mod:`harness.quantities`: each quantity's ``evidence`` is its key here), so the stored
+names and the diagnosis keys never meet anywhere but in that registry.
 
 Diagnosis keys (the keys of the ``measurements`` mapping :func:`rank_faults` takes):
 
@@ -33,29 +33,22 @@ import math
 from collections.abc import Iterable, Mapping
 from typing import Any, Protocol
 
-#: Stored measurement name (harness.run.sequence) -> diagnosis quantity.
-STORE_NAMES: dict[str, str] = {
-    "gain": "gain_db",
-    "thd": "thd_percent",
-    "clip_input": "clip_input_vrms",
-    "clip_side": "clip_side",
-    "supply_current": "supply_current_a",
-}
-#: Stored DC test points are named ``dc.<stage>.<quantity>``.
-STORE_DC_PREFIX = "dc."
-#: Stored extra-frequency gains are named ``gain@<f>Hz``.
-STORE_FREQ_PREFIX = "gain@"
-STORE_FREQ_SUFFIX = "Hz"
-#: Board-wide quantities (stored with an empty channel).
-BOARD_QUANTITIES = frozenset({"supply_current_a"})
+from harness.quantities import (
+    BOARD_EVIDENCE,
+    CLIP_ABOVE_EVIDENCE,
+    CLIP_BELOW_EVIDENCE,
+    CLIP_INPUT,
+    CLIP_SIDE,
+    CONDITION,
+    GAIN,
+    THD,
+    THD_FLOOR_EVIDENCE,
+    gain_at,
+    lookup,
+)
 
 #: Channel modes (the run's ``condition`` row) in which the output carries no signal.
 DEAD_MODES = frozenset({"dead", "stuck"})
-#: The run's stored name of a channel's mode at the nominal step.
-STORE_CONDITION = "condition"
-
-#: Diagnosis quantities scored on a log scale (dB): their spread is relative.
-LOG_QUANTITIES = frozenset({"gain_db", "thd_percent", "clip_input_vrms"})
 
 
 class RowLike(Protocol):
@@ -70,19 +63,22 @@ class RowLike(Protocol):
 
 def key(channel: str, quantity: str) -> str:
     """The diagnosis key of ``quantity`` on ``channel`` (board-wide ones have no prefix)."""
-    return quantity if not channel or quantity in BOARD_QUANTITIES else f"{channel}.{quantity}"
+    return quantity if not channel or quantity in BOARD_EVIDENCE else f"{channel}.{quantity}"
 
 
 def split_key(name: str) -> tuple[str, str]:
     """``"A.gain.collector_v"`` -> ``("A", "gain.collector_v")``; board-wide -> ``("", name)``."""
-    if name in BOARD_QUANTITIES:
+    if name in BOARD_EVIDENCE:
         return "", name
     channel, _, quantity = name.partition(".")
     return channel, quantity
 
 
 def freq_quantity(frequency_hz: float) -> str:
-    return f"gain_db@{frequency_hz:g}"
+    """The diagnosis quantity of the gain at an extra frequency."""
+    evidence = gain_at(frequency_hz).evidence
+    assert evidence is not None
+    return evidence
 
 
 def _detail(row: RowLike) -> dict[str, Any]:
@@ -114,49 +110,36 @@ def from_rows(rows: Iterable[RowLike]) -> dict[str, tuple[Any, float | None]]:
     """
     out: dict[str, tuple[Any, float | None]] = {}
     for r in rows:
+        q = lookup(r.name)
+        if q is None or q.evidence is None:
+            continue
         d = _detail(r)
         u = _finite(r.uncertainty)
         value = _finite(r.value)
-        name = r.name
-        if name.startswith(STORE_DC_PREFIX):
-            if value is not None:
-                out[key(r.channel, name[len(STORE_DC_PREFIX) :])] = (value, u)
-            continue
-        if name.startswith(STORE_FREQ_PREFIX) and name.endswith(STORE_FREQ_SUFFIX):
-            f = _finite(d.get("frequency_hz")) or _finite(
-                name[len(STORE_FREQ_PREFIX) : -len(STORE_FREQ_SUFFIX)]
-            )
-            if value is not None and f is not None:
-                nominal_f = _finite(name[len(STORE_FREQ_PREFIX) : -len(STORE_FREQ_SUFFIX)]) or f
-                out[key(r.channel, freq_quantity(nominal_f))] = (value, u)
-            continue
-        quantity = STORE_NAMES.get(name)
-        if quantity is None:
-            continue
-        if quantity == "clip_side":
+        if q is CLIP_SIDE:
             side = d.get("side")
             if side in ("positive", "negative"):
-                out[key(r.channel, quantity)] = (side, None)
+                out[key(r.channel, q.evidence)] = (side, None)
             continue
-        if quantity == "clip_input_vrms" and value is None:
+        if q is CLIP_INPUT and value is None:
             above = _finite(d.get("highest_measured_vrms"))
             below = _finite(d.get("lowest_measured_vrms"))
             if above is not None:
-                out[key(r.channel, "clip_above_vrms")] = (above, u)
+                out[key(r.channel, CLIP_ABOVE_EVIDENCE)] = (above, u)
             elif below is not None:
-                out[key(r.channel, "clip_below_vrms")] = (below, u)
+                out[key(r.channel, CLIP_BELOW_EVIDENCE)] = (below, u)
             continue
-        if quantity == "gain_db" and value is None and d.get("mode") in DEAD_MODES:
+        if q is GAIN and value is None and d.get("mode") in DEAD_MODES:
             # a dead channel (or one stuck at a rail): no output above the floor
-            out[key(r.channel, quantity)] = (-math.inf, None)
+            out[key(r.channel, q.evidence)] = (-math.inf, None)
             continue
         if value is None:
             continue
-        out[key(r.channel, quantity)] = (value, u)
-        if quantity == "thd_percent":
+        out[key(r.channel, q.evidence)] = (value, u)
+        if q is THD:
             floor = _finite(d.get("floor_percent"))
             if floor is not None:
-                out[key(r.channel, "thd_floor_percent")] = (floor, None)
+                out[key(r.channel, THD_FLOOR_EVIDENCE)] = (floor, None)
     return out
 
 
@@ -164,7 +147,7 @@ def channel_modes(rows: Iterable[RowLike]) -> dict[str, dict[str, Any]]:
     """Channel -> its stored condition (``mode``, ``text``, ``evidence``) where not working."""
     out: dict[str, dict[str, Any]] = {}
     for r in rows:
-        if r.name == STORE_CONDITION:
+        if r.name == CONDITION.name:
             d = _detail(r)
             if d.get("mode") not in (None, "working"):
                 out[r.channel] = d

@@ -37,11 +37,20 @@ import numpy as np
 from scipy.optimize import minimize_scalar
 
 from harness.diagnose.hypotheses import Hypothesis, channel_hypotheses
-from harness.diagnose.names import LOG_QUANTITIES, split_key
+from harness.diagnose.names import split_key
 from harness.diagnose.predict import Predictions, nominal_params, predict_channel
 from harness.errors import AnalysisError
 from harness.model.board import Board, Channel
 from harness.model.params import channel_parameters, sample_arrays
+from harness.quantities import (
+    CLIP_ABOVE_EVIDENCE,
+    CLIP_BELOW_EVIDENCE,
+    CLIP_INPUT,
+    CLIP_SIDE,
+    DB_SCORED_EVIDENCE,
+    THD,
+    THD_FLOOR_EVIDENCE,
+)
 
 #: A channel whose gain is this far below nominal is dead (dB).
 DEAD_DB = 40.0
@@ -204,9 +213,9 @@ def _parse(
                 f"measurement {name!r}: no channel {ch!r} on this board",
                 hint=f"channels: {', '.join(sorted(names))}",
             )
-        if q == "thd_floor_percent":
+        if q == THD_FLOOR_EVIDENCE:
             continue
-        if q == "clip_side":
+        if q == CLIP_SIDE.evidence:
             if value in ("positive", "negative"):
                 out.setdefault(ch, []).append(_Obs(name, q, value, 0.0))
             continue
@@ -219,7 +228,7 @@ def _parse(
         if math.isnan(v) or (not math.isfinite(v) and not q.startswith("gain_db")):
             continue
         s = 0.0 if u is None else abs(float(u)) / 2.0  # stored U is expanded, k = 2
-        if q in ("thd_percent", "clip_input_vrms", "clip_above_vrms", "clip_below_vrms"):
+        if q in DB_SCORED_EVIDENCE:
             if v <= 0:
                 continue
             s = 20.0 / math.log(10.0) * s / v
@@ -234,7 +243,7 @@ def _parse(
 
 
 def _scored(q: str, x: np.ndarray) -> np.ndarray:
-    if q in ("thd_percent", "clip_input_vrms"):
+    if q in DB_SCORED_EVIDENCE:
         with np.errstate(divide="ignore", invalid="ignore"):
             return 20.0 * np.log10(x)
     return x
@@ -302,17 +311,13 @@ def _terms(
                 o.sigma**2 + cm.spread.get(q, 0.0) ** 2 + _allow("gain_db", p, pred.degraded) ** 2
             )
             out[o.name] = ((m - p) ** 2 / s**2, p, s)
-        elif q in (
-            "thd_percent",
-            "clip_input_vrms",
-            "clip_above_vrms",
-            "clip_below_vrms",
-            "clip_side",
-        ):
-            src = "clip_input_vrms" if q.startswith("clip_") and q != "clip_side" else q
+        elif q in DB_SCORED_EVIDENCE or q == CLIP_SIDE.evidence:
+            bound = q in (CLIP_ABOVE_EVIDENCE, CLIP_BELOW_EVIDENCE)
+            src = CLIP_INPUT.evidence if bound else q
+            assert src is not None
             raw = pred.values[src]
             unpredicted = pred.dead | ~np.isfinite(raw) | cm.measured_dead
-            if q == "clip_side":
+            if q == CLIP_SIDE.evidence:
                 side = 1.0 if o.value == "positive" else -1.0
                 p_same = 0.5 * (1.0 + _erf(pred.side_margin_db / (SIDE_SIGMA_DB * math.sqrt(2))))
                 p_same = np.clip(np.nan_to_num(p_same, nan=0.5), *SIDE_P_RANGE)
@@ -324,14 +329,14 @@ def _terms(
                 continue
             p = _scored(src, raw)
             m = o.value
-            if q == "thd_percent":
+            if q == THD.evidence:
                 floor = _to_db(max(THD_FLOOR_PERCENT, 2.0 * cm.base.get("thd_floor", 0.0)))
                 p, m = np.maximum(p, floor), max(m, floor)
             s = np.sqrt(o.sigma**2 + cm.spread.get(src, 0.0) ** 2 + _allow(src, 0.0, False) ** 2)
             d = m - p
-            if q == "clip_above_vrms":
+            if q == CLIP_ABOVE_EVIDENCE:
                 d = np.maximum(d, 0.0)
-            elif q == "clip_below_vrms":
+            elif q == CLIP_BELOW_EVIDENCE:
                 d = np.minimum(d, 0.0)
             c = np.where(unpredicted, 0.0, d**2 / s**2)
             out[o.name] = (c, np.where(unpredicted, np.nan, p), np.broadcast_to(s, (n,)))
@@ -361,9 +366,7 @@ def _erf(x: np.ndarray) -> np.ndarray:
 
 
 def _natural(name: str, quantity: str, x: float) -> float:
-    if quantity in LOG_QUANTITIES or (quantity.startswith("clip_") and quantity != "clip_side"):
-        if quantity.startswith("gain_db"):
-            return x
+    if quantity in DB_SCORED_EVIDENCE:
         return 10.0 ** (x / 20.0) if math.isfinite(x) else math.nan
     return x
 
@@ -460,7 +463,7 @@ def rank_faults(
             else tolerance_spread(board, ch, extra)
         )
         base = nominal_params(board, ch)
-        floor = measurements.get(f"{ch.name}.thd_floor_percent")
+        floor = measurements.get(f"{ch.name}.{THD_FLOOR_EVIDENCE}")
         if floor is not None and floor[0] is not None:
             base["thd_floor"] = float(floor[0])
         cm = _ChannelModel(ch, obs, sp, {}, extra, base)
@@ -614,7 +617,7 @@ def rank_faults(
         for name, (c, p, sigma) in sorted(t.items()):
             q = quantity_of.get(name, name)
             m = measured_of.get(name)
-            if q == "clip_side":
+            if q == CLIP_SIDE.evidence:
                 pv = (
                     None
                     if not math.isfinite(p)
@@ -660,7 +663,7 @@ def rank_faults(
 
 
 def _sigma_natural(q: str, measured: float, s: float) -> float:
-    if q.startswith("gain_db") or (q not in LOG_QUANTITIES and not q.startswith("clip_")):
+    if q not in DB_SCORED_EVIDENCE:
         return s
     v = 10.0 ** (measured / 20.0)
     return v * (10.0 ** (s / 20.0) - 1.0)

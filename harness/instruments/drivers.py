@@ -896,6 +896,17 @@ class Switch(_Driver):
 
     role = "switch"
 
+    def __init__(self, session: Session) -> None:
+        super().__init__(session)
+        # relays whose state open_all reads back: the fixture's routes (watch) and every
+        # relay this session closed
+        self._watched: set[int] = set()
+
+    def watch(self, channels: Iterable[int]) -> None:
+        """Also read back ``channels`` after every open_all (a station's fixture routes, so
+        a relay a crashed process left closed is found at connect)."""
+        self._watched.update(int(c) for c in channels)
+
     def _settle(self) -> None:
         if self.settings["settle_s"] > 0:
             time.sleep(self.settings["settle_s"])
@@ -903,6 +914,7 @@ class Switch(_Driver):
     def close(self, channels: Iterable[int]) -> None:
         chans = list(channels)
         if chans:
+            self._watched.update(chans)
             self._set(("route", tuple(chans)), "close", channels=channel_list(chans))
             self._settle()
 
@@ -914,14 +926,36 @@ class Switch(_Driver):
             self._settle()
 
     def open_all(self) -> None:
+        """Open every route, then read back each relay watched: one still closed (a welded
+        contact, a profile whose open_all does nothing) is an InstrumentError, never "off"."""
         self._state = {k: v for k, v in self._state.items() if k[0] != "route"}
         self.session.configure("open_all")
         self._settle()
+        chans = sorted(self._watched)
+        if not chans:
+            return
+        left = [c for c, closed in zip(chans, self.is_closed(chans), strict=True) if closed]
+        if left:
+            raise InstrumentError(
+                f"switch: relay(s) {', '.join(map(str, left))} still read closed after open_all",
+                resource=self.session.resource,
+                role=self.session.role,
+                hint="check the relay card and the profile's open_all and query_closed",
+            )
 
     def is_closed(self, channels: Iterable[int]) -> list[bool]:
-        cmd = self.profile.render("query_closed", channels=channel_list(channels))
+        chans = list(channels)
+        cmd = self.profile.render("query_closed", channels=channel_list(chans))
         reply = self.session.query(cmd)
-        return [self._parsed(parse_bool, x, cmd) for x in reply.split(",")]
+        states = [self._parsed(parse_bool, x, cmd) for x in reply.split(",")]
+        if len(states) != len(chans):
+            raise InstrumentError(
+                f"switch answered {len(states)} state(s) for {len(chans)} relay(s): {reply!r}",
+                resource=self.session.resource,
+                command=cmd,
+                role=self.session.role,
+            )
+        return states
 
     @contextlib.contextmanager
     def routed(self, channels: Iterable[int]) -> Iterator[None]:

@@ -351,6 +351,19 @@ def _stage(
                 f"unknown coupling {coupling!r}",
                 hint='use "dc" (base on the previous collector) or "ac"',
             )
+        if coupling == "dc":
+            # a DC-coupled base sits on the previous collector: a bias divider or an input
+            # capacitor written here would be silently left out of every limit
+            given = [k for k in ("r1", "r2", "c_in") if k in data]
+            if given:
+                explicit = "coupling" in data
+                raise rd.fail(
+                    f"{where}.{given[0]}",
+                    f"{', '.join(given)} given on a DC-coupled follower"
+                    + ("" if explicit else ' (coupling defaults to "dc")'),
+                    hint='set coupling = "ac" to bias the base with r1, r2 and c_in, or remove '
+                    + ", ".join(given),
+                )
         stage = EmitterFollower(
             name=name,
             transistor=transistor(),

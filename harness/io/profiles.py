@@ -103,7 +103,7 @@ ROLE_OPS: dict[str, dict[str, _Op]] = {
         "close": _op(True, "channels"),
         "open": _op(True, "channels"),
         "open_all": _op(True),
-        "query_closed": _op(False, "channels"),
+        "query_closed": _op(True, "channels"),  # open_all is read back with it
     },
     "dmm": {
         "measure_dc_volts": _op(True, "range_v"),

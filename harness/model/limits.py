@@ -39,6 +39,7 @@ from harness.model.params import (
     sample_arrays,
     supply_parameters,
 )
+from harness.quantities import CLIP_INPUT, GAIN, LOW_CORNER, SUPPLY_CURRENT, THD, dc_point
 
 #: Large-signal resolution in the Monte Carlo (points per period; iterations of the search).
 #: 32 points resolve harmonics 2..10 of the soft BJT nonlinearity exactly and place the 1 % THD
@@ -442,12 +443,16 @@ def _channel_limits(
         )
 
     gain = lim(
-        "gain_db", "gain", "dB", design.gain_db, widen=(20 * math.log10(1 + u["gain_rel"]), 1.0)
+        GAIN.limit_key(),
+        GAIN.label,
+        GAIN.unit,
+        design.gain_db,
+        widen=(20 * math.log10(1 + u["gain_rel"]), 1.0),
     )
     clip = lim(
-        "clip_input_vrms",
-        "clipping threshold",
-        "V rms",
+        CLIP_INPUT.limit_key(),
+        CLIP_INPUT.label,
+        CLIP_INPUT.unit,
         design.thd_clip_input_vrms,
         widen=(0.0, 10 ** (u["clip_db"] / 20)),
     )
@@ -455,9 +460,9 @@ def _channel_limits(
         "swing_clip_input_vrms", "swing-limited clipping threshold", "V rms", design.clip_input_vrms
     )
     thd = lim(
-        "thd_percent",
-        "THD at nominal level",
-        "%",
+        THD.limit_key(),
+        THD.label,
+        THD.unit,
         design.thd_percent,
         one_sided=True,
         widen=(0.0, 1.0 + u["thd_rel"]),
@@ -465,10 +470,15 @@ def _channel_limits(
     spec = board.conditions.thd_limit_percent
     if spec is not None:  # the board's specification governs; the model's figure stays nominal
         thd = Limit(
-            "THD at nominal level (board specification)", "%", design.thd_percent, None, float(spec)
+            f"{THD.label} (board specification)", THD.unit, design.thd_percent, None, float(spec)
         )
-    supply = lim("supply_current_a", "supply current", "A", design.supply_current_a)
-    corner = lim("low_corner_hz", "low -3 dB corner", "Hz", design.low_corner_hz)
+    supply = lim(
+        SUPPLY_CURRENT.limit_key(),
+        SUPPLY_CURRENT.label,
+        SUPPLY_CURRENT.unit,
+        design.supply_current_a,
+    )
+    corner = lim(LOW_CORNER.limit_key(), LOW_CORNER.label, LOW_CORNER.unit, design.low_corner_hz)
     op_nominal = {}
     for s in design.stages:
         if s.vc_v is not None:
@@ -487,7 +497,8 @@ def _channel_limits(
         v_nom = op_nominal[key]
         assert v_nom is not None  # every BJT stage has all three voltages
         nom = float(v_nom)
-        op[key] = Limit(key, "V", nom, min(lo, nom) - u["bias_v"], max(hi, nom) + u["bias_v"])
+        unit = dc_point(key).unit
+        op[key] = Limit(key, unit, nom, min(lo, nom) - u["bias_v"], max(hi, nom) + u["bias_v"])
     pos = res.clip_positive[ok]
     stage_idx = res.clip_stage[ok]
     n_ok = max(int(ok.sum()), 1)

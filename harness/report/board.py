@@ -20,17 +20,12 @@ import numpy as np
 
 from harness import __version__
 from harness.errors import AnalysisError, ReportError, StoreError
+from harness.quantities import CLIP_INPUT, GAIN, THD, Quantity
 from harness.report import html as h
 from harness.report.plot import PALETTE, Band, Plot, Rule, Series, render_svg
 from harness.report.spectrum import spectrum_view, waveform_window
 from harness.store import MeasurementRow, RecordRow, ResultStore, RunRow, SweepPointRow
 
-#: Measurement names the plots look for (the sequencer's names first, then the model's
-#: limit names); a stored name matches when it equals one of these or starts with it
-#: followed by "_" or ".".
-GAIN_NAMES = ("gain", "gain_db")
-THD_NAMES = ("thd", "thd_percent")
-CLIP_NAMES = ("clip_input", "clip_input_vrms")
 #: Sweeps that are not against input level (drawn apart, against frequency).
 FREQUENCY_SWEEPS = ("frequency",)
 #: Raw-record labels: the nominal record is labelled "nominal" (a repeat to check settling
@@ -190,13 +185,9 @@ def diagnosis_section(diagnosis: Any) -> str:
 # --- finding things -------------------------------------------------------------------------
 
 
-def _matches(name: str, wanted: Sequence[str]) -> bool:
-    n = name.lower()
-    return any(n == w or n.startswith((w + "_", w + ".")) for w in wanted)
-
-
-def find_measurement(ms: Sequence[MeasurementRow], wanted: Sequence[str]) -> MeasurementRow | None:
-    return next((m for m in ms if _matches(m.name, wanted)), None)
+def find_measurement(ms: Sequence[MeasurementRow], wanted: Quantity) -> MeasurementRow | None:
+    """The channel's stored measurement of ``wanted`` (by its registry name), if any."""
+    return next((m for m in ms if m.name == wanted.name), None)
 
 
 def nominal_record(records: Sequence[RecordRow]) -> RecordRow | None:
@@ -311,9 +302,9 @@ def channel_plots(ch: ChannelData) -> list[Plot]:
     """The plots of a channel, in page order: gain and THD against level, spectrum,
     clipping-point waveform, and gain against frequency when a frequency sweep was run."""
     level_points = [p for p in ch.sweep if p.sweep not in FREQUENCY_SWEEPS]
-    gain = find_measurement(ch.measurements, GAIN_NAMES)
-    thd = find_measurement(ch.measurements, THD_NAMES)
-    clip = find_measurement(ch.measurements, CLIP_NAMES)
+    gain = find_measurement(ch.measurements, GAIN)
+    thd = find_measurement(ch.measurements, THD)
+    clip = find_measurement(ch.measurements, CLIP_INPUT)
     rules = _clip_rules(clip)
     no_sweep = "no sweep points stored for this channel"
     gain_bands: tuple[Band, ...] = ()
@@ -324,7 +315,7 @@ def channel_plots(ch: ChannelData) -> list[Plot]:
             f"{ch.name}: gain against input level",
             "input level (Vrms)",
             "gain (dB)",
-            series=_sweep_series(level_points, "gain_db", "gain"),
+            series=_sweep_series(level_points, GAIN.sweep_field(), GAIN.label),
             bands=gain_bands,
             rules=rules,
             x_log=True,
@@ -334,7 +325,7 @@ def channel_plots(ch: ChannelData) -> list[Plot]:
     thd_bands: tuple[Band, ...] = ()
     if thd is not None and thd.high is not None:
         thd_bands = (Band(thd.low, thd.high, "THD within limit"),)
-    thd_series = _sweep_series(level_points, "thd_percent", "THD", positive_only=True)
+    thd_series = _sweep_series(level_points, THD.sweep_field(), "THD", positive_only=True)
     thdn = _sweep_series(level_points, "thdn_percent", "THD+N", positive_only=True)
     thd_series += tuple(
         Series(s.x, s.y, s.label, style=5) for s in thdn if s.label.startswith("THD+N")
@@ -443,7 +434,7 @@ def _spectrum_plot(ch: ChannelData) -> Plot:
     thd_text = ""
     if sv.thd_percent is not None:
         thd_text = f"; raw record THD {h.num(sv.thd_percent)} % (scope's own harmonics included)"
-        thd = find_measurement(ch.measurements, THD_NAMES)
+        thd = find_measurement(ch.measurements, THD)
         if (
             thd is not None
             and thd.value is not None
@@ -521,7 +512,7 @@ def thd_record(m: MeasurementRow | None) -> dict:
 def thd_note(m: MeasurementRow) -> str:
     """What a THD value is: with the scope's own harmonics removed (and the raw record's
     value beside it) or as recorded.  Empty for other measurements."""
-    if m.name not in THD_NAMES:
+    if m.name != THD.name:
         return ""
     rec = thd_record(m)
     if not rec:

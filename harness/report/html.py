@@ -12,18 +12,10 @@ import math
 from collections.abc import Iterable, Sequence
 from html import escape
 
-#: decision text -> (css class, symbol).  Unknown decisions fall back to "neutral".
-_DECISION_STYLE: dict[str, tuple[str, str]] = {
-    "pass": ("ok", "✓"),
-    "conditional pass": ("warn", "✓?"),
-    "conditional fail": ("warn", "✗?"),
-    "fail": ("bad", "✗"),
-    "not resolvable": ("warn", "?"),
-    "info": ("neutral", "i"),
-}
+from harness.outcomes import CSS_COLOURS, UNKNOWN, look
 
 CSS = """
-:root { --ok:#1b7a4c; --bad:#b8410f; --warn:#9a6700; --ink:#1d1d1d; --rule:#c9c9c9; }
+:root { __TONES__ --ink:#1d1d1d; --rule:#c9c9c9; }
 * { box-sizing: border-box; }
 body { font-family: sans-serif; color: var(--ink); margin: 1.2rem auto; max-width: 1150px;
        padding: 0 1rem; line-height: 1.35; font-size: 14px; }
@@ -40,10 +32,11 @@ table.kv th { width: 13rem; }
 .mono { font-family: monospace; word-break: break-all; }
 .badge { display: inline-block; padding: .05rem .45rem; border-radius: .25rem;
          font-weight: bold; border: 2px solid currentColor; white-space: nowrap; }
-.badge.ok { color: var(--ok); background: #e5f4ec; }
-.badge.bad { color: var(--bad); background: #fbe9df; }
-.badge.warn { color: var(--warn); background: #fdf3d7; border-style: dashed; }
-.badge.neutral { color: #444; background: #f1f1f1; }
+.badge.tone-good { color: var(--good); background: #e5f4ec; }
+.badge.tone-bad { color: var(--bad); background: #fbe9df; }
+.badge.tone-doubt { color: var(--doubt); background: #fdf3d7; border-style: dashed; }
+.badge.tone-neutral { color: var(--neutral); background: #f1f1f1; }
+.badge.tone-unseen { color: var(--unseen); background: #f6e9f6; border-style: dotted; }
 .verdict { font-size: 1.6rem; padding: .2rem .8rem; }
 .plots { display: flex; flex-wrap: wrap; gap: .8rem; }
 .plots figure { margin: 0; }
@@ -62,7 +55,7 @@ footer { margin-top: 2rem; color: #555; font-size: .85rem; border-top: 1px solid
   .noprint { display: none; }
   a { color: inherit; text-decoration: none; }
 }
-"""
+""".replace("__TONES__", " ".join(f"--{tone}:{colour};" for tone, colour in CSS_COLOURS.items()))
 
 #: Marks the page as loaded and counts its plots, so a headless browser's DOM dump shows
 #: that the page rendered and its script ran without error.
@@ -95,14 +88,10 @@ def num(value: float | None, digits: int = 4) -> str:
 def badge(decision: str | None, *, big: bool = False) -> str:
     """A decision or verdict as symbol + word in a coloured frame."""
     if decision is None:
-        return '<span class="badge neutral">— no verdict</span>'
-    cls, sym = _DECISION_STYLE.get(decision.lower(), ("neutral", "•"))
-    if decision.upper() == "PASS":
-        cls, sym = "ok", "✓"
-    elif decision.upper() == "FAIL":
-        cls, sym = "bad", "✗"
+        return f'<span class="badge {UNKNOWN.css_class}">— no verdict</span>'
+    shown = look(decision)
     extra = " verdict" if big else ""
-    return f'<span class="badge {cls}{extra}">{sym} {escape(decision)}</span>'
+    return f'<span class="badge {shown.css_class}{extra}">{shown.symbol} {escape(decision)}</span>'
 
 
 def table(

@@ -24,6 +24,7 @@ import pandas as pd
 
 from harness import __version__
 from harness.errors import ReportError, ValueParseError
+from harness.outcomes import ALWAYS_ACCEPTED, look
 from harness.report import html as h
 from harness.report.plot import PALETTE, Bars, Plot, Rule, histogram, render_svg
 from harness.report.stats import (
@@ -225,7 +226,7 @@ def summarise(
                 finite,
                 capability(finite, low, high),
                 limit_sets,
-                int((~dec.isin(["pass", "info"])).sum()),
+                int((~dec.isin(ALWAYS_ACCEPTED)).sum()),
                 int(values.size - finite.size),
             )
         )
@@ -295,8 +296,10 @@ def _cpk_cell(cap: Capability) -> str:
     if cap.cpk is None:
         return "—"
     if cap.flagged:
-        return f'<span class="badge bad">✗ {_index(cap.cpk)} LOW</span>'
-    return f'<span class="badge ok">✓ {_index(cap.cpk)}</span>'
+        low = look("fail")
+        return f'<span class="badge {low.css_class}">{low.symbol} {_index(cap.cpk)} LOW</span>'
+    ok = look("pass")
+    return f'<span class="badge {ok.css_class}">{ok.symbol} {_index(cap.cpk)}</span>'
 
 
 def _cap_note(m: MeasurementSummary) -> str:

@@ -25,17 +25,9 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Literal
 
-Outcome = Literal["pass", "conditional pass", "conditional fail", "fail", "info", "not resolvable"]
-OUTCOMES: tuple[str, ...] = (
-    "pass",
-    "conditional pass",
-    "conditional fail",
-    "fail",
-    "info",
-    "not resolvable",
-)
+from harness.outcomes import ALWAYS_ACCEPTED, Outcome, Verdict
+
 #: Expansion factor of every U in stageproof (about 95 % coverage for a normal distribution).
 COVERAGE_K = 2.0
 
@@ -49,7 +41,7 @@ class DecisionPolicy:
     accept_not_resolvable: bool = False
 
     def accepts(self, outcome: str) -> bool:
-        if outcome in ("pass", "info"):
+        if outcome in ALWAYS_ACCEPTED:
             return True
         if outcome == "conditional pass":
             return self.accept_conditional_pass
@@ -119,9 +111,7 @@ def conformance_probability(
     return p_hi - p_lo
 
 
-def verdict(
-    outcomes: list[str] | tuple[str, ...], policy: DecisionPolicy = STRICT
-) -> Literal["PASS", "FAIL"]:
+def verdict(outcomes: list[str] | tuple[str, ...], policy: DecisionPolicy = STRICT) -> Verdict:
     """A channel (or board) passes only when the policy accepts every outcome."""
     return "PASS" if outcomes and all(policy.accepts(o) for o in outcomes) else "FAIL"
 

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
 from harness.errors import InstrumentError, RunAborted, StageproofError, StoreError, ValueParseError
+from harness.outcomes import LineResult
 from harness.run.progress import Progress
 from harness.run.runner import Prepared, ensure_limits, validate_serial
 from harness.run.safety import Terminated, unsafe_text
@@ -38,8 +39,6 @@ log = logging.getLogger("harness.run.line")
 
 #: Words that end the session when typed at the serial prompt (case-insensitive).
 QUIT_WORDS: frozenset[str] = frozenset({"quit", "exit"})
-
-Outcome = Literal["PASS", "FAIL", "ABORTED"]
 
 
 @dataclass(frozen=True)
@@ -64,7 +63,7 @@ class BoardOutcome:
     """One board tested in this session (aborted runs included)."""
 
     serial: str
-    outcome: Outcome
+    outcome: LineResult
     retest: int
     run_id: int | None
     reason: str | None = None

@@ -137,14 +137,12 @@ class PostgresStore(SQLStore):
             given = conninfo_to_dict(url)
         except psycopg.Error as exc:
             raise connect_error(exc, self.location) from None
-        params = {k: v for k, v in CONNECT_DEFAULTS.items() if k not in given}
+        self._params = {k: v for k, v in CONNECT_DEFAULTS.items() if k not in given}
         try:
-            self._conn = psycopg.connect(url, autocommit=True, **params)
+            self._conn = self._connect()
         except psycopg.Error as exc:
             raise connect_error(exc, self.location) from None
         try:
-            timeout_ms = int(self.busy_timeout_s * 1000)
-            self._conn.execute(f"SET lock_timeout = {timeout_ms:d}")
             if readonly:
                 self._conn.execute("SET default_transaction_read_only = on")
                 self._check_schema_readonly()
@@ -224,6 +222,15 @@ class PostgresStore(SQLStore):
             raise self._newer(version)
         self._version = version
 
+    def _connect(self) -> Any:
+        conn = self._pg.connect(self.url, autocommit=True, **self._params)
+        try:
+            conn.execute(f"SET lock_timeout = {int(self.busy_timeout_s * 1000):d}")
+        except BaseException:
+            conn.close()
+            raise
+        return conn
+
     # --- what SQLStore needs --------------------------------------------------------------
 
     def _q(self, sql: str) -> str:
@@ -291,6 +298,38 @@ class PostgresStore(SQLStore):
             return
         with suppress(self._pg.Error), self._lock:
             self._conn.execute("SELECT pg_advisory_unlock(%s, %s)", (LOCK_SPACE, int(held)))
+
+    def _reopen(self, exc: StoreError) -> bool:
+        """A connection the server or the network dropped (a server restart, a failover,
+        an idle-session kill) is opened again once, and the runs this station owns take
+        their liveness locks back.  A run another station marked aborted in the gap stays
+        aborted: the write that follows finds it not running and says so."""
+        old = self._conn
+        lost = isinstance(exc.__cause__, self._pg.OperationalError) and (
+            old is None or old.closed or getattr(old, "broken", False)
+        )
+        if not lost or self.readonly or old is None:
+            return False
+        log.warning("lost the connection to %s; opening a new one", self.location)
+        try:
+            conn = self._connect()
+        except self._pg.Error as err:
+            log.error("could not reconnect to %s: %s", self.location, err)
+            return False
+        try:
+            for run_id in sorted(self._mine):
+                # waits (up to lock_timeout) while another station's recovery holds it;
+                # the write that follows then finds the run as that recovery left it
+                conn.execute("SELECT pg_advisory_lock(%s, %s)", (LOCK_SPACE, run_id))
+        except self._pg.Error as err:
+            log.error("could not take the run locks back on %s: %s", self.location, err)
+            with suppress(self._pg.Error):
+                conn.close()
+            return False
+        with suppress(self._pg.Error):
+            old.close()
+        self._conn = conn
+        return True
 
     def _close_connection(self) -> None:
         with suppress(self._pg.Error):

@@ -19,13 +19,14 @@ from typing import Any
 
 import numpy as np
 
-from harness import __version__
+from harness import __version__, outcomes
 from harness.errors import StoreError, ValueParseError
+from harness.quantities import lookup
 
 #: Run states.  'running' is set by begin_run; finish_run or recover_aborted end it.
 STATUSES: tuple[str, ...] = ("running", "complete", "aborted")
 #: Verdicts of a finished run; None while running or when aborted before a verdict.
-VERDICTS: tuple[str, ...] = ("PASS", "FAIL")
+VERDICTS: tuple[str, ...] = outcomes.VERDICTS
 
 
 def utc_now() -> str:
@@ -239,6 +240,24 @@ class MeasurementRow:
         """The reason's first words, for a table cell: ``"over-range"``."""
         why = self.reason
         return why.split(":", 1)[0].strip() if why else None
+
+
+def check_measurement(m: MeasurementRow) -> None:
+    """Refuse a measurement the registry says is wrong, before it is written: a known
+    quantity in another unit (a gain stored in V would read as dB in every report) or a
+    decision that is not an outcome.  Rows read back are not checked, so an older store
+    stays readable."""
+    q = lookup(m.name)
+    if q is not None and m.unit != q.unit:
+        raise StoreError(
+            f"measurement {m.name!r} is stored in {q.unit or 'no unit'!s}, not {m.unit!r}",
+            hint=f"give {q.label} in {q.unit}" if q.unit else f"give {q.label} with no unit",
+        )
+    if m.decision not in outcomes.OUTCOMES:
+        raise StoreError(
+            f"measurement {m.name!r} has decision {m.decision!r}, which is not an outcome",
+            hint="use one of: " + ", ".join(outcomes.OUTCOMES),
+        )
 
 
 @dataclass(frozen=True)

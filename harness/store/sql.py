@@ -16,12 +16,12 @@ import json
 import logging
 import threading
 import uuid
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import AbstractContextManager
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from types import TracebackType
-from typing import Any, Self
+from typing import Any, Self, TypeVar
 
 import numpy as np
 
@@ -36,11 +36,13 @@ from harness.store.rows import (
     RunHeader,
     RunRow,
     SweepPointRow,
+    check_measurement,
     format_time,
     parse_when,
     utc_now,
 )
 
+_T = TypeVar("_T")
 log = logging.getLogger(__name__)
 log.addHandler(logging.NullHandler())
 
@@ -194,6 +196,11 @@ class SQLStore:
     def _let_go(self, held: Any) -> None:
         """Release what ``_owner_gone`` took."""
 
+    def _reopen(self, exc: StoreError) -> bool:
+        """After a failed write: was the connection lost, and is a new one now open and
+        holding this station's run locks again?  (A database file is never lost: no.)"""
+        return False
+
     # --- plumbing -------------------------------------------------------------------------
 
     def _live(self) -> Any:
@@ -211,6 +218,20 @@ class SQLStore:
 
     def _read(self, doing: str) -> AbstractContextManager[Any]:
         return _Guard(self, doing, write=False)
+
+    def _written(self, doing: str, body: Callable[[Any, bool], _T]) -> _T:
+        """``body(conn, again)`` in one write transaction.  When the connection was lost
+        and the backend opened a new one, the body runs once more with ``again`` true: the
+        lost transaction may have committed before the loss, so it first looks whether its
+        row is there, and a row is never stored twice nor lost."""
+        try:
+            with self._write(doing) as conn:
+                return body(conn, False)
+        except StoreError as exc:
+            if not self._reopen(exc):
+                raise
+        with self._write(doing) as conn:
+            return body(conn, True)
 
     def _touch(self, conn: Any, run_id: int, doing: str) -> str:
         """Refresh the run's heartbeat; refuse if the run is not running (or missing)."""
@@ -321,8 +342,7 @@ class SQLStore:
         )
 
     def heartbeat(self, run_id: int) -> None:
-        with self._write("heartbeat") as conn:
-            self._touch(conn, run_id, "heartbeat")
+        self._written("heartbeat", lambda conn, _again: self._touch(conn, run_id, "heartbeat"))
 
     def finish_run(
         self, run_id: int, status: str, verdict: str | None, reason: str | None = None
@@ -338,7 +358,14 @@ class SQLStore:
             )
         if reason is not None and not isinstance(reason, str):
             raise StoreError("reason must be text")
-        with self._write("finishing a run") as conn:
+
+        def finish(conn: Any, again: bool) -> None:
+            if again:
+                row = self._exec(
+                    conn, "SELECT status, verdict, reason FROM runs WHERE run_id = ?", (run_id,)
+                ).fetchone()
+                if row is not None and tuple(row) == (status, verdict, reason):
+                    return  # the lost transaction had committed
             now = self._touch(conn, run_id, "finishing the run")
             self._exec(
                 conn,
@@ -346,6 +373,8 @@ class SQLStore:
                 "WHERE run_id = ?",
                 (status, verdict, reason, now, int(run_id)),
             )
+
+        self._written("finishing a run", finish)
         self._release_run(int(run_id))
 
     def recover_aborted(self, *, stale_after_s: float | None = None) -> list[int]:
@@ -423,17 +452,23 @@ class SQLStore:
     ) -> None:
         """Insert one row of a running run's child table, refreshing its heartbeat."""
         marks = ", ".join("?" * (len(values) + 1))
-        with self._write(doing) as conn:
+        same = " AND ".join(f"{c.strip()} IS NOT DISTINCT FROM ?" for c in columns.split(","))
+        row = (int(run_id), *values)
+
+        def insert(conn: Any, again: bool) -> None:
             self._touch(conn, run_id, what)
-            self._exec(
-                conn,
-                f"INSERT INTO {table} (run_id, {columns}) VALUES ({marks})",
-                (int(run_id), *values),
-            )
+            if again:
+                sql = f"SELECT 1 FROM {table} WHERE run_id = ? AND {same}"
+                if self._exec(conn, sql, row).fetchone() is not None:
+                    return  # the lost transaction had committed
+            self._exec(conn, f"INSERT INTO {table} (run_id, {columns}) VALUES ({marks})", row)
+
+        self._written(doing, insert)
 
     def add_measurement(self, run_id: int, m: MeasurementRow) -> None:
         if not isinstance(m, MeasurementRow):
             raise StoreError(f"add_measurement needs a MeasurementRow, got {type(m).__name__}")
+        check_measurement(m)
         self._add_row(
             run_id,
             "storing a measurement",
@@ -510,12 +545,22 @@ class SQLStore:
                 a = a.astype(np.float32)
             a = np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("<"))
             packed.append((name, a.dtype.str, json.dumps(list(a.shape)), a.tobytes()))
-        with self._write("storing a raw record") as conn:
-            now = self._touch(conn, run_id, f"record {label!r}")
-            record_id = self._insert_record(
-                conn, (int(run_id), str(channel), str(label), rate, now), packed
-            )
-        return record_id
+        head = (int(run_id), str(channel), str(label), rate, utc_now())
+
+        def insert(conn: Any, again: bool) -> int:
+            self._touch(conn, run_id, f"record {label!r}")
+            if again:
+                found = self._exec(
+                    conn,
+                    "SELECT record_id FROM records WHERE run_id = ? AND channel = ? "
+                    "AND label = ? AND sample_rate_hz = ? AND captured_at = ?",
+                    head,
+                ).fetchone()
+                if found is not None:
+                    return int(found[0])  # the lost transaction had committed
+            return self._insert_record(conn, head, packed)
+
+        return self._written("storing a raw record", insert)
 
     def _insert_record(
         self, conn: Any, head: tuple[Any, ...], arrays: Sequence[tuple[Any, ...]]

@@ -18,6 +18,7 @@ from datetime import date, datetime, time, timedelta
 from typing import Any
 
 from harness.errors import ReportError, ValueParseError
+from harness.outcomes import ALWAYS_ACCEPTED, sql_list
 from harness.report.stats import CPK_THRESHOLD, Capability, Yield
 from harness.report.summary import _MEAS_COLUMNS, _RUN_COLUMNS, summarise
 from harness.store import RunFilter, SQLStore, parse_when, utc_now
@@ -220,7 +221,7 @@ def line_status(store: SQLStore, q: LineQuery, window: Window) -> dict[str, Any]
 def _failing(store: SQLStore, where: RunFilter) -> list[dict[str, Any]]:
     """Measurements of the window that did not pass, ranked by how often (one query)."""
     conds, params = where.where("r.")
-    conds.append("lower(m.decision) NOT IN ('pass', 'info')")
+    conds.append(f"lower(m.decision) NOT IN {sql_list(ALWAYS_ACCEPTED)}")
     sql = (
         "SELECT r.part_number, m.channel, m.name, count(*) AS failures, "
         "count(DISTINCT r.serial) AS boards FROM measurements AS m "

@@ -9,6 +9,7 @@ allows no inline script, so even a mistake here could not run injected code.
 from __future__ import annotations
 
 from harness import __version__
+from harness.outcomes import CSS_COLOURS, VERDICTS, look
 
 POLL_MS = 2000
 
@@ -75,11 +76,18 @@ form label { margin-right: 1em; } .note { color: #5a6272; }
 table { border-collapse: collapse; min-width: 40em; }
 th, td { border-bottom: 1px solid #d8dbe2; padding: .25em .7em; text-align: left; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; }
-.PASS { color: #17692d; font-weight: 600; } .FAIL { color: #b3261e; font-weight: 600; }
+__VERDICTS__
 .flag-low { color: #b3261e; font-weight: 600; } .flag-few { color: #5a6272; }
 body:not([data-window="range"]) .range { display: none; }
 tr.fresh { background: #fff6c8; }
-"""
+""".replace(
+    # a verdict cell is classed by its word (the script sets it); the colour is the tone's
+    "__VERDICTS__",
+    " ".join(
+        f".{word} {{ color: {CSS_COLOURS[look(word).tone]}; font-weight: 600; }}"
+        for word in VERDICTS
+    ),
+)
 
 SCRIPT = """'use strict';
 (function () {

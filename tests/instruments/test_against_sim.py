@@ -17,7 +17,8 @@ from harness.sim.bench import SimBench
 
 pytestmark = pytest.mark.wire
 
-BOARD = Path(__file__).resolve().parents[2] / "limits" / "demo-twin-preamp.toml"
+REPO = Path(__file__).resolve().parents[2]
+BOARD = REPO / "limits" / "demo-twin-preamp.toml"
 
 
 @pytest.fixture(scope="module")
@@ -102,3 +103,30 @@ def test_wrong_instrument_at_a_resource(sim, rm, tmp_path):
     with pytest.raises(IdentityMismatch) as ei:
         connect(load_station(bad), rm=rm)
     assert ei.value.role == "scope"
+
+
+def test_open_all_is_read_back_and_a_relay_left_closed_is_an_error(sim, rm, tmp_path):
+    """A switch profile whose ``open_all`` does nothing (``*WAI``, IEEE 488.2 §10.39:
+    wait-to-continue, changes no state) leaves relay 101 closed: the read-back with
+    ``query_closed`` finds it, and the driver says so instead of reporting the routes open.
+    A watched relay (a fixture route) is read back even when this session never closed it."""
+    from harness.errors import InstrumentError
+
+    bench, _station = sim
+    text = (REPO / "fixtures/instruments/scpi-switch.toml").read_text()
+    prof = tmp_path / "deaf-switch.toml"
+    prof.write_text(text.replace('open_all = "ROUTe:OPEN:ALL"', 'open_all = "*WAI"'))
+    st = tmp_path / "station-deaf.toml"
+    st.write_text(bench.station_text(profiles={"switch": str(prof)}))
+    with connect(load_station(st), rm=rm) as ins:
+        ins.switch.close([101])
+        with pytest.raises(InstrumentError, match=r"relay\(s\) 101 still read closed"):
+            ins.switch.open_all()
+        assert bench.switch.closed == {101}  # the truth: still closed
+        bench.switch.handle(b"ROUTe:OPEN (@101)")
+        ins.switch.open_all()  # nothing left closed: no error
+        bench.switch.handle(b"ROUTe:CLOSe (@205)")  # closed behind the session's back
+        ins.switch.watch([205])
+        with pytest.raises(InstrumentError, match="205"):
+            ins.switch.open_all()
+        bench.switch.handle(b"ROUTe:OPEN (@205)")

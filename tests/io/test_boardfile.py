@@ -67,6 +67,16 @@ BAD = [
     ("saturated at rest", board_text(rc="47k"), "channel.X.stage[0](gain).rc", "saturated"),
     ("cut off at rest", board_text(r1="680k", r2="1k"), "channel.X.stage[0](gain).r2", "cut off"),
     (
+        "bias parts on a DC-coupled follower",
+        board_text(
+            CE_STAGE.replace('  c_out = "10u"\n', "")
+            + '  [[channel.stage]]\n  kind = "emitter_follower"\n  name = "buf"\n'
+            '  transistor = "q"\n  re = "2k2"\n  r1 = "100k"\n  c_out = "10u"\n'
+        ),
+        "stage[1](buf).r1",
+        'r1 given on a DC-coupled follower (coupling defaults to "dc")',
+    ),
+    (
         "cannot drive its load",
         board_text(
             OPAMP_STAGE, negative='negative_v = "-15 0%"', load="10", nominal=0.1, r_f="20k"

@@ -37,11 +37,11 @@ def _header(serial: str, worker: int) -> object:
 
 
 def main(argv: list[str]) -> int:
-    from harness.instruments.bench import connect
     from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.station import load_station
     from harness.model import compute_limits
+    from harness.run.safety import safe_station
     from harness.run.sequence import RunOptions, run_board
     from harness.store import MeasurementRow, SweepPointRow, open_store
     from tests.reliability.rig import started_bench, write_rig
@@ -61,7 +61,7 @@ def main(argv: list[str]) -> int:
     fixture = load_fixture(files.fixture, board, scope_inputs=4)
     with started_bench(board, folder) as (_bench, station_file), open_store(db) as store:
         store.recover_aborted()
-        with connect(load_station(station_file)) as inst:
+        with safe_station(load_station(station_file)) as inst:
             for i in range(n_real):
                 serial = SHARED_SERIALS[i % len(SHARED_SERIALS)] if i % 2 else f"SN-W{worker}-R{i}"
                 res = run_board(

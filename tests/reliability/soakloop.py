@@ -3,7 +3,8 @@
 The simulated bench runs in a process of its own (``stageproof sim serve``), as instruments
 do on a real bench, so the memory measured is the harness's, not the simulator's caches.
 
-Until ``stageproof line`` exists: one process, instruments connected once, the run layer's
+One process, the station taken and connected once as every command does (the station lock,
+then each source in its safe state: harness.run.safety.safe_station), the run layer's
 per-board function (harness.run.sequence.run_board) called for board after board on one
 simulated bench and one results database, with RSS (psutil) and open file descriptors
 sampled every ``every`` boards.  Most boards get the short sequence (1000-point records,
@@ -88,11 +89,11 @@ def served_bench(board_file: Path, folder: Path, *, timeout_ms: int = 2000) -> I
 def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) -> SoakResult:
     import psutil
 
-    from harness.instruments.bench import connect
     from harness.io.board import load_board
     from harness.io.fixture import load_fixture
     from harness.io.station import load_station
     from harness.model import compute_limits
+    from harness.run.safety import safe_station
     from harness.run.sequence import RunOptions, run_board
     from harness.store import open_store
     from tests.reliability.rig import write_rig
@@ -111,7 +112,7 @@ def soak(folder: Path, boards: int, *, every: int = 10, full_every: int = 25) ->
         open_store(folder / "soak.db") as store,
     ):
         store.recover_aborted()
-        with connect(load_station(station_file)) as inst:
+        with safe_station(load_station(station_file)) as inst:
             for n in range(boards):
                 opts = full if n % full_every == full_every - 1 else short
                 r = run_board(inst, board, limits, fixture, f"SOAK-{n:05d}", store, options=opts)

@@ -137,3 +137,36 @@ def test_drifted_bias_resistor_lowers_threshold_on_one_side(board, limits, tmp_p
     side_row = measurement(res, "B", "clip_side")
     assert json.loads(side_row.detail_json)["side"] in ("positive", "negative")
     assert ends_off(log)
+
+
+def test_every_stored_measurement_is_a_registered_quantity(good, limits, good_folder):
+    """Each row of a whole run names a quantity of the registry (harness.quantities), in its
+    unit, with an outcome for its decision, and with the bounds of the limit the registry
+    says it is decided against: the reports and the diagnosis read rows by that registry."""
+    from harness.model.limits import Limit
+    from harness.outcomes import OUTCOMES
+    from harness.quantities import DC_PREFIX, lookup
+
+    res = good[0]
+    with open_store(good_folder / "r.db", readonly=True) as store:
+        rows = store.measurements(res.run_id)
+    assert {m.name for m in rows} >= {"gain", "thd", "phase", "clip_input", "condition"}
+    checked = 0
+    for m in rows:
+        q = lookup(m.name)
+        assert q is not None, m.name
+        assert m.unit == q.unit, m
+        assert m.decision in OUTCOMES, m
+        assert (m.channel == "") == q.board, m
+        if q.limit is None:
+            continue
+        if q.board:
+            lim = getattr(limits, q.limit)
+        elif m.name.startswith(DC_PREFIX):
+            lim = limits.channels[m.channel].operating_point[q.limit]
+        else:
+            lim = getattr(limits.channels[m.channel], q.limit)
+        if isinstance(lim, Limit) and m.value is not None and m.decision != "info":
+            assert (m.low, m.high) == pytest.approx((lim.low, lim.high)), m
+            checked += 1
+    assert checked >= 2 * len(limits.channels)
