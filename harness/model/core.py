@@ -948,8 +948,8 @@ def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
 #: The criterion search (see :func:`criterion_level`): the score's rise per dB of level when
 #: THD is proportional to level (ln 10 / 20); how far past the predicted root the steps that
 #: look for a bracket aim (a share of the step); their largest step; how many they may take;
-#: how far inside its bracket (a share of the tolerance) an Illinois step stays, so that a
-#: step beside the root closes the bracket; steps that did not halve it before a bisection.
+#: the shortest step (a share of the tolerance), so that a step beside the root closes the
+#: bracket; steps inside the bracket that did not halve it before a bisection.
 SEARCH_SLOPE = float(np.log(10.0) / 20.0)
 SEARCH_OVERSHOOT = 0.1
 SEARCH_MAX_STEP_DB = 6.0
