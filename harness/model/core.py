@@ -894,6 +894,7 @@ def harmonics(
     workers: int = 1,
     state: ChainState | None = None,
     input_fundamental: np.ndarray | None = None,
+    start_scale: np.ndarray | None = None,
 ) -> np.ndarray:
     """Harmonic amplitudes 0..k_max (volts peak; index 0 is the DC shift of a DC-coupled
     load, 0 behind C_out) of the channel output for a sine EMF of peak ``amp_vpk`` behind the
@@ -902,7 +903,9 @@ def harmonics(
 
     Solved in blocks of :data:`BLOCK_ROWS` samples; ``workers`` > 1 spreads the blocks over
     threads (numpy releases the GIL inside its loops).  ``state`` (full size, see
-    :meth:`LargeSignalChain.rest_state`) is the start and is replaced by the solution."""
+    :meth:`LargeSignalChain.rest_state`) is the start and is replaced by the solution;
+    ``start_scale`` (per sample) is the level's ratio to the one ``state`` was solved at,
+    to scale the start by (:func:`_scale_to`)."""
     _, basis = _cos_weights(n_points // 2, k_max)
     amp = np.asarray(amp_vpk, dtype=float)
     n = amp.shape[0]
@@ -910,8 +913,11 @@ def harmonics(
 
     def block(i0: int) -> None:
         sl = slice(i0, min(i0 + BLOCK_ROWS, n))
+        part = chain.take(sl)
         start = None if state is None else [s.take(sl) if s else None for s in state]
-        sol = chain_waveform(chain.take(sl), amp[sl], n_points, start)
+        if start is not None and start_scale is not None:
+            _scale_to(part, start, start_scale[sl])
+        sol = chain_waveform(part, amp[sl], n_points, start)
         out[sl] = np.abs(sol.out @ basis)
         if input_fundamental is not None:
             input_fundamental[sl] = np.abs(sol.inp @ basis[:, 1])
@@ -939,6 +945,73 @@ def thd_from_harmonics(h: np.ndarray) -> np.ndarray:
     return thd
 
 
+#: The criterion search (see :func:`criterion_level`): the score's rise per dB of level when
+#: THD is proportional to level (ln 10 / 20); how far past the predicted root the steps that
+#: look for a bracket aim (a share of the step); their largest step; how many they may take;
+#: the shortest step (a share of the tolerance), so that a step beside the root closes the
+#: bracket; steps inside the bracket that did not halve it before a bisection.
+SEARCH_SLOPE = float(np.log(10.0) / 20.0)
+SEARCH_OVERSHOOT = 0.1
+SEARCH_MAX_STEP_DB = 6.0
+SEARCH_WIDEN = 8
+SEARCH_GUARD = 0.4
+SEARCH_STALLS = 3
+
+
+@dataclass
+class SolvedLevel:
+    """The chain solved at an EMF peak per sample: the state, the output's harmonics (as
+    :func:`harmonics`) and the fundamental at the input connector."""
+
+    state: ChainState
+    emf_vpk: np.ndarray
+    harmonics: np.ndarray
+    input_vpk: np.ndarray
+
+
+def _scale_to(chain: LargeSignalChain, state: ChainState, k: np.ndarray) -> None:
+    """Newton's start for a level ``k`` times the one ``state`` was solved at (NaN: the rest
+    bias, left as it is): every junction voltage's and mean current's departure from rest
+    scaled by ``k`` (exact for small signals), a junction raised by at most 2 V_T beyond its
+    old value (its voltage grows with the log of its current: SPICE's limit).  Replaces the
+    state's arrays (never writes into them: they may be views of the caller's)."""
+    k = np.where(np.isfinite(k), k, 1.0)
+    kc = k[:, None]
+    for s, c in zip(state, chain.coef, strict=True):
+        if s is None:
+            continue
+        up = 2.0 * c["v_t"][:, None]
+        for name, rest in (("vbe", c["vbe0"][:, None]), ("vbc", c["vbc0"][:, None])):
+            old = getattr(s, name)
+            new = old - rest
+            new *= kc
+            new += rest
+            cap = np.maximum(old, rest)
+            cap += up
+            setattr(s, name, np.minimum(new, cap, out=new))
+        s.m_b = c["ib0"] + k * (s.m_b - c["ib0"])
+        s.m_c = c["ic0"] + k * (s.m_c - c["ic0"])
+
+
+def _interpolated_root(hx: np.ndarray, hf: np.ndarray) -> np.ndarray:
+    """Root estimate from the last three points ``(rows, 3)`` of each sample (the newest
+    last): inverse quadratic interpolation where the three scores differ, else the secant
+    through the newest two, else a step along :data:`SEARCH_SLOPE` (Brent, *Algorithms for
+    Minimization without Derivatives*, 1973, ch. 4, from memory)."""
+    x1, x2, x3 = hx[:, 0], hx[:, 1], hx[:, 2]
+    f1, f2, f3 = hf[:, 0], hf[:, 1], hf[:, 2]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        iqi = (
+            x1 * f2 * f3 / ((f1 - f2) * (f1 - f3))
+            + x2 * f1 * f3 / ((f2 - f1) * (f2 - f3))
+            + x3 * f1 * f2 / ((f3 - f1) * (f3 - f2))
+        )
+        sec = x3 - f3 * (x3 - x2) / (f3 - f2)
+    out = np.where(np.isfinite(sec), sec, x3 - f3 / SEARCH_SLOPE)
+    out = np.where(np.isfinite(iqi), iqi, out)
+    return np.asarray(out, dtype=float)
+
+
 def criterion_level(
     chain: LargeSignalChain,
     *,
@@ -953,6 +1026,7 @@ def criterion_level(
     workers: int = 1,
     tol_db: float = 0.0,
     emf_per_input: np.ndarray | float = 1.0,
+    start: SolvedLevel | None = None,
 ) -> np.ndarray:
     """Input peak level where the board's clipping criterion is met, for every sample at once.
 
@@ -961,28 +1035,35 @@ def criterion_level(
     input level off the solution, so the base current's drop on the source resistance counts.
 
     ``criterion`` "thd": THD reaches ``thd_percent``; "compression": the fundamental gain has
-    dropped ``compression_db`` below the small-signal ``gain``.  The search works on level in dB
-    around ``guess_vpk`` (capped just above the swing-limited threshold ``swing_vpk``): first
-    the bracket is widened where needed (only those samples are re-solved), then the iterations
-    alternate an Illinois (modified regula falsi) step on log THD against dB with a bisection
-    step, so the bracket at least halves every two iterations, even at the kink where hard
-    clipping begins; it stops early once every bracket is narrower than ``tol_db``.  Each
-    sample's periodic solution starts from its last one.  Samples that cannot be bracketed
-    come back NaN.
-    """
-    state = chain.rest_state(n_points)
+    dropped ``compression_db`` below the small-signal ``gain``.  The score (log THD over the
+    criterion, or the compression less its figure) rises with the level in dB.  Each sample
+    is searched on its own, Brent's way: from ``guess_vpk`` (capped just above the
+    swing-limited threshold ``swing_vpk``) it steps to the root interpolated from its last
+    points (:func:`_interpolated_root`), aiming past it until the root is bracketed; then
+    the steps stay inside the bracket, a step shorter than :data:`SEARCH_GUARD` of
+    ``tol_db`` is lengthened to that (so a step beside the root closes the bracket), and a
+    bisection follows :data:`SEARCH_STALLS` steps that did not halve the bracket.  A sample
+    stops once its bracket is narrower than ``tol_db`` (or after ``iterations`` steps inside
+    it); only the samples still searching are solved, each from its own last solution.  The
+    answer is the secant inside the final bracket; samples that cannot be bracketed within
+    :data:`SEARCH_WIDEN` steps come back NaN.
 
-    def g(level_db: np.ndarray, rows: np.ndarray | slice) -> tuple[np.ndarray, np.ndarray]:
-        """Criterion score (>= 0: met) and input level over EMF in dB at these EMF levels."""
-        amp = 10.0 ** (level_db / 20.0)
-        sub = [s.take(rows) if s else None for s in state]
-        v_in = np.empty(amp.shape[0])
-        h = harmonics(
-            chain.take(rows), amp, n_points, workers=workers, state=sub, input_fundamental=v_in
-        )
-        for s, new in zip(state, sub, strict=True):
-            if s is not None and new is not None:
-                s.put(rows, new)
+    ``start``: the chain solved at some level (the nominal level's solution, at the same
+    ``n_points``): the first point to interpolate from (and a bracket end), and where the
+    first solve starts instead of the rest bias.  Every solve starts from the sample's last
+    solution scaled to the new level (:func:`_scale_to`).
+    """
+    n = gain.shape[0]
+    if start is None:
+        state, amp_at = chain.rest_state(n_points), np.full(n, np.nan)
+    else:
+        state = [s.take(slice(None)).copy() if s else None for s in start.state]
+        amp_at = np.array(start.emf_vpk, dtype=float)
+
+    def score(
+        h: np.ndarray, v_in: np.ndarray, amp: np.ndarray, rows: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Criterion score (>= 0: met) and input level over EMF in dB from the harmonics."""
         with np.errstate(divide="ignore"):
             ratio_db = 20.0 * np.log10(np.maximum(v_in, 1e-300) / amp)
         if criterion == "compression":
@@ -991,51 +1072,99 @@ def criterion_level(
             return comp - compression_db, ratio_db
         return np.log(np.maximum(thd_from_harmonics(h), 1e-9)) - np.log(thd_percent), ratio_db
 
-    every = slice(None)
+    def g(level_db: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Criterion score and input level over EMF in dB at these EMF levels."""
+        amp = 10.0 ** (level_db / 20.0)
+        scale = amp / amp_at[rows]
+        amp_at[rows] = amp
+        # every sample: solve in place (views), else on copies of the rows put back after
+        pick: np.ndarray | slice = slice(None) if rows.size == n else rows
+        sub = [s.take(pick) if s else None for s in state]
+        v_in = np.empty(amp.shape[0])
+        h = harmonics(
+            chain.take(pick),
+            amp,
+            n_points,
+            workers=workers,
+            state=sub,
+            input_fundamental=v_in,
+            start_scale=scale,
+        )
+        if isinstance(pick, np.ndarray):
+            for s, new in zip(state, sub, strict=True):
+                if s is not None and new is not None:
+                    s.put(pick, new)
+        return score(h, v_in, amp, rows)
+
     to_emf = 20.0 * np.log10(np.broadcast_to(np.asarray(emf_per_input, dtype=float), gain.shape))
     ref = 20.0 * np.log10(np.maximum(swing_vpk, 1e-12)) + to_emf
-    with np.errstate(divide="ignore"):
-        start = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
-    a, b = start - 1.5, start + 1.5
-    fa, ra = g(a, every)
-    fb, rb = g(b, every)
-    for _ in range(6):  # widen: 3, 6, 12 ... dB steps where the bracket misses
-        lo_bad, hi_bad = np.flatnonzero(fa > 0), np.flatnonzero(fb < 0)
-        if lo_bad.size == 0 and hi_bad.size == 0:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        first = np.minimum(20.0 * np.log10(np.maximum(guess_vpk, 1e-12)) + to_emf, ref + 0.5)
+    first = np.where(np.isfinite(first), first, ref)
+    tol = max(tol_db, 1e-9)
+    guard = SEARCH_GUARD * tol
+    # the bracket [a, b], fa <= 0 < fb (an end not found yet: score -inf / +inf), and the
+    # last three points solved, the newest last
+    a, b = np.full(n, -np.inf), np.full(n, np.inf)
+    fa, fb = np.full(n, -np.inf), np.full(n, np.inf)
+    ra, rb = np.zeros(n), np.zeros(n)
+    hx, hf = np.full((n, 3), np.nan), np.full((n, 3), np.nan)
+    stalls = np.zeros(n, dtype=int)
+
+    def solve_at(rows: np.ndarray, x: np.ndarray) -> None:
+        f, r = g(x, rows)
+        hx[rows, :2], hf[rows, :2] = hx[rows, 1:], hf[rows, 1:]
+        hx[rows, 2], hf[rows, 2] = x, f
+        lo, hi = f <= 0, f > 0  # NaN scores close neither end
+        ia, ib = rows[lo], rows[hi]
+        a[ia], fa[ia], ra[ia] = x[lo], f[lo], r[lo]
+        b[ib], fb[ib], rb[ib] = x[hi], f[hi], r[hi]
+
+    every = np.arange(n)
+    if start is not None:  # a solved point to interpolate from, and maybe a bracket end
+        f_s, r_s = score(start.harmonics, start.input_vpk, start.emf_vpk, every)
+        x_s = 20.0 * np.log10(np.maximum(start.emf_vpk, 1e-300))
+        hx[:, 2], hf[:, 2] = x_s, f_s
+        lo, hi = f_s <= 0, f_s > 0
+        a[lo], fa[lo], ra[lo] = x_s[lo], f_s[lo], r_s[lo]
+        b[hi], fb[hi], rb[hi] = x_s[hi], f_s[hi], r_s[hi]
+    solve_at(every, first)
+    live = every[np.isfinite(hf[:, 2])]
+    widen, inside = np.zeros(n, dtype=int), np.zeros(n, dtype=int)
+    while live.size:
+        closed = np.isfinite(fa[live]) & np.isfinite(fb[live])
+        live = live[~closed | (b[live] - a[live] > tol)]
+        closed = np.isfinite(fa[live]) & np.isfinite(fb[live])
+        over = np.where(closed, inside[live] >= iterations, widen[live] >= SEARCH_WIDEN)
+        live = live[~over]
+        closed = closed[~over]
+        if live.size == 0:
             break
-        if lo_bad.size:
-            b[lo_bad], fb[lo_bad], rb[lo_bad] = a[lo_bad], fa[lo_bad], ra[lo_bad]
-            a[lo_bad] -= 6.0
-            fa[lo_bad], ra[lo_bad] = g(a[lo_bad], lo_bad)
-        if hi_bad.size:
-            a[hi_bad], fa[hi_bad], ra[hi_bad] = b[hi_bad], fb[hi_bad], rb[hi_bad]
-            b[hi_bad] += 6.0
-            fb[hi_bad], rb[hi_bad] = g(b[hi_bad], hi_bad)
-    side = np.zeros_like(a)  # Illinois: which end was kept last time (-1 a, +1 b)
-    for it in range(iterations):
-        if tol_db > 0 and np.nanmax(b - a) < tol_db:
-            break
-        if it % 2 == 0:
-            with np.errstate(divide="ignore", invalid="ignore"):
-                c = b - fb * (b - a) / (fb - fa)
-            c = np.where(np.isfinite(c) & (c > a) & (c < b), c, 0.5 * (a + b))
-        else:
-            c = 0.5 * (a + b)
-        fc, rc = g(c, every)
-        right = fc > 0  # root in [a, c]
-        fa_new = np.where(right, np.where(side == -1, 0.5 * fa, fa), fc)
-        fb_new = np.where(right, fc, np.where(side == 1, 0.5 * fb, fb))
-        ra, rb = np.where(right, ra, rc), np.where(right, rc, rb)
-        a, b = np.where(right, a, c), np.where(right, c, b)
-        fa, fb = fa_new, fb_new
-        side = np.where(right, -1.0, 1.0)
+        x3 = hx[live, 2]
+        step = _interpolated_root(hx[live], hf[live]) - x3
+        step = np.where(np.abs(step) < guard, np.copysign(guard, step), step)
+        # open bracket: aim past the root, towards the missing end, at most the largest step
+        need_up = ~np.isfinite(fb[live])
+        aim = step + np.copysign(SEARCH_OVERSHOOT * np.abs(step), step)
+        aim = np.where(need_up, np.maximum(aim, guard), np.minimum(aim, -guard))
+        aim = np.clip(aim, -SEARCH_MAX_STEP_DB, SEARCH_MAX_STEP_DB)
+        al, bl = a[live], b[live]
+        c = x3 + step
+        mid = 0.5 * (al + bl)
+        bisect = ~((c > al) & (c < bl)) | (stalls[live] >= SEARCH_STALLS)
+        c = np.where(closed, np.where(bisect, mid, c), x3 + aim)
+        width = bl - al
+        solve_at(live, c)
+        widen[live] += ~closed
+        inside[live] += closed
+        halved = (b[live] - a[live] <= 0.5 * width) | (closed & bisect)
+        stalls[live] = np.where(closed & ~halved, stalls[live] + 1, 0)
+    ok = np.isfinite(fa) & np.isfinite(fb)
     with np.errstate(divide="ignore", invalid="ignore"):
         c = b - fb * (b - a) / (fb - fa)
-    c = np.where(np.isfinite(c) & (c >= a) & (c <= b), c, 0.5 * (a + b))
-    bad = ~(fa <= 0) | ~(fb >= 0)
-    with np.errstate(divide="ignore", invalid="ignore"):
+        c = np.where(np.isfinite(c) & (c >= a) & (c <= b), c, 0.5 * (a + b))
         r = np.where(b > a, ra + (c - a) * (rb - ra) / (b - a), ra)
-    return np.where(bad, np.nan, 10.0 ** ((c + r) / 20.0))
+    return np.where(ok, 10.0 ** ((c + r) / 20.0), np.nan)
 
 
 # --- the whole channel -------------------------------------------------------------------------
@@ -1129,9 +1258,18 @@ def evaluate_channel(
     chain = LargeSignalChain.from_arrays(res, channel, p)
     # the generator's EMF that puts a small signal of 1 V on the input connector
     emf_per_input = 1.0 + _b(p["source_ohm"], n) / res.input_ohm
+    nominal: SolvedLevel | None = None
     if thd_points:
-        h = harmonics(chain, nominal_vpk * emf_per_input, thd_points, workers=workers)
+        # the search starts from this solution where it runs at the same resolution (kept
+        # only then: a full-size state is memory the Monte Carlo's estimate counts)
+        keep = search_points == thd_points
+        state = chain.rest_state(thd_points) if keep else None
+        emf = nominal_vpk * emf_per_input
+        v_in = np.empty(n)
+        h = harmonics(chain, emf, thd_points, workers=workers, state=state, input_fundamental=v_in)
         res.thd_percent = thd_from_harmonics(h)
+        if state is not None:
+            nominal = SolvedLevel(state, emf, h, v_in)
     if search_points:
         c = board.conditions
         if c.clip_criterion == "thd" and res.thd_percent is not None:
@@ -1153,5 +1291,6 @@ def evaluate_channel(
             workers=workers,
             tol_db=search_tol_db,
             emf_per_input=emf_per_input,
+            start=nominal,
         )
     return res

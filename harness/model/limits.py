@@ -41,7 +41,8 @@ from harness.model.params import (
 )
 from harness.quantities import CLIP_INPUT, GAIN, LOW_CORNER, SUPPLY_CURRENT, THD, dc_point
 
-#: Large-signal resolution in the Monte Carlo (points per period; iterations of the search).
+#: Large-signal resolution in the Monte Carlo (points per period; the most interpolation steps
+#: of the criterion search inside its bracket; the width it closes the bracket to).
 #: 32 points resolve harmonics 2..10 of the soft BJT nonlinearity exactly and place the 1 % THD
 #: point of a hard clipper within 0.01 dB of the 256-point nominal solution (see tests).
 MC_THD_POINTS = 32
@@ -49,8 +50,9 @@ MC_SEARCH_POINTS = 32
 MC_SEARCH_ITERATIONS = 10
 MC_SEARCH_TOL_DB = 0.02
 #: Boards of the Monte Carlo whose THD-criterion clipping threshold is searched.  The search
-#: solves the periodic large-signal chain some 15 times per board (about 0.4 ms a board on
-#: these 2-core machines, against 0.05 ms for everything else), so it runs on the first
+#: solves the periodic large-signal chain about 5 times per board (some 35 us a board on
+#: these 2-core machines, against 9 us for everything else: searched on all 20,000 boards
+#: the demo twin preamp's limits take about 3 s instead of under 1), so it runs on the first
 #: ``MC_SEARCH_SAMPLES`` draws only: they are independent draws of the same distributions,
 #: an unbiased subsample whose quantiles carry a sampling error well inside the model's own
 #: 0.1 dB uncertainty that is added to the band anyway.  Stated in the provenance.
@@ -559,11 +561,12 @@ def _channel_limits(
 #: longest channel (the channels are evaluated one after the other).  Measured with
 #: tracemalloc on the demo boards (benchmarks/bench_memory.py): 817 B per board for
 #: one-stage channels, 1267 B for two-stage ones at 80,000 boards; the figures here carry a
-#: margin of about a third, and a fixed part for the worst-case corners and the nominal
-#: design (2.1 kB per board at 5,000 boards).
+#: margin of about a third, and a fixed part for the worst-case corners, the nominal design
+#: and the criterion search on its ``MC_SEARCH_SAMPLES`` boards (2.7 kB per board measured at
+#: 20,000 two-stage boards, where 16 MiB fell short).
 MC_BYTES_PER_BOARD = 500
 MC_BYTES_PER_BOARD_STAGE = 600
-MC_BYTES_FIXED = 16 << 20
+MC_BYTES_FIXED = 20 << 20
 
 
 def limits_memory_bytes(board: Board, samples: int) -> int:

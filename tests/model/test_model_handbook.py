@@ -125,12 +125,47 @@ def test_exponential_stage_harmonics_are_bessel_ratios(tmp_path, x) -> None:
     assert math.sqrt(float(np.sum(h[2:] ** 2))) / h[1] == pytest.approx(thd, rel=1e-6)
 
 
+def _stage_rows(col, rows: int, m: int, vbe: float, vbc: float):
+    """The stage coefficients as ``(rows, 1)`` columns and a flat start over ``m + 1``
+    points (junction voltages, and mean currents of 5 uA base and 1 mA collector)."""
+    from harness.model.periodic import PeriodicState
+
+    c = {k: np.full((rows, 1), v) for k, v in col.items()}
+    start = PeriodicState(
+        np.full((rows, m + 1), vbe),
+        np.full((rows, m + 1), vbc),
+        np.full(rows, 5e-6),
+        np.full(rows, 1e-3),
+    )
+    return c, start
+
+
+def _periodic_residuals(state, drive, col, w) -> tuple[float, float, float, float]:
+    """Largest residuals of the periodic stage's equations at ``state``: the base-emitter and
+    base-collector loops (V) and the two mean currents (A), from the Ebers-Moll transport
+    form (equations in harness.model.periodic's docstring) recomputed here with numpy."""
+    vbe, vbc, mb, mc = state.vbe, state.vbc, state.m_b[:, None], state.m_c[:, None]
+    i_s, v_t, b_r = col["is_a"], col["v_t"], col["beta_r"]
+    icc, iec = i_s * np.expm1(vbe / v_t), i_s * np.expm1(vbc / v_t)
+    ic = (icc - iec) * (1 - vbc * col["inv_vaf"]) - iec / b_r
+    ib = icc / col["beta_f"] + iec / b_r
+    vb = col["v_th"] - (col["r_th"] - col["r_b"]) * mb + drive - col["r_b"] * ib
+    ve = col["k_e"] * (mb + mc) + col["r_e"] * (ib + ic)
+    vc = col["v_cc"] - (col["r_cdc"] - col["r_cac"]) * mc - col["r_cac"] * ic
+    return (
+        float(np.max(np.abs(vb - ve - vbe))),
+        float(np.max(np.abs(vb - vc - vbc))),
+        float(np.max(np.abs(ib @ w - mb[:, 0]))),
+        float(np.max(np.abs(ic @ w - mc[:, 0]))),
+    )
+
+
 def test_newton_solvers_converge() -> None:
     """The implicit junction equations are solved to rounding level: the periodic Ebers-Moll
     stage (harness.model.periodic, equations in its docstring, Ebers & Moll, Proc. IRE 1954)
     from rest into deep saturation, and the bias loop; residuals recomputed here with numpy."""
     from harness.model.core import _cos_weights
-    from harness.model.periodic import PeriodicState, solve_periodic
+    from harness.model.periodic import solve_periodic
 
     m = 16
     cos_t, basis = _cos_weights(m, 0)
@@ -152,26 +187,12 @@ def test_newton_solvers_converge() -> None:
         "r_cdc": 4.7e3,
         "r_cac": 3e3,
     }
-    c = {k: np.full((rows, 1), v) for k, v in col.items()}
-    start = PeriodicState(
-        np.full((rows, m + 1), 0.6),
-        np.full((rows, m + 1), -4.0),
-        np.full(rows, 5e-6),
-        np.full(rows, 1e-3),
-    )
+    c, start = _stage_rows(col, rows, m, 0.6, -4.0)
     sol = solve_periodic(drive, c, w, start)
-    vbe, vbc, mb, mc = sol.state.vbe, sol.state.vbc, sol.state.m_b[:, None], sol.state.m_c[:, None]
-    icc, iec = 1e-14 * np.expm1(vbe / V_T), 1e-14 * np.expm1(vbc / V_T)
-    ic = (icc - iec) * (1 - vbc / 80.0) - iec / 3.0
-    ib = icc / 200.0 + iec / 3.0
-    vb = 2.0 - (8e3 - 6e3) * mb + drive - 6e3 * ib
-    ve = 900.0 * (mb + mc) + 100.0 * (ib + ic)
-    vc = 12.0 - (4.7e3 - 3e3) * mc - 3e3 * ic
-    assert np.max(np.abs(vb - ve - vbe)) < 1e-9
-    assert np.max(np.abs(vb - vc - vbc)) < 1e-9
-    assert np.max(np.abs(ib @ w - mb[:, 0])) < 1e-15
-    assert np.max(np.abs(ic @ w - mc[:, 0])) < 1e-12
-    assert np.max(vbc[3]) > 0.4  # the heaviest drive did saturate the collector junction
+    be, bc, mean_b, mean_c = _periodic_residuals(sol.state, drive, col, w)
+    assert be < 1e-9 and bc < 1e-9
+    assert mean_b < 1e-15 and mean_c < 1e-12
+    assert np.max(sol.state.vbc[3]) > 0.4  # the heaviest drive did saturate the collector
     v_src = np.array([0.2, 0.8, 2.0, 12.0])
     k = np.array([1e3, 1e4, 1.5e3, 1e5])
     v = solve_junction(v_src, k, np.full(4, 1e-14), np.full(4, V_T))
@@ -183,3 +204,45 @@ def test_board_text_helper_roundtrip(tmp_path) -> None:
     """The test helper writes a board the loader accepts (guards the other tests' set-up)."""
     board = load_board(write_board(tmp_path, board_text()))
     assert board.channel("X").stages[0].rc.nominal == 4700
+
+
+@pytest.mark.parametrize("inv_vaf", [1 / 80.0, 0.0])
+def test_periodic_newton_stops_within_its_tolerance(inv_vaf: float) -> None:
+    """The periodic solve takes a row as converged once Newton's quadratic error bound on
+    its last step is below tol_v; carried on to rounding level (the slower exact path), the
+    junction voltages move less than tol_v, with and without the Early effect (the second
+    uses the Jacobian's product form), and the loops' residuals (Ebers & Moll, Proc. IRE
+    1954, recomputed here) vanish."""
+    from harness.model.core import _cos_weights
+    from harness.model.periodic import solve_periodic
+
+    m = 16
+    cos_t, basis = _cos_weights(m, 0)
+    w = basis[:, 0]
+    levels = np.array([0.0, 0.01, 0.05, 0.2, 0.5, 1.0, 3.0])
+    rows = levels.size
+    drive = levels[:, None] * cos_t[None, :]
+    col = {
+        "is_a": 2e-14,
+        "beta_f": 150.0,
+        "beta_r": 4.0,
+        "inv_vaf": inv_vaf,
+        "v_t": V_T,
+        "v_th": 2.2,
+        "r_th": 9e3,
+        "r_b": 5e3,
+        "k_e": 1e3,
+        "r_e": 200.0,
+        "v_cc": 15.0,
+        "r_cdc": 6.8e3,
+        "r_cac": 4e3,
+    }
+    c, start = _stage_rows(col, rows, m, 0.62, -5.0)
+    tol = 1e-10
+    sol = solve_periodic(drive, c, w, start, tol_v=tol)
+    exact = solve_periodic(drive, c, w, sol.state, tol_v=1e-24, max_iterations=4)
+    assert np.max(np.abs(sol.state.vbe - exact.state.vbe)) < tol
+    assert np.max(np.abs(sol.state.vbc - exact.state.vbc)) < tol
+    be, bc, _, _ = _periodic_residuals(sol.state, drive, col, w)
+    assert be < 1e-9 and bc < 1e-9
+    assert np.max(sol.state.vbc[-1]) > 0.4  # the heaviest drive saturates the collector

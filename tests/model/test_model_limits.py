@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,11 +15,17 @@ from scipy.optimize import brentq
 from harness.cli.main import main
 from harness.io.board import load_board
 from harness.model import compute_limits, design_channel
-from harness.model.core import evaluate_channel
+from harness.model.core import (
+    LargeSignalChain,
+    evaluate_channel,
+    harmonics,
+    thd_from_harmonics,
+)
 from harness.model.design import to_design
 from harness.model.limits import (
     MC_SEARCH_ITERATIONS,
     MC_SEARCH_POINTS,
+    MC_SEARCH_TOL_DB,
     MC_THD_POINTS,
     MODEL_UNCERTAINTY,
 )
@@ -321,3 +328,68 @@ def test_threshold_band_from_the_search_subsample_matches_the_full_search(monkey
             assert abs(20 * math.log10(a / b)) < 0.1, (name, a, b)
         assert s.gain_db == ch.gain_db and s.thd_percent == ch.thd_percent
         assert s.swing_clip_input_vrms == ch.swing_clip_input_vrms
+
+
+def _plain_bisection(board, ch, p, n_points: int, tol_db: float = 1e-5) -> np.ndarray:
+    """The criterion level the slow, plain way: the chain solved from rest at every level of
+    a 0.25 dB grid (-12..+6 dB about the swing-limited threshold), the first grid step
+    where the criterion is met, then bisection to ``tol_db``; the input fundamental there."""
+    res = evaluate_channel(board, ch, p, thd_points=None, search_points=None)
+    chain = LargeSignalChain.from_arrays(res, ch, p)
+    cond = board.conditions
+    emf_per_input = 1.0 + p["source_ohm"] / res.input_ohm
+
+    def score(level_db: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        amp = 10.0 ** (level_db / 20.0)
+        v_in = np.empty(res.n)
+        h = harmonics(chain, amp, n_points, input_fundamental=v_in)
+        if cond.clip_criterion == "compression":
+            comp = 20.0 * np.log10(np.abs(res.gain_midband) * v_in / h[:, 1])
+            return comp - cond.clip_compression_db, v_in
+        return thd_from_harmonics(h) - cond.clip_thd_percent, v_in
+
+    ref = 20.0 * np.log10(res.clip_input_vpk * emf_per_input)
+    grid = np.arange(-12.0, 6.001, 0.25)
+    f = np.array([score(ref + g)[0] for g in grid])
+    first = np.argmax(f >= 0, axis=0)
+    cols = np.arange(res.n)
+    assert np.all(first > 0) and np.all(f[first, cols] >= 0)
+    lo, hi = ref + grid[first - 1], ref + grid[first]
+    while np.max(hi - lo) > tol_db:
+        mid = 0.5 * (lo + hi)
+        below = score(mid)[0] < 0
+        lo, hi = np.where(below, mid, lo), np.where(below, hi, mid)
+    return score(0.5 * (lo + hi))[1]
+
+
+@pytest.mark.parametrize(
+    "path, criterion",
+    [(TWIN, "thd"), (TWIN, "compression"), ("limits/demo-audio-ce.toml", "thd"), (OPAMP, "thd")],
+)
+def test_criterion_search_matches_a_plain_bisection(tmp_path, path, criterion) -> None:
+    """The Monte Carlo's criterion search (per-board interpolation steps inside a guarded
+    bracket, warm starts from the nominal level) lands within its tolerance of the slow exact
+    path it replaced: a dense level grid solved from rest and plain bisection, on the same
+    draws (CE into follower, a CE stage and op-amp stages clipping hard, and the compression
+    criterion)."""
+    text = Path(path).read_text(encoding="utf-8")
+    if criterion == "compression":
+        text = text.replace('clip_criterion = "thd"', 'clip_criterion = "compression"')
+        assert 'clip_criterion = "compression"' in text
+    board = load_board(write_board(tmp_path, text))
+    for ch in board.channels[:1]:
+        p = sample_arrays(channel_parameters(board, ch), np.random.default_rng(7), 24)
+        fast = evaluate_channel(
+            board,
+            ch,
+            p,
+            thd_points=MC_THD_POINTS,
+            search_points=MC_SEARCH_POINTS,
+            search_iterations=MC_SEARCH_ITERATIONS,
+            search_tol_db=MC_SEARCH_TOL_DB,
+        ).thd_clip_input_vpk
+        slow = _plain_bisection(board, ch, p, MC_SEARCH_POINTS)
+        assert np.max(np.abs(20.0 * np.log10(fast / slow))) < MC_SEARCH_TOL_DB
+        nominal = design_channel(board, ch.name).thd_clip_input_vrms * math.sqrt(2.0)
+        slow1 = _plain_bisection(board, ch, nominal_arrays(channel_parameters(board, ch)), 256)
+        assert abs(20.0 * math.log10(nominal / float(slow1[0]))) < 1e-3
