@@ -32,6 +32,8 @@ from harness.measure.coherent import CoherentPlan, plan_coherent_within
 from harness.model.board import Board
 from harness.model.design import check_settle_time
 from harness.model.limits import BoardLimits, Limit
+from harness.outcomes import Outcome
+from harness.quantities import Quantity
 from harness.run.progress import Progress
 from harness.run.roles import GeneratorRole, InstrumentSet, ScopeRole, SupplyRole, SwitchRole
 from harness.run.roles import recoveries as station_recoveries
@@ -287,13 +289,12 @@ class RunLog:
     def row(
         self,
         channel: str,
-        name: str,
+        q: Quantity,
         value: float | None,
-        unit: str,
         low: float | None,
         high: float | None,
         uncertainty: float | None,
-        decision: str,
+        decision: Outcome,
         step: str,
         detail: Detail | None = None,
         reason: str | None = None,
@@ -312,9 +313,9 @@ class RunLog:
             detail = {**(detail or {}), "reason": reason}
         row = MeasurementRow(
             channel=channel,
-            name=name,
+            name=q.name,
             value=value,
-            unit=unit,
+            unit=q.unit,
             low=low,
             high=high,
             uncertainty=uncertainty,

@@ -47,6 +47,16 @@ from harness.measure.coherent import CoherentPlan
 from harness.measure.floor import FLOOR_MARGIN
 from harness.model.board import Board
 from harness.model.limits import BoardLimits, Limit
+from harness.outcomes import Outcome
+from harness.quantities import (
+    CLIP_INPUT,
+    GAIN,
+    LOW_CORNER,
+    MIDBAND_GAIN,
+    SUPPLY_CURRENT,
+    THD,
+    Quantity,
+)
 from harness.run.bench_ops import Detail, plan_record
 from harness.run.progress import NullProgress, Progress
 from harness.run.roles import InstrumentSet
@@ -209,23 +219,21 @@ class CharacterisationSteps:
     def _row(
         self,
         ch: str,
-        name: str,
+        q: Quantity,
         value: float | None,
-        unit: str,
         limit: Limit | None,
         detail: Detail | None = None,
     ) -> MeasurementRow:
         low = None if limit is None or limit.low is None else float(limit.low)
         high = None if limit is None or limit.high is None else float(limit.high)
+        decision: Outcome
         if limit is None or (low is None and high is None):
             decision = "info"
         elif value is None or not math.isfinite(value):
             decision = "fail"
         else:
             decision = "pass" if limit.contains(value) else "fail"
-        return self.ctx.log.row(
-            ch, name, value, unit, low, high, None, decision, self.ctx.step, detail
-        )
+        return self.ctx.log.row(ch, q, value, low, high, None, decision, self.ctx.step, detail)
 
     def _point(
         self,
@@ -457,17 +465,15 @@ class CharacterisationSteps:
                 p = at_nom[0]
                 self._row(
                     name,
-                    "gain",
+                    GAIN,
                     p.gain_db,
-                    "dB",
                     lim.gain_db,
                     {"level_vrms": p.commanded_vrms, "frequency_hz": p.frequency_hz},
                 )
                 self._row(
                     name,
-                    "thd",
+                    THD,
                     p.thd_percent,
-                    "%",
                     lim.thd_percent,
                     {"level_vrms": p.commanded_vrms},
                 )
@@ -492,11 +498,9 @@ class CharacterisationSteps:
                     "stopped": ch.stopped_because,
                 }
                 if th.bracketed and th.level_vrms is not None:
-                    self._row(
-                        name, "clip_input", th.level_vrms, "V rms", lim.clip_input_vrms, detail
-                    )
+                    self._row(name, CLIP_INPUT, th.level_vrms, lim.clip_input_vrms, detail)
                 else:
-                    self._row(name, "clip_input", None, "V rms", None, detail)
+                    self._row(name, CLIP_INPUT, None, None, detail)
             detail = {
                 "model_nominal_hz": float(lim.low_corner_hz.nominal),
                 "bracket_hz": ch.corner_bracket_hz,
@@ -504,12 +508,11 @@ class CharacterisationSteps:
                 "method": "-3 dB against the mid-band gain, dB interpolated linearly in "
                 "log f between the bracketing points after bisection",
             }
-            self._row(name, "low_corner", ch.measured_corner_hz, "Hz", lim.low_corner_hz, detail)
+            self._row(name, LOW_CORNER, ch.measured_corner_hz, lim.low_corner_hz, detail)
             self._row(
                 name,
-                "midband_gain",
+                MIDBAND_GAIN,
                 ch.reference_gain_db,
-                "dB",
                 None,
                 {
                     "window_hz": [
@@ -528,9 +531,8 @@ class CharacterisationSteps:
         reading = power_up(self.ctx, supply, self.ctx.settle_s)
         self._row(
             "",
-            "supply_current",
+            SUPPLY_CURRENT,
             reading.current_a,
-            "A",
             self.ctx.limits.supply_current_a,
             {"tripped": reading.tripped},
         )

@@ -51,6 +51,19 @@ from harness.model.board import Board
 from harness.model.design import MAX_SETTLE_S, check_settle_time
 from harness.model.limits import BoardLimits, ChannelLimits, Limit
 from harness.model.settling import SETTLE_TAUS
+from harness.outcomes import ALWAYS_ACCEPTED, Outcome
+from harness.quantities import (
+    CLIP_INPUT,
+    CLIP_SIDE,
+    CONDITION,
+    GAIN,
+    PHASE,
+    SUPPLY_CURRENT,
+    THD,
+    Quantity,
+    dc_point,
+    gain_at,
+)
 from harness.run.bench_ops import (
     RANGE_FILL,
     Detail,
@@ -163,7 +176,7 @@ class RunResult:
         return max(self.elapsed_s - self.instrument_s - self.waiting_s, 0.0)
 
     def failing(self) -> list[MeasurementRow]:
-        return [m for m in self.measurements if m.decision not in ("pass", "info")]
+        return [m for m in self.measurements if m.decision not in ALWAYS_ACCEPTED]
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -332,45 +345,44 @@ class ProductionSteps:
     def _row(
         self,
         channel: str,
-        name: str,
+        q: Quantity,
         value: float | None,
-        unit: str,
         low: float | None,
         high: float | None,
         u: float | None,
-        decision: str,
+        decision: Outcome,
         detail: Detail | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
         return self.ctx.log.row(
-            channel, name, value, unit, low, high, u, decision, self.ctx.step, detail, reason
+            channel, q, value, low, high, u, decision, self.ctx.step, detail, reason
         )
 
     def _decide_row(
         self,
         channel: str,
-        name: str,
+        q: Quantity,
         value: float | None,
-        unit: str,
         limit: Limit | None,
         u: float,
         detail: Detail | None = None,
         reason: str | None = None,
     ) -> MeasurementRow:
         low, high = limit_get(limit, "low"), limit_get(limit, "high")
+        decision: Outcome
         if value is None or not math.isfinite(value):
             decision = "fail" if (low is not None or high is not None) else "info"
             value = None
         else:
             decision = decide(value, low, high, u)
-        if self._unresolvable(channel, name):
+        if self._unresolvable(channel, q):
             decision = "not resolvable"
-        return self._row(channel, name, value, unit, low, high, u, decision, detail, reason)
+        return self._row(channel, q, value, low, high, u, decision, detail, reason)
 
-    def _unresolvable(self, channel: str, name: str) -> bool:
+    def _unresolvable(self, channel: str, q: Quantity) -> bool:
         return any(
             r.channel == channel
-            and r.name == name
+            and r.name == q.name
             and r.decision == "not resolvable"
             and r.step == "precheck"
             for r in self.ctx.log.rows
@@ -494,9 +506,8 @@ class ProductionSteps:
             if high is not None and high < resolvable_at:
                 self._row(
                     c.board_channel,
-                    "thd",
+                    THD,
                     None,
-                    "%",
                     None,
                     high,
                     None,
@@ -522,9 +533,8 @@ class ProductionSteps:
             if low is not None and low > self.ctx.board.conditions.safe_input_vrms:
                 self._row(
                     c.board_channel,
-                    "clip_input",
+                    CLIP_INPUT,
                     None,
-                    "V rms",
                     low,
                     limit_get(clim, "high"),
                     None,
@@ -547,9 +557,8 @@ class ProductionSteps:
         u = 2 * (0.005 * abs(current) + 20e-6)  # supply read-back: common practice figure
         self._decide_row(
             "",
-            "supply_current",
+            SUPPLY_CURRENT,
             current,
-            "A",
             lim,
             u,
             {"tripped": tripped, "current_limit_a": supply.current_limit_a},
@@ -587,9 +596,8 @@ class ProductionSteps:
                 self.ctx.progress.note(f"DMM over-range at {tp.name} ({tp.key})")
                 self._row(
                     tp.board_channel,
-                    f"dc.{tp.key}",
+                    dc_point(tp.key),
                     None,
-                    "V",
                     limit_get(lim, "low"),
                     limit_get(lim, "high"),
                     None,
@@ -598,7 +606,7 @@ class ProductionSteps:
                 )
                 continue
             u = 2 * (0.0005 * abs(v) + 0.5e-3)  # DMM read-back: common practice figure
-            self._decide_row(tp.board_channel, f"dc.{tp.key}", v, "V", lim, u, detail)
+            self._decide_row(tp.board_channel, dc_point(tp.key), v, lim, u, detail)
 
     def nominal(self, group: list[_ChannelState]) -> None:
         self.ctx.step = "nominal"
@@ -625,9 +633,8 @@ class ProductionSteps:
             st.condition = cond
             self._row(
                 ch,
-                "condition",
+                CONDITION,
                 None,
-                "",
                 None,
                 None,
                 None,
@@ -642,23 +649,19 @@ class ProductionSteps:
             st.nominal = a
             detail = {"record": a.to_dict(), "level_vrms": level}
             if a.gain_db is None:
-                for name, unit, limit in (
-                    ("gain", "dB", lim.gain_db),
-                    ("thd", "%", lim.thd_percent),
-                ):
-                    self._decide_row(ch, name, None, unit, limit, 0.0, detail, _why(a))
+                for q, limit in ((GAIN, lim.gain_db), (THD, lim.thd_percent)):
+                    self._decide_row(ch, q, None, limit, 0.0, detail, _why(a))
                 continue
             u_in = amplitude_rel_u(_resid_ratio(a, "in"), a.n_samples)
             u_out = amplitude_rel_u((a.thdn_percent or 0.0) / 100, a.n_samples)
             ug = gain_uncertainty_db(u_in, u_out, b)
-            self._decide_row(ch, "gain", a.gain_db, "dB", lim.gain_db, ug, detail)
+            self._decide_row(ch, GAIN, a.gain_db, lim.gain_db, ug, detail)
             expected = float(lim.phase_deg)
             ph = _wrap_near(a.phase_deg, expected)
             self._row(
                 ch,
-                "phase",
+                PHASE,
                 ph,
-                "deg",
                 expected - PHASE_TOLERANCE_DEG,
                 expected + PHASE_TOLERANCE_DEG,
                 PHASE_U_DEG,
@@ -670,9 +673,8 @@ class ProductionSteps:
             uthd = thd_uncertainty_percent(a.thd_percent or 0.0, a.floor.thd_percent, b)
             self._decide_row(
                 ch,
-                "thd",
+                THD,
                 a.thd_percent,
-                "%",
                 lim.thd_percent,
                 uthd,
                 {
@@ -738,14 +740,13 @@ class ProductionSteps:
             wide=wide.get(c.board_channel),
         )
 
-    def _clip_row(self, ch: str, lim: ChannelLimits, decision: str, detail: Detail) -> None:
+    def _clip_row(self, ch: str, lim: ChannelLimits, decision: Outcome, detail: Detail) -> None:
         """A clipping-threshold row with no value (not resolvable, or not searched)."""
         clim = lim.clip_input_vrms
         self._row(
             ch,
-            "clip_input",
+            CLIP_INPUT,
             None,
-            "V rms",
             limit_get(clim, "low"),
             limit_get(clim, "high"),
             None,
@@ -765,15 +766,11 @@ class ProductionSteps:
         keep = cond.mode in ("reversed_polarity", "gain_error", "hum") and a is not None
         gain = a.gain_db if keep and a is not None else None
         thd = a.thd_percent if keep and a is not None else None
-        for name, unit, limit, value in (
-            ("gain", "dB", lim.gain_db, gain),
-            ("thd", "%", lim.thd_percent, thd),
-        ):
+        for q, limit, value in ((GAIN, lim.gain_db, gain), (THD, lim.thd_percent, thd)):
             self._row(
                 ch,
-                name,
+                q,
                 value,
-                unit,
                 limit_get(limit, "low"),
                 limit_get(limit, "high"),
                 None,
@@ -784,9 +781,8 @@ class ProductionSteps:
         expected = float(lim.phase_deg)
         self._row(
             ch,
-            "phase",
+            PHASE,
             _wrap_near(phase, expected) if phase is not None else None,
-            "deg",
             expected - PHASE_TOLERANCE_DEG,
             expected + PHASE_TOLERANCE_DEG,
             None,
@@ -824,7 +820,7 @@ class ProductionSteps:
             if not s.failed
             and s.nominal is not None
             and s.nominal.gain_db is not None
-            and not self._unresolvable(s.conn.board_channel, "clip_input")
+            and not self._unresolvable(s.conn.board_channel, CLIP_INPUT)
         ]
         for s in group:
             if s not in active:
@@ -1017,12 +1013,11 @@ class ProductionSteps:
             )
             u_v = th.level_vrms * (10 ** (u_db / 20) - 1)
             detail["u_db"] = u_db
-            self._decide_row(ch, "clip_input", th.level_vrms, "V rms", lim, u_v, detail)
+            self._decide_row(ch, CLIP_INPUT, th.level_vrms, lim, u_v, detail)
             self._row(
                 ch,
-                "clip_side",
+                CLIP_SIDE,
                 asym,
-                "",
                 None,
                 None,
                 None,
@@ -1051,15 +1046,14 @@ class ProductionSteps:
                     "highest_measured_vrms": top,
                 }
             )
+            decision: Outcome
             if high is not None and high <= top:
                 decision = "fail"
             elif high is not None:
                 decision = "not resolvable"
             else:
                 decision = decide(top, low, None, 0.0)
-            self._row(
-                ch, "clip_input", None, "V rms", low, high, None, decision, detail, detail["result"]
-            )
+            self._row(ch, CLIP_INPUT, None, low, high, None, decision, detail, detail["result"])
             self.ctx.progress.note(f"channel {ch}: threshold above safe level {safe:g} V rms")
             return
         if th is not None and th.above_vrms is not None and not th.bracketed:
@@ -1071,9 +1065,8 @@ class ProductionSteps:
             )
             self._row(
                 ch,
-                "clip_input",
+                CLIP_INPUT,
                 None,
-                "V rms",
                 low,
                 high,
                 None,
@@ -1083,9 +1076,7 @@ class ProductionSteps:
             )
             return
         detail["result"] = "search did not converge"
-        self._row(
-            ch, "clip_input", None, "V rms", low, high, None, "fail", detail, detail["result"]
-        )
+        self._row(ch, CLIP_INPUT, None, low, high, None, "fail", detail, detail["result"])
 
     def frequencies(self, group: list[_ChannelState]) -> None:
         extra = self.ctx.board.conditions.extra_frequencies_hz
@@ -1110,9 +1101,8 @@ class ProductionSteps:
                     rel = a.gain_db - s.nominal.gain_db
                 self._row(
                     ch,
-                    f"gain@{f:g}Hz",
+                    gain_at(f),
                     a.gain_db,
-                    "dB",
                     None,
                     None,
                     None,
@@ -1276,7 +1266,7 @@ def _side_fraction(limits: ChannelLimits, side: str | None) -> float | None:
     return None if value is None else float(value)
 
 
-def _side_decision(side: str | None, limits: ChannelLimits) -> str:
+def _side_decision(side: str | None, limits: ChannelLimits) -> Outcome:
     """Decide the clipping side against the model: pass when it is the side the model
     expects; fail when the model gives the other side to at least 99 % of good boards."""
     expected = limits.clip_side or None
