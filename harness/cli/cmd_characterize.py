@@ -96,7 +96,7 @@ def run(args: argparse.Namespace) -> int:
         )
     )
     # lock and make the station safe first; then the limits, the store and the sweeps
-    with safe_station(prep.station) as inst:
+    with safe_station(prep.station, relays=prep.fixture.relays) as inst:
         prep = ensure_limits(prep)
         with open_store(args.db or DEFAULT_DB) as store:
             store.recover_aborted()

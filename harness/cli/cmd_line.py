@@ -350,7 +350,7 @@ def run(args: argparse.Namespace, *, stdin: TextIO | None = None, console: Any =
 
     prep = prepare(args.board, args.fixture, args.station, defer_limits=True)
     with station_lock(prep.station):
-        instruments: Instruments | None = connect_safe(prep.station)
+        instruments: Instruments | None = connect_safe(prep.station, relays=prep.fixture.relays)
         try:
             prep = ensure_limits(prep)
             ui = TerminalUI(console, stdin, details=args.details)

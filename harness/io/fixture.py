@@ -88,6 +88,16 @@ class FixtureConfig:
         return any(c.route for c in self.channels) or any(t.route for t in self.test_points)
 
     @property
+    def relays(self) -> tuple[int, ...]:
+        """Every switch relay the fixture routes, so the safe state can read each back."""
+        return tuple(
+            sorted(
+                {r for c in self.channels for r in c.route}
+                | {r for t in self.test_points for r in t.route}
+            )
+        )
+
+    @property
     def needs_dmm(self) -> bool:
         return bool(self.test_points)
 

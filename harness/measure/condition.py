@@ -95,9 +95,7 @@ def _near(freqs: np.ndarray, targets: list[float], width_hz: float) -> np.ndarra
     return mask
 
 
-def _strongest_other(
-    y: np.ndarray, fs: float, f0: float
-) -> tuple[float, float, float] | None:
+def _strongest_other(y: np.ndarray, fs: float, f0: float) -> tuple[float, float, float] | None:
     """(frequency, peak V, median bin V) of the strongest component that is neither DC, the
     test signal nor one of its harmonics, nor mains; None when the record is too short."""
     if y.size < 64:

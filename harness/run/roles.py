@@ -151,6 +151,8 @@ class Routes(Protocol):
 
     def open_all(self) -> None: ...
 
+    def watch(self, channels: Iterable[int]) -> None: ...
+
 
 class Recoveries(Protocol):
     """A session's recovery counters (harness.instruments.session.Session)."""

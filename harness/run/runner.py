@@ -151,7 +151,10 @@ def execute(
 
     serial = validate_serial(serial)
     opts = options or RunOptions()
-    with open_store(db) as store, safe_station(prep.station, rm=rm) as instruments:
+    with (
+        open_store(db) as store,
+        safe_station(prep.station, rm=rm, relays=prep.fixture.relays) as instruments,
+    ):
         prep = ensure_limits(prep)
         store.recover_aborted()
         if not opts.station_name:

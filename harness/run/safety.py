@@ -28,7 +28,7 @@ import logging
 import math
 import signal
 import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from types import FrameType
 from typing import TYPE_CHECKING, Literal
@@ -441,8 +441,8 @@ def make_safe(role: str, driver: object) -> OutputState:
     """Put one instrument in its safe state and say what it is now.
 
     Generator and supply: every output off, each read back ("off" only when every output
-    reads off, else "unknown").  Switch: every route open ("off" once the instrument took
-    the command without error).  Measuring instruments drive nothing: "off".  Never raises.
+    reads off, else "unknown").  Switch: every route open, each relay it watches read back
+    open ("off" only then).  Measuring instruments drive nothing: "off".  Never raises.
     """
     if role in ("generator", "supply"):
         if not isinstance(driver, Source):
@@ -483,7 +483,10 @@ def unsafe_text(states: dict[str, OutputState]) -> str:
 
 
 def connect_safe(
-    station: StationConfig, *, rm: pyvisa.ResourceManager | None = None
+    station: StationConfig,
+    *,
+    rm: pyvisa.ResourceManager | None = None,
+    relays: Iterable[int] = (),
 ) -> Instruments:
     """Connect ``station`` and put every source in its safe state before anything else.
 
@@ -494,12 +497,17 @@ def connect_safe(
     instrument's recovery (a timeout, a reconnect) first switches the generator off, and
     closing it makes every source safe again.  A source that cannot be confirmed safe
     stops here with a SafetyError: nothing is driven through a station in an unknown state.
+    ``relays`` are the fixture's switch routes: each is read back open, at connect and at
+    every later safe state, even one this process never closed (a crashed one did).
     """
     from harness.instruments.bench import connect
 
     states: dict[str, OutputState] = {}
+    watched = tuple(relays)
 
     def on_open(role: str, driver: object) -> None:
+        if role == "switch" and watched and isinstance(driver, Routes):
+            driver.watch(watched)
         if role in _SOURCES:
             states[role] = make_safe(role, driver)
 
@@ -522,7 +530,10 @@ def connect_safe(
 
 @contextmanager
 def safe_station(
-    station: StationConfig, *, rm: pyvisa.ResourceManager | None = None
+    station: StationConfig,
+    *,
+    rm: pyvisa.ResourceManager | None = None,
+    relays: Iterable[int] = (),
 ) -> Iterator[Instruments]:
     """The whole session on one station: its lock taken first (a second process gets
     StationBusy naming the holder), then :func:`connect_safe`; on every exit the sources
@@ -530,7 +541,7 @@ def safe_station(
     from harness.run.station_lock import station_lock
 
     with station_lock(station):
-        inst = connect_safe(station, rm=rm)
+        inst = connect_safe(station, rm=rm, relays=relays)
         try:
             yield inst
         finally:

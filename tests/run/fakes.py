@@ -224,6 +224,9 @@ class FakeBench:
             def open_all(self) -> None:
                 bench.closed.clear()
 
+            def watch(self, channels: list[int]) -> None:
+                pass  # open_all above leaves nothing closed to read back
+
         class Dmm:
             def dc_volts(self, range_v: float | None = None) -> float:
                 return 6.1 if bench.closed else 0.0

@@ -221,3 +221,28 @@ def test_safe_station_holds_the_lock_for_the_session(board, tmp_path, lock_dir):
         with safe_station(station), pytest.raises(StationBusy, match="station busy"):
             take_lock([(bench.resources["scope"], "scope")])
         take_lock([(bench.resources["scope"], "scope")]).release()
+
+
+def test_a_fixture_relay_a_crashed_process_left_closed_is_read_back_at_connect(
+    board, tmp_path, lock_dir
+):
+    """The fixture's routes are read back after the switch's open-all at connect, so a
+    relay closed behind this process's back (a crashed run) is seen; with a switch whose
+    open-all does nothing (``*WAI``, IEEE 488.2 §10.39) the connect refuses, naming it."""
+    from harness.errors import SafetyError
+
+    with sim_bench(board, tmp_path) as (bench, station_file):
+        text = (REPO / "fixtures/instruments/scpi-switch.toml").read_text()
+        prof = tmp_path / "deaf-switch.toml"
+        prof.write_text(text.replace('open_all = "ROUTe:OPEN:ALL"', 'open_all = "*WAI"'))
+        deaf = tmp_path / "station-deaf.toml"
+        deaf.write_text(bench.station_text(profiles={"switch": str(prof)}))
+        bench.switch.handle(b"ROUTe:CLOSe (@102)")
+        inst = connect_safe(load_station(deaf))  # not told the fixture: 102 goes unseen
+        inst.close()
+        with pytest.raises(SafetyError, match="switch route not confirmed off"):
+            connect_safe(load_station(deaf), relays=(101, 102))
+        assert bench.switch.closed == {102}
+        inst = connect_safe(load_station(station_file), relays=(101, 102))  # a working switch
+        assert not bench.switch.closed
+        inst.close()
