@@ -33,7 +33,8 @@ Nagel, SPICE2 thesis, UCB ERL-M520, 1975, from memory).
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import functools
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -105,6 +106,18 @@ def _pnjlim(v_new: np.ndarray, v_old: np.ndarray, v_t: np.ndarray, v_crit: np.nd
     v_new[big] = np.broadcast_to(lim, v_new.shape)[big]
 
 
+@functools.cache
+def compiled_kernel() -> Callable[..., None] | None:
+    """numba's compiled row solver (:func:`harness.model.periodic_kernel.solve_rows`), or
+    None where numba is not installed.  Imported on the first solve, not with the model:
+    numba's import alone takes a fifth of a second."""
+    try:
+        from harness.model.periodic_kernel import solve_rows
+    except ImportError:
+        return None
+    return solve_rows
+
+
 def solve_periodic(
     v_s: np.ndarray,
     c: Mapping[str, np.ndarray],
@@ -113,6 +126,7 @@ def solve_periodic(
     *,
     tol_v: float = 1e-10,
     max_iterations: int = 60,
+    compiled: bool = True,
 ) -> PeriodicSolution:
     """Periodic steady state of one stage (see the module docstring).
 
@@ -122,6 +136,56 @@ def solve_periodic(
     (the rest bias, or a nearby solution).  A row stops once its junction voltages are within
     ``tol_v`` of the solution, as estimated from its last Newton step
     (:data:`QUADRATIC_GAIN`).
+
+    ``compiled``: solve row by row in numba's compiled kernel
+    (:mod:`harness.model.periodic_kernel`, the same equations and stopping rule, several times
+    faster) where numba is installed; False, or without numba, the numpy loop.
+    """
+    kernel = compiled_kernel() if compiled else None
+    if kernel is not None:
+        return _solve_compiled(kernel, v_s, c, weights, state, tol_v, max_iterations)
+    return _solve_numpy(v_s, c, weights, state, tol_v, max_iterations)
+
+
+def _solve_compiled(
+    kernel: Callable[..., None],
+    v_s: np.ndarray,
+    c: Mapping[str, np.ndarray],
+    weights: np.ndarray,
+    state: PeriodicState,
+    tol_v: float,
+    max_iterations: int,
+) -> PeriodicSolution:
+    """:func:`solve_periodic` in the compiled kernel: the arrays it takes, C-ordered float64
+    (one compiled signature), the start copied (the caller's state is left as it is)."""
+    rows, pts = state.vbe.shape
+    coef = np.empty((rows, len(STAGE_KEYS)))
+    for j, name in enumerate(STAGE_KEYS):
+        coef[:, j] = np.broadcast_to(np.asarray(c[name], dtype=float), (rows, 1))[:, 0]
+    vbe = np.array(state.vbe, dtype=float, order="C")
+    vbc = np.array(state.vbc, dtype=float, order="C")
+    means = np.empty((rows, 2))
+    means[:, 0], means[:, 1] = state.m_b, state.m_c
+    src = np.ascontiguousarray(np.broadcast_to(v_s, (rows, pts)), dtype=float)
+    w = np.ascontiguousarray(weights, dtype=float)
+    i_b, i_c = np.empty((rows, pts)), np.empty((rows, pts))
+    kernel(
+        vbe, vbc, means, src, w, coef, float(tol_v), QUADRATIC_GAIN, int(max_iterations), i_b, i_c
+    )
+    return PeriodicSolution(
+        i_b, i_c, PeriodicState(vbe, vbc, means[:, 0].copy(), means[:, 1].copy())
+    )
+
+
+def _solve_numpy(
+    v_s: np.ndarray,
+    c: Mapping[str, np.ndarray],
+    weights: np.ndarray,
+    state: PeriodicState,
+    tol_v: float,
+    max_iterations: int,
+) -> PeriodicSolution:
+    """:func:`solve_periodic` in numpy, every row at once.
 
     Internally the arrays are ``(points, rows)``: the per-row coefficients then broadcast
     along the long axis and the reductions over the period run across rows, several times
