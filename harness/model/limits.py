@@ -49,14 +49,14 @@ MC_THD_POINTS = 32
 MC_SEARCH_POINTS = 32
 MC_SEARCH_ITERATIONS = 10
 MC_SEARCH_TOL_DB = 0.02
-#: Boards of the Monte Carlo whose THD-criterion clipping threshold is searched.  The search
-#: solves the periodic large-signal chain about 5 times per board (some 35 us a board on
-#: these 2-core machines, against 9 us for everything else: searched on all 20,000 boards
-#: the demo twin preamp's limits take about 3 s instead of under 1), so it runs on the first
-#: ``MC_SEARCH_SAMPLES`` draws only: they are independent draws of the same distributions,
+#: Boards of the Monte Carlo whose THD-criterion clipping threshold is searched: every board
+#: of a draw up to this many (the default 20,000 of the demo boards are all searched, in
+#: about 0.8 s for the twin preamp on these 2-core machines with the compiled periodic
+#: solve).  Beyond, the search runs on the first ``MC_SEARCH_SAMPLES`` draws only, to bound
+#: its memory (some 1.7 kB a board): they are independent draws of the same distributions,
 #: an unbiased subsample whose quantiles carry a sampling error well inside the model's own
 #: 0.1 dB uncertainty that is added to the band anyway.  Stated in the provenance.
-MC_SEARCH_SAMPLES = 4000
+MC_SEARCH_SAMPLES = 50_000
 
 #: The model's own uncertainty, per quantity: how far it may sit from the physics (ngspice's
 #: Gummel-Poon transient, settled) on any workable common-emitter or CE-into-follower board,
@@ -557,15 +557,17 @@ def _channel_limits(
     )
 
 
-#: Peak memory of the Monte Carlo per board drawn: a fixed part and a part per stage of the
-#: longest channel (the channels are evaluated one after the other).  Measured with
-#: tracemalloc on the demo boards (benchmarks/bench_memory.py): 817 B per board for
-#: one-stage channels, 1267 B for two-stage ones at 80,000 boards; the figures here carry a
-#: margin of about a third, and a fixed part for the worst-case corners, the nominal design
-#: and the criterion search on its ``MC_SEARCH_SAMPLES`` boards (2.7 kB per board measured at
-#: 20,000 two-stage boards, where 16 MiB fell short).
+#: Peak memory of the Monte Carlo per board drawn: a fixed part, a part per stage of the
+#: longest channel (the channels are evaluated one after the other) and a part per board
+#: searched for the criterion threshold (its brackets, last points and the periodic state it
+#: restarts from).  Measured with tracemalloc on the demo boards (benchmarks/bench_memory.py,
+#: tests/reliability/test_memory.py): 817 B per board for one-stage channels, 1267 B for
+#: two-stage ones at 80,000 boards without the search, 2.5 kB per two-stage board with it at
+#: 50,000; the figures here carry a margin of about a third, and a fixed part for the
+#: worst-case corners and the nominal design.
 MC_BYTES_PER_BOARD = 500
 MC_BYTES_PER_BOARD_STAGE = 600
+MC_BYTES_PER_SEARCHED_BOARD = 1700
 MC_BYTES_FIXED = 20 << 20
 
 
@@ -573,7 +575,8 @@ def limits_memory_bytes(board: Board, samples: int) -> int:
     """Estimated peak memory of :func:`compute_limits` with ``samples`` boards (bytes)."""
     stages = max((len(ch.stages) for ch in board.channels), default=1)
     per_board = MC_BYTES_PER_BOARD + MC_BYTES_PER_BOARD_STAGE * stages
-    return MC_BYTES_FIXED + int(samples) * per_board
+    searched = min(int(samples), MC_SEARCH_SAMPLES) * MC_BYTES_PER_SEARCHED_BOARD
+    return MC_BYTES_FIXED + int(samples) * per_board + searched
 
 
 def compute_limits(
