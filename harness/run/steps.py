@@ -25,6 +25,7 @@ from harness.io.fixture import ChannelConnection, FixtureConfig
 from harness.measure import ClipCriterion
 from harness.model.board import Board
 from harness.model.limits import BoardLimits
+from harness.outcomes import Verdict as VerdictWord
 from harness.run.bench_ops import (
     RANGE_FILL,
     GroupScope,
@@ -54,9 +55,9 @@ from harness.store import ResultStore, RunHeader
 __all__ = [
     "Clock",
     "Order",
-    "Outcome",
     "Roles",
     "RunContext",
+    "RunEnd",
     "RunSettings",
     "build_context",
     "move_to",
@@ -386,11 +387,11 @@ def _run_order(ctx: RunContext, order: Order[G]) -> str | None:
 
 
 @dataclass
-class Outcome:
+class RunEnd:
     """How a run ended: stored with ``finish_run`` already."""
 
     status: Literal["complete", "aborted"]
-    verdict: Literal["PASS", "FAIL"] | None
+    verdict: VerdictWord | None
     reason: str | None
     error: BaseException | None
     elapsed_s: float
@@ -403,14 +404,14 @@ class Outcome:
 
 Verdict = Callable[
     [Literal["complete", "aborted"], str | None],
-    tuple[Literal["PASS", "FAIL"] | None, str | None],
+    tuple[VerdictWord | None, str | None],
 ]
 
 
-def perform(ctx: RunContext, order: Order[G], verdict: Verdict) -> Outcome:
+def perform(ctx: RunContext, order: Order[G], verdict: Verdict) -> RunEnd:
     """Begin the run in the store, run ``order`` with SIGTERM raising and
     ``order.shutdown`` on every exit, decide the verdict from (status, reason) and finish
-    the run in the store.  Never raises for what stopped the run: see Outcome.reraise."""
+    the run in the store.  Never raises for what stopped the run: see RunEnd.reraise."""
     t0 = time.perf_counter()
     ctx.log.begin(ctx.header())
     status, reason, error = run_guarded(
@@ -422,4 +423,4 @@ def perform(ctx: RunContext, order: Order[G], verdict: Verdict) -> Outcome:
     )
     decided, reason = verdict(status, reason)
     ctx.store.finish_run(ctx.run_id, status, decided, reason)
-    return Outcome(status, decided, reason, error, time.perf_counter() - t0)
+    return RunEnd(status, decided, reason, error, time.perf_counter() - t0)
