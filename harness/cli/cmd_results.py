@@ -28,22 +28,13 @@ from harness.store import (
     parse_when,
 )
 from harness.store.frame import RUN_FIELDS
+from harness.store.rows import MEASUREMENT_FIELDS
 
 if TYPE_CHECKING:
     from rich.console import Console
 
-_MEAS_FIELDS = (
-    "channel",
-    "name",
-    "value",
-    "unit",
-    "low",
-    "high",
-    "uncertainty",
-    "decision",
-    "step",
-    "measured_at",
-)
+#: A measurement's columns in the CSV and JSON listing (its detail is shown by ``show``).
+_MEAS_FIELDS = tuple(f for f in MEASUREMENT_FIELDS if f != "detail_json")
 
 
 def _style(word: str | None) -> str:

@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING
 
 from harness.errors import StoreError
 from harness.store.protocol import When
+from harness.store.rows import MEASUREMENT_FIELDS, SWEEP_FIELDS
 from harness.store.sql import RunFilter
 
 if TYPE_CHECKING:  # pandas is imported on use: station processes that only write skip it
@@ -75,17 +76,7 @@ _TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
             "measurement_id",
             "run_id",
             *RUN_FIELDS,
-            "channel",
-            "name",
-            "value",
-            "unit",
-            "low",
-            "high",
-            "uncertainty",
-            "decision",
-            "step",
-            "measured_at",
-            "detail_json",
+            *MEASUREMENT_FIELDS,
         ),
     ),
     "sweeps": (
@@ -94,16 +85,7 @@ _TABLES: dict[str, tuple[str, tuple[str, ...]]] = {
             "point_id",
             "run_id",
             *RUN_FIELDS,
-            "channel",
-            "sweep",
-            "level_vrms",
-            "gain_db",
-            "thd_percent",
-            "thdn_percent",
-            "clipped",
-            "clip_side",
-            "extra_json",
-            "measured_at",
+            *SWEEP_FIELDS,
         ),
     ),
 }

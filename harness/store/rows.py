@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from datetime import UTC, date, datetime, timedelta
 from typing import Any
 
@@ -359,3 +359,9 @@ class RecordRow:
     sample_rate_hz: float
     captured_at: str
     arrays: dict[str, np.ndarray]
+
+
+#: The stored columns of a measurement and of a sweep point, in table order: the one list
+#: the SQL, the DataFrames and the CSV exports take theirs from.
+MEASUREMENT_FIELDS: tuple[str, ...] = tuple(f.name for f in fields(MeasurementRow))
+SWEEP_FIELDS: tuple[str, ...] = tuple(f.name for f in fields(SweepPointRow))

@@ -29,7 +29,9 @@ from harness.errors import StoreError
 from harness.store.owner import Owner, this_owner
 from harness.store.protocol import When
 from harness.store.rows import (
+    MEASUREMENT_FIELDS,
     STATUSES,
+    SWEEP_FIELDS,
     VERDICTS,
     MeasurementRow,
     RecordRow,
@@ -55,13 +57,8 @@ RUN_COLUMNS = (
     "limits_digest, limits_provenance, instruments_json, software_version, settle_note, "
     "host, pid, heartbeat_at, board_text, run_token"
 )
-MEAS_COLUMNS = (
-    "channel, name, value, unit, low, high, uncertainty, decision, step, measured_at, detail_json"
-)
-SWEEP_COLUMNS = (
-    "channel, sweep, level_vrms, gain_db, thd_percent, thdn_percent, clipped, clip_side, "
-    "extra_json, measured_at"
-)
+MEAS_COLUMNS = ", ".join(MEASUREMENT_FIELDS)
+SWEEP_COLUMNS = ", ".join(SWEEP_FIELDS)
 _INSERT_RUN = (
     "INSERT INTO runs (serial, part_number, board_name, board_file, board_digest, "
     "limits_json, limits_digest, limits_provenance, station, fixture, operator, "
