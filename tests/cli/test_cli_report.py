@@ -110,15 +110,20 @@ def test_export_csv_and_parquet_read_back(db_path, tmp_path, capsys) -> None:
                     assert back["value"].tolist() == pytest.approx(ref["value"].tolist())
 
 
-def test_parquet_without_pyarrow_is_a_clear_error(db_path, tmp_path, capsys, monkeypatch) -> None:
+def _without(monkeypatch, module: str) -> None:
+    """Make ``module`` (and its submodules) fail to import, as on a machine without it."""
     real_import = builtins.__import__
 
-    def no_pyarrow(name, *a, **k):
-        if name == "pyarrow" or name.startswith("pyarrow."):
-            raise ImportError("No module named 'pyarrow'")
+    def refuse(name, *a, **k):
+        if name == module or name.startswith(module + "."):
+            raise ImportError(f"No module named {module!r}")
         return real_import(name, *a, **k)
 
-    monkeypatch.setattr(builtins, "__import__", no_pyarrow)
+    monkeypatch.setattr(builtins, "__import__", refuse)
+
+
+def test_parquet_without_pyarrow_is_a_clear_error(db_path, tmp_path, capsys, monkeypatch) -> None:
+    _without(monkeypatch, "pyarrow")
     code, _, err = _run(
         [
             "report",
@@ -139,14 +144,7 @@ def test_parquet_without_pyarrow_is_a_clear_error(db_path, tmp_path, capsys, mon
 
 def test_png_option_without_matplotlib(db_path, tmp_path, capsys, monkeypatch) -> None:
     """--png needs matplotlib: without it, a clear message and exit 2, no half-written files."""
-    real_import = builtins.__import__
-
-    def no_mpl(name, *a, **k):
-        if name == "matplotlib" or name.startswith("matplotlib."):
-            raise ImportError("No module named 'matplotlib'")
-        return real_import(name, *a, **k)
-
-    monkeypatch.setattr(builtins, "__import__", no_mpl)
+    _without(monkeypatch, "matplotlib")
     code, _, err = _run(
         [
             "report",
